@@ -1,0 +1,283 @@
+"""The forward model: superposed fields of many sources over a grounded plane, batched.
+
+Layers:
+
+* :class:`Scene` — a fixed set of sources (their kinds and shapes), an optional grounded plane
+  and an optional uniform background field. Its parameter vector θ lists every source's
+  parameters (``s{i}.charge_c, s{i}.x_m, …``) then the background (``bg.x_v_per_m, …``).
+  :meth:`Scene.evaluate` gives the field and ∂E/∂θ for many scenarios (rows of θ) at once.
+* :func:`field` and :func:`field_jacobian` — the public one-shot functions of the contract.
+
+The grounded plane z = g is the method of images (e.g. Jackson, Classical Electrodynamics,
+§2.1): each source gets a mirror image of opposite charge, and the field above the plane is
+the sum of both. The image's parameters are the real ones with charge and height mirrored
+(q' = −q, z' = 2g − z), so by the chain rule its Jacobian enters with those two columns negated.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .sources import KERNELS, DensityGrid, Source, _SourceBase
+
+BACKGROUND_PARAMS: tuple[str, ...] = ("bg.x_v_per_m", "bg.y_v_per_m", "bg.z_v_per_m")
+
+
+@dataclass(frozen=True)
+class _KindGroup:
+    """All sources of one kind: where their parameters sit in θ and their fixed geometry."""
+
+    kind: str
+    columns: np.ndarray  # (N, P) int: global θ column of each source parameter
+    geometry: object  # line: (N, 3) half vectors; grid: tuple of DensityGrid; else None
+    image_geometry: object
+    contiguous: bool  # columns == arange: the Jacobian block is a reshape, no scatter
+
+
+@dataclass(frozen=True, eq=False)
+class Scene:
+    """Sources, ground and background whose fields are evaluated together.
+
+    Parameters
+    ----------
+    sources : sequence of source objects
+        Their kinds and shapes are fixed; charge, centre, radius and sigma come from θ.
+    ground_z_m : float or None
+        Height of the infinite grounded conducting plane in metres; ``None`` is free space.
+    background : bool
+        Whether θ ends with a uniform background field (3 components, V/m).
+    """
+
+    sources: tuple[Source, ...]
+    ground_z_m: float | None = None
+    background: bool = False
+    _groups: tuple[_KindGroup, ...] = field(init=False, repr=False)
+
+    def __post_init__(self) -> None:
+        srcs = _as_sources(self.sources)
+        object.__setattr__(self, "sources", srcs)
+        if self.ground_z_m is not None:
+            g = float(self.ground_z_m)
+            if not np.isfinite(g):
+                raise ValueError(f"`ground_z_m` must be a finite number or None; got {g}.")
+            object.__setattr__(self, "ground_z_m", g)
+            for i, s in enumerate(srcs):
+                if not s.lowest_z_m() > g:
+                    raise ValueError(
+                        f"source {i} ({s.kind}) reaches down to z = {s.lowest_z_m():g} m, not above"
+                        f" the ground plane at z = {g:g} m; every source must lie above the ground."
+                    )
+        object.__setattr__(self, "_groups", self._build_groups())
+
+    # -- parameter bookkeeping ---------------------------------------------------------------
+
+    @property
+    def param_names(self) -> tuple[str, ...]:
+        """All parameter names of θ, in order."""
+        names = [f"s{i}.{n}" for i, s in enumerate(self.sources) for n in s.param_names]
+        return tuple(names) + (BACKGROUND_PARAMS if self.background else ())
+
+    @property
+    def n_params(self) -> int:
+        return len(self.param_names)
+
+    def nominal(self, background_v_per_m: Sequence[float] = (0.0, 0.0, 0.0)) -> np.ndarray:
+        """θ of the sources as given, ``(n_params,) float``."""
+        parts = [s.param_vector() for s in self.sources]
+        if self.background:
+            parts.append(np.asarray(background_v_per_m, dtype=float))
+        return np.concatenate(parts) if parts else np.zeros(0)
+
+    def _build_groups(self) -> tuple[_KindGroup, ...]:
+        offsets = np.cumsum([0] + [len(s.param_names) for s in self.sources])
+        groups = []
+        for kind in KERNELS:
+            members = [i for i, s in enumerate(self.sources) if s.kind == kind]
+            if not members:
+                continue
+            n_p = len(self.sources[members[0]].param_names)
+            cols = np.array([np.arange(offsets[i], offsets[i] + n_p) for i in members])
+            geom, image = _geometry(kind, [self.sources[i] for i in members])
+            contiguous = bool(np.array_equal(cols.ravel(), np.arange(cols.size)))
+            groups.append(_KindGroup(kind, cols, geom, image, contiguous))
+        return tuple(groups)
+
+    # -- evaluation ------------------------------------------------------------------------------
+
+    def evaluate(
+        self,
+        theta: np.ndarray,
+        points_m: np.ndarray,
+        *,
+        jacobian: bool = True,
+        columns: np.ndarray | None = None,
+    ) -> tuple[np.ndarray, np.ndarray | None]:
+        """Field and parameter Jacobian for many scenarios at once.
+
+        Parameters
+        ----------
+        theta : (n_scenarios, n_params) float
+            One parameter vector per scenario (SI units, names in :attr:`param_names`).
+        points_m : (n_points, 3) float
+            Observation points in metres, shared by all scenarios; on or above the ground.
+        jacobian : bool
+            Whether to compute ∂E/∂θ.
+        columns : (n_cols,) int or None
+            Which θ columns the Jacobian keeps (default: all).
+
+        Returns
+        -------
+        field_v_per_m : (n_scenarios, n_points, 3) float
+        jacobian : (n_scenarios, n_points, 3, n_cols) float or None
+            ∂E_i/∂θ_j in V/m per unit of θ_j.
+
+        Notes
+        -----
+        No input checks: this is the hot path. Use :func:`field` for checked one-shot calls.
+        """
+        n_s = theta.shape[0]
+        n_pts = points_m.shape[0]
+        full = np.zeros((n_s, n_pts, 3, self.n_params)) if jacobian else None
+        total = np.zeros((n_s, n_pts, 3))
+        g = self.ground_z_m
+        for grp in self._groups:
+            params = theta[:, grp.columns]  # (S, N, P)
+            kernel = KERNELS[grp.kind]
+            e, jac = kernel(params, points_m, grp.geometry, jacobian)
+            total += e
+            if g is not None:
+                mirrored = params.copy()
+                mirrored[..., 0] *= -1.0
+                mirrored[..., 3] = 2.0 * g - mirrored[..., 3]
+                e_img, jac_img = kernel(mirrored, points_m, grp.image_geometry, jacobian)
+                total += e_img
+                if jacobian:
+                    jac_img[..., 0] *= -1.0
+                    jac_img[..., 3] *= -1.0
+                    jac += jac_img
+            if jacobian:
+                if grp.contiguous:
+                    full[..., : grp.columns.size] = jac.reshape(n_s, n_pts, 3, -1)
+                else:
+                    full[..., grp.columns.ravel()] = jac.reshape(n_s, n_pts, 3, -1)
+        if self.background:
+            total += theta[:, None, -3:]
+            if jacobian:
+                full[..., -3:] += np.eye(3)
+        if not jacobian:
+            return total, None
+        if columns is not None:
+            full = full[..., columns]
+        return total, full
+
+
+def _geometry(kind: str, members: list) -> tuple[object, object]:
+    """Fixed shape data of a kind group and of its mirror image in a horizontal plane."""
+    if kind == "line":
+        hv = np.array([m.half_vector_m for m in members])
+        return hv, hv * np.array([1.0, 1.0, -1.0])
+    if kind == "grid":
+        grids = tuple(members)
+        images = tuple(
+            DensityGrid(m.density_c_per_m3[:, :, ::-1], m.origin_m, m.spacing_m) for m in members
+        )
+        return grids, images
+    return None, None
+
+
+def _as_sources(sources) -> tuple[Source, ...]:
+    if isinstance(sources, _SourceBase):
+        sources = (sources,)
+    try:
+        out = tuple(sources)
+    except TypeError:
+        raise ValueError(
+            "`sources` must be a source object or a sequence of them; "
+            f"got {type(sources).__name__}."
+        ) from None
+    for i, s in enumerate(out):
+        if not isinstance(s, _SourceBase):
+            raise ValueError(
+                f"`sources[{i}]` must be a PointCharge, LineCharge, SphereCharge, GaussianCharge "
+                f"or DensityGrid; got {type(s).__name__}."
+            )
+    return out
+
+
+def check_points(points_m, ground_z_m: float | None = None, name: str = "points_m") -> np.ndarray:
+    """Validate observation points: ``(n_points, 3)`` finite, none below the ground plane.
+
+    Returns the points as a float array; raises ``ValueError`` naming the first bad row.
+    """
+    pts = np.asarray(points_m, dtype=float)
+    if pts.ndim != 2 or pts.shape[1] != 3:
+        raise ValueError(
+            f"`{name}` must have shape (n_points, 3) in metres; got shape {pts.shape}."
+        )
+    bad = ~np.all(np.isfinite(pts), axis=1)
+    if np.any(bad):
+        i = int(np.argmax(bad))
+        raise ValueError(f"`{name}` row {i} must be finite; got {pts[i].tolist()}.")
+    if ground_z_m is not None:
+        below = pts[:, 2] < ground_z_m
+        if np.any(below):
+            i = int(np.argmax(below))
+            raise ValueError(
+                f"`{name}` row {i} at z = {pts[i, 2]:g} m is below the ground plane at z = "
+                f"{ground_z_m:g} m; the field inside the conductor is zero and not modelled."
+            )
+    return pts
+
+
+def field(sources, points_m, ground_z_m: float | None = None) -> np.ndarray:
+    """Superposed electric field of ``sources`` at ``points_m``.
+
+    Parameters
+    ----------
+    sources : source object or sequence of them
+        ``PointCharge``, ``LineCharge``, ``SphereCharge``, ``GaussianCharge``, ``DensityGrid``.
+    points_m : (n_points, 3) float
+        Observation points in metres.
+    ground_z_m : float or None
+        ``None`` for free space; a number places an infinite grounded conducting plane at that
+        height (method of images). Every source must lie above it, every point on or above it.
+
+    Returns
+    -------
+    (n_points, 3) float
+        The field in V/m, physics sign convention (pointing away from positive charge).
+
+    Raises
+    ------
+    ValueError
+        Bad shapes, non-finite values, a source below the plane, or a point on a point or line
+        charge (the message names the point).
+    """
+    e, _ = field_jacobian(sources, points_m, ground_z_m, jacobian=False)
+    return e
+
+
+def field_jacobian(
+    sources, points_m, ground_z_m: float | None = None, *, jacobian: bool = True
+) -> tuple[np.ndarray, np.ndarray | None]:
+    """Field and its derivatives with respect to every source parameter.
+
+    Parameters are as for :func:`field`.
+
+    Returns
+    -------
+    field_v_per_m : (n_points, 3) float
+    jacobian : (n_points, 3, n_params) float
+        ∂E/∂θ with θ ordered ``s0.charge_c, s0.x_m, s0.y_m, s0.z_m, [s0.radius_m | s0.sigma_m],
+        s1.charge_c, …`` (see :attr:`Scene.param_names`).
+    """
+    scene = Scene(_as_sources(sources), ground_z_m)
+    pts = check_points(points_m, scene.ground_z_m)
+    e, jac = scene.evaluate(scene.nominal()[None, :], pts, jacobian=jacobian)
+    return e[0], (jac[0] if jac is not None else None)
+
+
+__all__ = ["BACKGROUND_PARAMS", "Scene", "check_points", "field", "field_jacobian"]
