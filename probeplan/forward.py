@@ -33,7 +33,7 @@ class _KindGroup:
     kind: str
     columns: np.ndarray  # (N, P) int: global θ column of each source parameter
     geometry: object  # line: (N, 3) half vectors; grid: tuple of DensityGrid; else None
-    image_geometry: object
+    pair_geometry: object  # the same for the sources followed by their mirror images
     contiguous: bool  # columns == arange: the Jacobian block is a reshape, no scatter
 
 
@@ -100,9 +100,9 @@ class Scene:
                 continue
             n_p = len(self.sources[members[0]].param_names)
             cols = np.array([np.arange(offsets[i], offsets[i] + n_p) for i in members])
-            geom, image = _geometry(kind, [self.sources[i] for i in members])
+            geom, pair = _geometry(kind, [self.sources[i] for i in members])
             contiguous = bool(np.array_equal(cols.ravel(), np.arange(cols.size)))
-            groups.append(_KindGroup(kind, cols, geom, image, contiguous))
+            groups.append(_KindGroup(kind, cols, geom, pair, contiguous))
         return tuple(groups)
 
     # -- evaluation ------------------------------------------------------------------------------
@@ -140,51 +140,58 @@ class Scene:
         """
         n_s = theta.shape[0]
         n_pts = points_m.shape[0]
-        full = np.zeros((n_s, n_pts, 3, self.n_params)) if jacobian else None
         total = np.zeros((n_s, n_pts, 3))
+        blocks = []  # (group, its Jacobian (S, M, 3, N, P))
         g = self.ground_z_m
         for grp in self._groups:
             params = theta[:, grp.columns]  # (S, N, P)
             kernel = KERNELS[grp.kind]
-            e, jac = kernel(params, points_m, grp.geometry, jacobian)
-            total += e
-            if g is not None:
+            n_src = params.shape[1]
+            if g is None:
+                e, jac = kernel(params, points_m, grp.geometry, jacobian)
+            else:
+                # Real sources and their images in one kernel call: N real then N images.
                 mirrored = params.copy()
                 mirrored[..., 0] *= -1.0
                 mirrored[..., 3] = 2.0 * g - mirrored[..., 3]
-                e_img, jac_img = kernel(mirrored, points_m, grp.image_geometry, jacobian)
-                total += e_img
+                both = np.concatenate([params, mirrored], axis=1)
+                e, jac = kernel(both, points_m, grp.pair_geometry, jacobian)
                 if jacobian:
-                    jac_img[..., 0] *= -1.0
-                    jac_img[..., 3] *= -1.0
-                    jac += jac_img
-            if jacobian:
-                if grp.contiguous:
-                    full[..., : grp.columns.size] = jac.reshape(n_s, n_pts, 3, -1)
-                else:
-                    full[..., grp.columns.ravel()] = jac.reshape(n_s, n_pts, 3, -1)
+                    img = jac[:, :, :, n_src:]
+                    img[..., 0] *= -1.0
+                    img[..., 3] *= -1.0
+                    jac = jac[:, :, :, :n_src] + img
+            total += e
+            blocks.append((grp, jac))
         if self.background:
             total += theta[:, None, -3:]
-            if jacobian:
-                full[..., -3:] += np.eye(3)
         if not jacobian:
             return total, None
-        if columns is not None:
+        if len(blocks) == 1 and blocks[0][0].contiguous and not self.background:
+            # One kind, parameters in order: the kernel's block already is ∂E/∂θ.
+            full = blocks[0][1].reshape(n_s, n_pts, 3, -1)
+        else:
+            full = np.zeros((n_s, n_pts, 3, self.n_params))
+            for grp, jac in blocks:
+                full[..., grp.columns.ravel()] = jac.reshape(n_s, n_pts, 3, -1)
+            if self.background:
+                full[..., -3:] += np.eye(3)
+        if columns is not None and not np.array_equal(columns, np.arange(self.n_params)):
             full = full[..., columns]
         return total, full
 
 
 def _geometry(kind: str, members: list) -> tuple[object, object]:
-    """Fixed shape data of a kind group and of its mirror image in a horizontal plane."""
+    """Fixed shape data of a kind group, and of the group followed by its mirror images."""
     if kind == "line":
         hv = np.array([m.half_vector_m for m in members])
-        return hv, hv * np.array([1.0, 1.0, -1.0])
+        return hv, np.concatenate([hv, hv * np.array([1.0, 1.0, -1.0])])
     if kind == "grid":
         grids = tuple(members)
         images = tuple(
             DensityGrid(m.density_c_per_m3[:, :, ::-1], m.origin_m, m.spacing_m) for m in members
         )
-        return grids, images
+        return grids, grids + images
     return None, None
 
 

@@ -1,0 +1,313 @@
+"""Fisher information, design criteria, Cramér–Rao bounds and unresolved directions.
+
+For one scenario with readings m = h(θ) + noise, noise Gaussian with covariance Σ, the Fisher
+information is J = Gᵀ Σ⁻¹ G with G = ∂h/∂θ (e.g. Kay, Fundamentals of Statistical Signal
+Processing, vol. 1: Estimation Theory, §3.9). With whitened rows r = (∂m/∂θ)/σ this is
+J = Σ r rᵀ. The Cramér–Rao bound says no unbiased estimator has covariance below J⁻¹.
+
+Criteria (the contract's exact definitions), per scenario s:
+
+* ``d``: log det J_s (natural log, SI units), maximised — D-optimal design;
+* ``location``: sqrt(C_xx + C_yy) of source 0, C = J_s⁻¹, minimised (m);
+* ``charge``: sqrt(C_qq)/|q| of source 0, minimised (fraction).
+
+Aggregates over scenarios: ``mean``, ``worst`` (min of d, max of the others) and
+``quantile:q``, the q-quantile of the *badness*: for the error criteria the q-quantile, for
+``d`` the (1 − q)-quantile, so that ``quantile:0.9`` reads "90 % of scenarios do at least this
+well" for every criterion. A singular J_s scores −inf (d) or +inf (the others).
+
+Inverses are taken on the correlation-scaled matrix D J D with D = diag(J)^(-1/2), so that
+parameters in coulombs, metres and V/m do not ruin the conditioning.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+CRITERIA: tuple[str, ...] = ("d", "location", "charge")
+AGGREGATE_NAMES: tuple[str, ...] = ("mean", "worst", "quantile:q")
+
+#: Hadamard ratio det(J)/Π J_ii below which J counts as singular (the layout cannot resolve
+#: some combination of parameters), and relative eigenvalue of the scaled J below which a
+#: direction is reported as unresolved.
+SINGULAR_RTOL = 1e-12
+#: Relative eigenvalue of the scaled J below which a direction is reported as poorly resolved.
+WEAK_RTOL = 1e-6
+
+
+def fisher_from_rows(rows: np.ndarray) -> np.ndarray:
+    """Fisher information from whitened rows.
+
+    Parameters
+    ----------
+    rows : (..., n_readings, n_params) float
+        Reading gradients divided by their noise.
+
+    Returns
+    -------
+    (..., n_params, n_params) float
+        J = Σ rows rowsᵀ, in 1/(unit θ_i · unit θ_j).
+    """
+    return np.einsum("...rp,...rq->...pq", rows, rows)
+
+
+def _scaled(fisher: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Correlation scaling: returns (D J D, d) with d = diag(J)^(-1/2) (0 where diag is 0)."""
+    diag = np.diagonal(fisher, axis1=-2, axis2=-1)
+    d = np.where(diag > 0, 1.0 / np.sqrt(np.where(diag > 0, diag, 1.0)), 0.0)
+    return fisher * d[..., :, None] * d[..., None, :], d
+
+
+def _is_singular(fisher: np.ndarray) -> np.ndarray:
+    """(...,) bool: J has a zero diagonal or its Hadamard ratio is below SINGULAR_RTOL.
+
+    The Hadamard ratio det(J)/Π J_ii = det(D J D) lies in [0, 1]; it is 1 for independent
+    parameters and 0 for a layout that cannot separate some combination of them. It costs one
+    batched LU, where an eigendecomposition per scenario would cost several.
+    """
+    scaled, d = _scaled(fisher)
+    sign, logdet = np.linalg.slogdet(scaled)
+    return np.any(d == 0.0, axis=-1) | (sign <= 0) | (logdet < np.log(SINGULAR_RTOL))
+
+
+def covariance(fisher: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Cramér–Rao covariance J⁻¹, computed on the scaled matrix.
+
+    Parameters
+    ----------
+    fisher : (..., n_params, n_params) float
+
+    Returns
+    -------
+    cov : (..., n_params, n_params) float
+        J⁻¹; rows of a singular J are filled with +inf on the diagonal and 0 elsewhere.
+    singular : (...,) bool
+    """
+    singular = _is_singular(fisher)
+    scaled, d = _scaled(fisher)
+    eye = np.eye(fisher.shape[-1])
+    safe = np.where(singular[..., None, None], eye, scaled)
+    cov = np.linalg.inv(safe) * d[..., :, None] * d[..., None, :]
+    inf_diag = np.where(eye > 0, np.inf, 0.0)
+    return np.where(singular[..., None, None], inf_diag, cov), singular
+
+
+def crb_std(fisher: np.ndarray) -> np.ndarray:
+    """1-sigma Cramér–Rao bounds sqrt(diag(J⁻¹)).
+
+    Parameters
+    ----------
+    fisher : (..., n_params, n_params) float
+
+    Returns
+    -------
+    (..., n_params) float
+        In the unit of each parameter; +inf where J is singular.
+    """
+    cov, _ = covariance(fisher)
+    return np.sqrt(np.diagonal(cov, axis1=-2, axis2=-1))
+
+
+def log_det(fisher: np.ndarray) -> np.ndarray:
+    """log det J (natural log, SI units); −inf where J is singular. Shape (...,)."""
+    scaled, d = _scaled(fisher)
+    sign, logdet = np.linalg.slogdet(scaled)
+    singular = np.any(d == 0.0, axis=-1) | (sign <= 0) | (logdet < np.log(SINGULAR_RTOL))
+    # log det J = log det(D J D) − 2 Σ log d_i, without a second factorisation.
+    with np.errstate(divide="ignore"):
+        full = logdet - 2.0 * np.sum(np.log(np.where(d > 0, d, 1.0)), axis=-1)
+    return np.where(singular, -np.inf, full)
+
+
+@dataclass(frozen=True)
+class Criterion:
+    """A design criterion bound to the parameter indices it reads.
+
+    Parameters
+    ----------
+    name : {"d", "location", "charge"}
+    x_index, y_index : int or None
+        Columns of source 0's x and y (``location``).
+    charge_index : int or None
+        Column of source 0's charge (``charge``).
+    """
+
+    name: str
+    x_index: int | None = None
+    y_index: int | None = None
+    charge_index: int | None = None
+
+    def __post_init__(self) -> None:
+        if self.name not in CRITERIA:
+            raise ValueError(f"criterion must be one of {', '.join(CRITERIA)}; got {self.name!r}.")
+
+    @property
+    def maximise(self) -> bool:
+        return self.name == "d"
+
+    @property
+    def unit(self) -> str:
+        return {"d": "log det, SI", "location": "m", "charge": "fraction"}[self.name]
+
+    def per_scenario(self, fisher: np.ndarray, theta_est: np.ndarray) -> np.ndarray:
+        """Criterion value of each scenario.
+
+        Parameters
+        ----------
+        fisher : (..., n_scenarios, n_params, n_params) float
+        theta_est : (n_scenarios, n_params) float
+            Estimated parameters of each scenario (the charge for ``charge``).
+
+        Returns
+        -------
+        (..., n_scenarios) float
+        """
+        if self.name == "d":
+            return log_det(fisher)
+        cov, _ = covariance(fisher)
+        if self.name == "location":
+            var = cov[..., self.x_index, self.x_index] + cov[..., self.y_index, self.y_index]
+            return np.sqrt(var)
+        q = np.abs(theta_est[:, self.charge_index])
+        return np.sqrt(cov[..., self.charge_index, self.charge_index]) / q
+
+
+def parse_aggregate(text: str) -> tuple[str, float]:
+    """``"mean" | "worst" | "quantile:q"`` → (kind, q); raises ValueError listing the choices."""
+    if text in ("mean", "worst"):
+        return text, 0.0
+    if text.startswith("quantile:"):
+        try:
+            q = float(text.split(":", 1)[1])
+        except ValueError:
+            q = float("nan")
+        if 0.0 < q < 1.0:
+            return "quantile", q
+        raise ValueError(f"aggregate `{text}`: q must be a number between 0 and 1 (exclusive).")
+    raise ValueError(f"aggregate must be one of mean, worst, quantile:q (0 < q < 1); got {text!r}.")
+
+
+def aggregate(values: np.ndarray, how: str, maximise: bool) -> np.ndarray:
+    """Aggregate per-scenario criterion values.
+
+    Parameters
+    ----------
+    values : (..., n_scenarios) float
+    how : "mean" | "worst" | "quantile:q"
+    maximise : bool
+        True for ``d`` (larger is better).
+
+    Returns
+    -------
+    (...,) float
+    """
+    kind, q = parse_aggregate(how)
+    if kind == "mean":
+        with np.errstate(invalid="ignore"):
+            out = np.mean(values, axis=-1)
+        # A mix of +inf and −inf cannot occur (one criterion has one direction of failure).
+        return out
+    if kind == "worst":
+        return np.min(values, axis=-1) if maximise else np.max(values, axis=-1)
+    level = 1.0 - q if maximise else q
+    # 'inverted_cdf' keeps ±inf from poisoning a quantile through interpolation.
+    return np.quantile(values, level, axis=-1, method="inverted_cdf")
+
+
+def d_ratio(value_a: float, value_b: float, n_params: int) -> float:
+    """D-ratio exp((a − b)/n_params): how much more information per parameter a has than b."""
+    if not np.isfinite(value_b):
+        return float("inf") if np.isfinite(value_a) else float("nan")
+    return float(np.exp((value_a - value_b) / n_params))
+
+
+@dataclass(frozen=True)
+class Direction:
+    """A parameter combination a layout resolves poorly or not at all.
+
+    Attributes
+    ----------
+    weights : (n_params,) float
+        Unit eigenvector of the scaled information (dimensionless, relative changes).
+    relative_eigenvalue : float
+        Its eigenvalue over the largest; 0 for a parameter no reading sees.
+    singular : bool
+        True when the layout cannot resolve it at all.
+    text : str
+        The direction in words.
+    """
+
+    weights: np.ndarray
+    relative_eigenvalue: float
+    singular: bool
+    text: str
+
+
+def unresolved_directions(
+    fisher: np.ndarray, names: tuple[str, ...], ground: bool = False, max_terms: int = 3
+) -> list[Direction]:
+    """Parameter combinations that a layout cannot resolve or resolves poorly.
+
+    Parameters
+    ----------
+    fisher : (n_params, n_params) float
+        J of one scenario.
+    names : tuple of n_params str
+    ground : bool
+        Whether the scene has a grounded plane (adds the dipole explanation for charge–height).
+    max_terms : int
+        Most parameters named per direction.
+
+    Returns
+    -------
+    list of Direction, worst first. Empty when every direction is resolved.
+    """
+    p = len(names)
+    out: list[Direction] = []
+    diag = np.diagonal(fisher)
+    for i in np.nonzero(~(diag > 0))[0]:
+        w = np.zeros(p)
+        w[i] = 1.0
+        text = f"{names[i]} is not seen by any reading (no probe senses it, or all saturate)"
+        out.append(Direction(w, 0.0, True, text))
+    seen = np.nonzero(diag > 0)[0]
+    if seen.size == 0:
+        return out
+    scaled, _ = _scaled(fisher[np.ix_(seen, seen)])
+    eigval, eigvec = np.linalg.eigh(scaled)
+    top = max(eigval[-1], np.finfo(float).tiny)
+    for k in range(seen.size):
+        rel = eigval[k] / top
+        if rel >= WEAK_RTOL:
+            break
+        w = np.zeros(p)
+        w[seen] = eigvec[:, k]
+        w *= np.sign(w[np.argmax(np.abs(w))])
+        out.append(
+            Direction(
+                w, float(max(rel, 0.0)), rel < SINGULAR_RTOL, _describe(w, names, ground, max_terms)
+            )
+        )
+    return out
+
+
+def _describe(w: np.ndarray, names: tuple[str, ...], ground: bool, max_terms: int) -> str:
+    order = np.argsort(-np.abs(w))
+    main = [int(i) for i in order[:max_terms] if abs(w[i]) >= 0.25 * abs(w[order[0]])]
+    if len(main) == 1:
+        return f"{names[main[0]]} is not pinned down by this layout"
+    parts = ", ".join(names[i] for i in main[:-1]) + f" and {names[main[-1]]}"
+    same = [i for i in main[1:] if np.sign(w[i]) == np.sign(w[main[0]])]
+    how = "rise together" if len(same) == len(main) - 1 else "trade off"
+    text = f"{parts} {how}: only a combination of them is seen"
+    src = {n.split(".")[0] for n in (names[i] for i in main)}
+    kinds = {n.split(".", 1)[1] for n in (names[i] for i in main)}
+    if ground and len(src) == 1 and kinds == {"charge_c", "z_m"}:
+        s = src.pop()
+        text = (
+            f"charge and height of {s} trade off: only their product is seen "
+            "(far from the probes a charge and its ground image act as one dipole)"
+        )
+    return text

@@ -1,0 +1,397 @@
+"""The assembled planning problem, and the score of a layout.
+
+A :class:`Problem` ties the stages together for one config: the :class:`~probeplan.forward.Scene`,
+the scenario table θ (scenario 0 nominal, the rest drawn from the config's ranges with its seed),
+which parameters are estimated, the meters (axes, gain, noise) of the installed and the new
+probes, the mounting site and the design criterion. Its methods turn probe positions into Fisher
+information and criterion values, batched over many layouts at once; :meth:`Problem.score`
+builds the one :class:`Score` result for a single layout.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+
+from .errors import InputError
+from .fisher import (
+    Criterion,
+    Direction,
+    aggregate,
+    covariance,
+    fisher_from_rows,
+    unresolved_directions,
+)
+from .forward import Scene
+from .probes import Noise, axes_table, component_axes, whitened_rows
+
+
+_CHUNK_BYTES = 8 << 20
+
+
+def draw_scenarios(config, scene: Scene, rng: np.random.Generator) -> np.ndarray:
+    """Scenario parameter table: row 0 nominal, the others uniform within the config's ranges.
+
+    Parameters
+    ----------
+    config : probeplan.config.Config
+    scene : Scene
+        Built from the same config (its parameter names order the columns).
+    rng : numpy Generator
+        The only source of randomness; draws are made range by range in config order.
+
+    Returns
+    -------
+    (n_scenarios, n_params_all) float
+        θ of every scenario, SI units, columns named by ``scene.param_names``.
+    """
+    bg = config.background.field_v_per_m if config.background else (0.0, 0.0, 0.0)
+    nominal = scene.nominal(bg)
+    n_s = config.design.scenarios
+    theta = np.tile(nominal, (n_s, 1))
+    index = {n: k for k, n in enumerate(scene.param_names)}
+    ranges = [(f"s{i}.{n}", lo, hi) for i, s in enumerate(config.sources) for n, lo, hi in s.ranges]
+    if config.background:
+        ranges += [(f"bg.{n}", lo, hi) for n, lo, hi in config.background.ranges]
+    for name, lo, hi in ranges:
+        theta[1:, index[name]] = rng.uniform(lo, hi, size=n_s - 1)
+    return theta
+
+
+@dataclass(frozen=True, eq=False)
+class Score:
+    """How well one layout pins down the estimated parameters.
+
+    Attributes
+    ----------
+    positions_m : (n_probes, 3) float
+        All probes, installed ones first.
+    installed : (n_probes,) bool
+    gain : (n_probes,) float
+    names : tuple of n_params str
+    theta : (n_scenarios, n_params) float
+        Estimated parameters of each scenario.
+    fisher : (n_scenarios, n_params, n_params) float
+    crb_std : (n_scenarios, n_params) float
+        1-sigma Cramér–Rao bounds (+inf where singular).
+    per_scenario : (n_scenarios,) float
+        Criterion of each scenario.
+    value : float
+        The aggregated criterion.
+    criterion, aggregate : str
+    singular : (n_scenarios,) bool
+    saturated : (n_probes,) float
+        Fraction of scenarios in which each probe saturates on some axis.
+    unresolved : list of Direction
+        For the scenario that scores worst (nominal if none is worse).
+    unresolved_scenario : int
+    """
+
+    positions_m: np.ndarray
+    installed: np.ndarray
+    gain: np.ndarray
+    names: tuple[str, ...]
+    theta: np.ndarray
+    fisher: np.ndarray
+    crb_std: np.ndarray
+    per_scenario: np.ndarray
+    value: float
+    criterion: str
+    aggregate: str
+    singular: np.ndarray
+    saturated: np.ndarray
+    unresolved: list[Direction] = field(default_factory=list)
+    unresolved_scenario: int = 0
+
+
+@dataclass(frozen=True, eq=False)
+class Problem:
+    """Everything needed to score layouts of one config (see module docstring).
+
+    Use :func:`build_problem`; the fields are documented there.
+    """
+
+    config: object
+    scene: Scene
+    theta: np.ndarray  # (n_scenarios, n_params_all)
+    est_cols: np.ndarray  # (n_params,) int
+    names: tuple[str, ...]
+    criterion: Criterion
+    aggregate: str
+    noise: Noise
+    count: int
+    new_axes: np.ndarray  # (n_axes, 3)
+    new_gain: float
+    installed_m: np.ndarray  # (n_installed, 3)
+    installed_axes: np.ndarray  # (n_installed, n_axes_i, 3)
+    installed_gain: np.ndarray  # (n_installed,)
+    site: object
+    fisher_installed: np.ndarray  # (n_scenarios, n_params, n_params)
+
+    @property
+    def n_params(self) -> int:
+        return len(self.names)
+
+    @property
+    def n_scenarios(self) -> int:
+        return self.theta.shape[0]
+
+    @property
+    def theta_est(self) -> np.ndarray:
+        """(n_scenarios, n_params) float: the estimated parameters of each scenario."""
+        return self.theta[:, self.est_cols]
+
+    # -- rows and information -------------------------------------------------------------------
+
+    def rows(
+        self,
+        positions_m: np.ndarray,
+        gain: np.ndarray | None = None,
+        axes: np.ndarray | None = None,
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """Whitened reading gradients of probes at many positions.
+
+        Parameters
+        ----------
+        positions_m : (n_points, 3) float
+        gain : (n_points,) float or None
+            Calibration factors (default: the new probes' gain).
+        axes : (n_points, n_axes, 3) float or None
+            Measurement axes (default: the new probes' component).
+
+        Returns
+        -------
+        rows : (n_scenarios, n_points, n_axes, n_params) float
+        saturated : (n_scenarios, n_points, n_axes) bool
+        """
+        n = positions_m.shape[0]
+        if axes is None:
+            axes = np.broadcast_to(self.new_axes, (n, *self.new_axes.shape))
+        if gain is None:
+            gain = np.full(n, self.new_gain)
+        e, jac = self.scene.evaluate(self.theta, positions_m, columns=self.est_cols)
+        return whitened_rows(e, jac, axes, gain, self.noise)
+
+    def point_information(
+        self, positions_m: np.ndarray, gain: np.ndarray | None = None
+    ) -> np.ndarray:
+        """Fisher information that one new probe at each position adds.
+
+        Returns
+        -------
+        (n_scenarios, n_points, n_params, n_params) float
+        """
+        rows, _ = self.rows(positions_m, gain)
+        return fisher_from_rows(rows)
+
+    def fisher(self, layouts_m: np.ndarray, gains: np.ndarray | None = None) -> np.ndarray:
+        """Fisher information of many layouts of new probes (installed ones added).
+
+        Parameters
+        ----------
+        layouts_m : (n_layouts, n_probes, 3) float
+        gains : (n_layouts, n_probes) float or None
+
+        Returns
+        -------
+        (n_layouts, n_scenarios, n_params, n_params) float
+        """
+        n_l, n_p, _ = layouts_m.shape
+        gains = None if gains is None else np.broadcast_to(gains, (n_l, n_p))
+        out = np.empty((n_l, self.n_scenarios, self.n_params, self.n_params))
+        # Chunks of layouts keep the Jacobian near a few MB: it stays in cache and in the heap.
+        per_layout = self.n_scenarios * n_p * 3 * max(self.scene.n_params, 1) * 8
+        step = max(1, _CHUNK_BYTES // per_layout)
+        for start in range(0, n_l, step):
+            sl = slice(start, min(start + step, n_l))
+            k = sl.stop - sl.start
+            g = None if gains is None else gains[sl].reshape(-1)
+            rows, _ = self.rows(layouts_m[sl].reshape(-1, 3), g)  # (S, k*n, A, p)
+            rows = rows.reshape(rows.shape[0], k, -1, rows.shape[-1])
+            out[sl] = np.moveaxis(fisher_from_rows(rows), 0, 1)
+        return out + self.fisher_installed
+
+    def values(self, fisher: np.ndarray) -> np.ndarray:
+        """Aggregated criterion of many layouts.
+
+        Parameters
+        ----------
+        fisher : (..., n_scenarios, n_params, n_params) float
+
+        Returns
+        -------
+        (...,) float
+        """
+        per = self.criterion.per_scenario(fisher, self.theta_est)
+        return aggregate(per, self.aggregate, self.criterion.maximise)
+
+    def layout_values(self, layouts_m: np.ndarray, gains: np.ndarray | None = None) -> np.ndarray:
+        """Criterion of many layouts: ``(n_layouts, n_probes, 3)`` → ``(n_layouts,)``."""
+        return self.values(self.fisher(layouts_m, gains))
+
+    def better(self, a: float, b: float) -> bool:
+        """Whether criterion value a is strictly better than b."""
+        return a > b if self.criterion.maximise else a < b
+
+    def gain_at(self, positions_m: np.ndarray) -> np.ndarray:
+        """Calibration factor of new probes at positions, ``(n, 3)`` → ``(n,)``.
+
+        The probes' own gain times the gain of the mounting region they sit in (the nearest
+        candidate point decides, so points on a region's edge are not ambiguous).
+        """
+        regions = self.site.regions
+        if all(r.gain == 1.0 for r in regions):
+            return np.full(positions_m.shape[0], self.new_gain)
+        from scipy.spatial import cKDTree
+
+        cand = self.site.candidate_grid(target=2000)
+        _, idx = cKDTree(cand.positions_m).query(positions_m)
+        return self.new_gain * cand.gain[idx]
+
+    # -- one layout -----------------------------------------------------------------------------
+
+    def score(self, positions_m: np.ndarray, gain: np.ndarray | None = None) -> Score:
+        """Score one layout of new probes (installed probes are added in front).
+
+        Parameters
+        ----------
+        positions_m : (n_probes, 3) float
+            New probes only.
+        gain : (n_probes,) float or None
+            Default: :meth:`gain_at`.
+
+        Returns
+        -------
+        Score
+        """
+        pos = np.asarray(positions_m, dtype=float).reshape(-1, 3)
+        gain = self.gain_at(pos) if gain is None else np.asarray(gain, dtype=float)
+        rows_new, sat_new = self.rows(pos, gain)
+        n_inst = self.installed_m.shape[0]
+        if n_inst:
+            rows_inst, sat_inst = self.rows(
+                self.installed_m, self.installed_gain, self.installed_axes
+            )
+            sat = np.concatenate([_any_axis(sat_inst), _any_axis(sat_new)], axis=1)
+        else:
+            sat = _any_axis(sat_new)
+        info = self.fisher_installed + fisher_from_rows(
+            rows_new.reshape(self.n_scenarios, -1, self.n_params)
+        )
+        per = self.criterion.per_scenario(info, self.theta_est)
+        value = float(aggregate(per, self.aggregate, self.criterion.maximise))
+        cov, singular = covariance(info)
+        crb = np.sqrt(np.diagonal(cov, axis1=-2, axis2=-1))
+        worst = int(np.argmin(per) if self.criterion.maximise else np.argmax(per))
+        worst = worst if per[worst] != per[0] else 0
+        unresolved = unresolved_directions(
+            info[worst], self.names, ground=self.scene.ground_z_m is not None
+        )
+        return Score(
+            positions_m=np.concatenate([self.installed_m, pos]),
+            installed=np.arange(n_inst + pos.shape[0]) < n_inst,
+            gain=np.concatenate([self.installed_gain, gain]),
+            names=self.names,
+            theta=self.theta_est,
+            fisher=info,
+            crb_std=crb,
+            per_scenario=per,
+            value=value,
+            criterion=self.criterion.name,
+            aggregate=self.aggregate,
+            singular=singular,
+            saturated=sat.mean(axis=0),
+            unresolved=unresolved,
+            unresolved_scenario=worst,
+        )
+
+
+def _any_axis(sat: np.ndarray) -> np.ndarray:
+    return np.any(sat, axis=-1)
+
+
+def build_problem(config, *, count: int | None = None, grade=None) -> Problem:
+    """Assemble the planning problem of a config.
+
+    Parameters
+    ----------
+    config : probeplan.config.Config
+    count : int or None
+        Number of new probes (default ``config.probes.count``).
+    grade : probeplan.config.Grade or None
+        Meter grade whose noise and range replace those of ``[probes]`` (for budgets).
+
+    Returns
+    -------
+    Problem
+    """
+    pr = config.probes
+    scene = Scene(
+        tuple(s.source for s in config.sources),
+        config.ground_z_m,
+        background=config.background is not None,
+    )
+    rng = np.random.default_rng(config.seed)
+    theta = draw_scenarios(config, scene, rng)
+    names_all = scene.param_names
+    est = [f"s{i}.{n}" for i, s in enumerate(config.sources) for n in s.estimate]
+    if config.background is not None and config.background.estimate:
+        est += [n for n in names_all if n.startswith("bg.")]
+    est_cols = np.array([names_all.index(n) for n in est], dtype=int)
+    criterion = _bind_criterion(config, tuple(est))
+    noise = Noise(
+        grade.noise_v_per_m if grade else pr.noise_v_per_m,
+        grade.relative_noise if grade else pr.relative_noise,
+        grade.range_v_per_m if grade else pr.range_v_per_m,
+    )
+    inst = config.installed
+    installed_m = np.array([p.position_m for p in inst], dtype=float).reshape(-1, 3)
+    installed_axes = axes_table([p.component or pr.component for p in inst])
+    installed_gain = np.array([p.gain for p in inst], dtype=float)
+    problem = Problem(
+        config=config,
+        scene=scene,
+        theta=theta,
+        est_cols=est_cols,
+        names=tuple(est),
+        criterion=criterion,
+        aggregate=config.design.aggregate,
+        noise=noise,
+        count=pr.count if count is None else int(count),
+        new_axes=component_axes(pr.component),
+        new_gain=float(pr.gain),
+        installed_m=installed_m,
+        installed_axes=installed_axes,
+        installed_gain=installed_gain,
+        site=config.site(),
+        fisher_installed=np.zeros((theta.shape[0], len(est), len(est))),
+    )
+    if installed_m.shape[0]:
+        rows, _ = problem.rows(installed_m, installed_gain, installed_axes)
+        info = fisher_from_rows(rows.reshape(theta.shape[0], -1, len(est)))
+        problem = replace(problem, fisher_installed=info)
+    return problem
+
+
+def _bind_criterion(config, names: tuple[str, ...]) -> Criterion:
+    name = config.design.criterion
+    where = f"{config.path}: design.criterion"
+    if name == "location":
+        missing = [n for n in ("s0.x_m", "s0.y_m") if n not in names]
+        if missing:
+            raise InputError(
+                f'{where} = "location" needs the horizontal position of source 0 estimated; '
+                f'add "x" and "y" to source[0].estimate (missing: {", ".join(missing)}).'
+            )
+        return Criterion("location", x_index=names.index("s0.x_m"), y_index=names.index("s0.y_m"))
+    if name == "charge":
+        if "s0.charge_c" not in names:
+            raise InputError(
+                f'{where} = "charge" needs the charge of source 0 estimated; '
+                'add "charge" to source[0].estimate.'
+            )
+        if abs(config.sources[0].source.charge_c) == 0.0:
+            raise InputError(f'{where} = "charge" is relative to |q| and source 0 has q = 0.')
+        return Criterion("charge", charge_index=names.index("s0.charge_c"))
+    return Criterion(name)
