@@ -26,7 +26,6 @@ from .fisher import (
 from .forward import Scene
 from .probes import Noise, axes_table, component_axes, whitened_rows
 
-
 _CHUNK_BYTES = 8 << 20
 
 
