@@ -285,15 +285,15 @@ def unresolved_directions(
         w = np.zeros(p)
         w[seen] = eigvec[:, k]
         w *= np.sign(w[np.argmax(np.abs(w))])
-        out.append(
-            Direction(
-                w, float(max(rel, 0.0)), rel < SINGULAR_RTOL, _describe(w, names, ground, max_terms)
-            )
-        )
+        singular = bool(rel < SINGULAR_RTOL)
+        text = _describe(w, names, ground, max_terms, singular)
+        out.append(Direction(w, float(max(rel, 0.0)), singular, text))
     return out
 
 
-def _describe(w: np.ndarray, names: tuple[str, ...], ground: bool, max_terms: int) -> str:
+def _describe(
+    w: np.ndarray, names: tuple[str, ...], ground: bool, max_terms: int, singular: bool = True
+) -> str:
     order = np.argsort(-np.abs(w))
     main = [int(i) for i in order[:max_terms] if abs(w[i]) >= 0.25 * abs(w[order[0]])]
     if len(main) == 1:
@@ -301,10 +301,13 @@ def _describe(w: np.ndarray, names: tuple[str, ...], ground: bool, max_terms: in
     parts = ", ".join(names[i] for i in main[:-1]) + f" and {names[main[-1]]}"
     same = [i for i in main[1:] if np.sign(w[i]) == np.sign(w[main[0]])]
     how = "rise together" if len(same) == len(main) - 1 else "trade off"
-    text = f"{parts} {how}: only a combination of them is seen"
+    if singular:
+        text = f"{parts} {how}: only a combination of them is seen"
+    else:
+        text = f"{parts} {how}: they are hard to tell apart (strongly correlated errors)"
     src = {n.split(".")[0] for n in (names[i] for i in main)}
     kinds = {n.split(".", 1)[1] for n in (names[i] for i in main)}
-    if ground and len(src) == 1 and kinds == {"charge_c", "z_m"}:
+    if singular and ground and len(src) == 1 and kinds == {"charge_c", "z_m"}:
         s = src.pop()
         text = (
             f"charge and height of {s} trade off: only their product is seen "

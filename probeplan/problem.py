@@ -23,7 +23,7 @@ from .fisher import (
     fisher_from_rows,
     unresolved_directions,
 )
-from .forward import Scene
+from .forward import BACKGROUND_PARAMS, Scene
 from .probes import Noise, axes_table, component_axes, whitened_rows
 
 _CHUNK_BYTES = 8 << 20
@@ -335,8 +335,13 @@ def build_problem(config, *, count: int | None = None, grade=None) -> Problem:
     theta = draw_scenarios(config, scene, rng)
     names_all = scene.param_names
     est = [f"s{i}.{n}" for i, s in enumerate(config.sources) for n in s.estimate]
+    inst = config.installed
+    installed_axes = axes_table([p.component or pr.component for p in inst])
     if config.background is not None and config.background.estimate:
-        est += [n for n in names_all if n.startswith("bg.")]
+        # Only the background components some meter reads can be estimated (contract).
+        seen_axes = np.concatenate([component_axes(pr.component), installed_axes.reshape(-1, 3)])
+        seen = np.any(np.abs(seen_axes) > 1e-12, axis=0)
+        est += [n for n, k in zip(BACKGROUND_PARAMS, seen, strict=True) if k]
     est_cols = np.array([names_all.index(n) for n in est], dtype=int)
     criterion = _bind_criterion(config, tuple(est))
     noise = Noise(
@@ -344,9 +349,7 @@ def build_problem(config, *, count: int | None = None, grade=None) -> Problem:
         grade.relative_noise if grade else pr.relative_noise,
         grade.range_v_per_m if grade else pr.range_v_per_m,
     )
-    inst = config.installed
     installed_m = np.array([p.position_m for p in inst], dtype=float).reshape(-1, 3)
-    installed_axes = axes_table([p.component or pr.component for p in inst])
     installed_gain = np.array([p.gain for p in inst], dtype=float)
     problem = Problem(
         config=config,

@@ -1,0 +1,636 @@
+"""The layout search: greedy and exchange on a candidate grid, a certified bound, refinement.
+
+Stages of :func:`plan`:
+
+1. **Candidate grid** over the mounting regions, keep-outs removed (``Site.candidate_grid``),
+   and the Fisher information each candidate adds in every scenario, A_sc, computed once.
+2. **Greedy** selection: add the candidate that improves the criterion most, one probe at a
+   time, with a tiny prior so that log det is finite from the first pick. For ``d`` log det is
+   submodular and the greedy set reaches at least (1 − 1/e) of the best gain (Nemhauser, Wolsey
+   & Fisher 1978; for sensor selection: Shamaiah, Banerjee & Vikalo 2010; Krause, Singh &
+   Guestrin 2008).
+3. **Fedorov exchange**: swap a chosen probe for a candidate while any swap helps (Fedorov,
+   Theory of Optimal Experiments, 1972). Each probe's removal is a downdate of M; every
+   candidate is tried at once through the matrix determinant lemma / Woodbury identity on its
+   rank-a information (a = axes per meter), so no determinant is recomputed from scratch.
+4. **Convex relaxation bound** for ``d`` with the ``mean`` aggregate (Joshi & Boyd, "Sensor
+   Selection via Convex Optimization", IEEE TSP 57(2), 2009): weights w ∈ [0, 1]^C with
+   Σ w = count, f(w) = mean_s log det(J0_s + Σ_c w_c A_sc) is concave. Projected gradient ascent
+   finds a good w; the Frank–Wolfe duality gap max_v ∇f(w)·(v − w) certifies
+   f* ≤ f(w) + gap, so the stored bound is valid however early the solver stops.
+5. **Bayesian refinement** (scikit-optimize ``Optimizer``, ask/tell) moves one probe at a time
+   in the continuous coordinates of its mounting region, the others fixed — a 1–2-dimensional
+   problem, the size at which a Gaussian-process optimiser converges in tens of calls. It
+   keeps a move only if it improves the criterion; the summary reports what it added.
+6. **Baselines**: a regular hand-drawn layout and the best of N random layouts, scored alike.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable
+from dataclasses import dataclass
+
+import numpy as np
+
+from .fisher import aggregate, d_ratio
+from .problem import Problem, Score
+from .result import Baseline, SearchInfo
+
+#: Prior information, as a fraction of the mean diagonal of one candidate's information,
+#: that keeps log det finite while the greedy set is still too small to resolve everything.
+PRIOR_FRACTION = 1e-8
+
+#: Stop the relaxation when its certified gap is below this (in log det units, per parameter).
+BOUND_GAP_PER_PARAM = 2e-3
+
+#: Objective evaluations per Bayesian step: asked and told in small batches (constant liar).
+BO_BATCH = 4
+
+
+@dataclass(frozen=True, eq=False)
+class PlanOutcome:
+    """The outcome of :func:`plan`.
+
+    Attributes
+    ----------
+    positions_m : (count, 3) float
+        The new probes (installed ones are not repeated here).
+    gain : (count,) float
+    score : Score
+        Score of the planned layout, installed probes first.
+    info : SearchInfo
+    complete : bool
+        False when ``stop()`` ended the search early (the layout is the best found so far).
+    """
+
+    positions_m: np.ndarray
+    gain: np.ndarray
+    score: Score
+    info: SearchInfo
+    complete: bool
+
+
+# --------------------------------------------------------------------------------------------
+# The grid objective: criterion of M_s = prior + J0_s + Σ A_sc, with fast single-candidate moves
+# --------------------------------------------------------------------------------------------
+
+
+class GridObjective:
+    """Criterion values of candidate-grid layouts, with rank-a updates.
+
+    Parameters
+    ----------
+    problem : Problem
+    rows : (n_scenarios, n_candidates, n_axes, n_params) float
+        Whitened rows of a probe at each candidate.
+    prior : bool
+        Add the tiny prior (greedy/exchange) or not (final values).
+    """
+
+    def __init__(self, problem: Problem, rows: np.ndarray, prior: bool = True) -> None:
+        self.problem = problem
+        self.rows = rows
+        self.info = np.einsum("scap,scaq->scpq", rows, rows)  # (S, C, p, p)
+        base = problem.fisher_installed.copy()
+        if prior:
+            diag = np.diagonal(self.info, axis1=-2, axis2=-1).mean(axis=1)  # (S, p)
+            scale = np.where(diag > 0, diag, 1.0) * PRIOR_FRACTION
+            base = base + scale[:, :, None] * np.eye(problem.n_params)
+        self.base = base
+
+    def matrix(self, chosen: np.ndarray) -> np.ndarray:
+        """M_s of a candidate set: ``(k,) int`` → ``(n_scenarios, p, p)``."""
+        return self.base + self.info[:, chosen].sum(axis=1)
+
+    def value(self, chosen: np.ndarray) -> float:
+        return float(self.problem.values(self.matrix(chosen)))
+
+    def add_values(self, m: np.ndarray) -> np.ndarray:
+        """Criterion of M_s + A_sc for every candidate c: ``(S, p, p)`` → ``(C,)``.
+
+        For ``d``: log det(M + Rᵀ R) = log det M + log det(I + R M⁻¹ Rᵀ) (matrix determinant
+        lemma). For the error criteria: the diagonal of (M + Rᵀ R)⁻¹ by Woodbury.
+        """
+        p = self.problem
+        minv = np.linalg.inv(m)  # (S, p, p)
+        u = np.einsum("spq,scaq->scpa", minv, self.rows)  # M⁻¹ Rᵀ
+        small = np.eye(self.rows.shape[2]) + np.einsum("scap,scpb->scab", self.rows, u)
+        if p.criterion.name == "d":
+            sign, ld0 = np.linalg.slogdet(m)
+            sign_c, ld = np.linalg.slogdet(small)
+            per = np.where(sign_c > 0, ld0[:, None] + ld, -np.inf)  # (S, C)
+        else:
+            k = np.linalg.inv(small)  # (S, C, a, a)
+            idx = (
+                [p.criterion.x_index, p.criterion.y_index]
+                if p.criterion.name == "location"
+                else [p.criterion.charge_index]
+            )
+            var = np.zeros(u.shape[:2])
+            for i in idx:
+                ui = u[:, :, i, :]  # (S, C, a)
+                var += minv[:, i, i][:, None] - np.einsum("sca,scab,scb->sc", ui, k, ui)
+            per = np.sqrt(np.maximum(var, 0.0))
+            if p.criterion.name == "charge":
+                per = per / np.abs(p.theta_est[:, p.criterion.charge_index])[:, None]
+        return aggregate(per.T, p.aggregate, p.criterion.maximise)
+
+
+def _spacing_mask(positions: np.ndarray, fixed: np.ndarray, min_spacing: float) -> np.ndarray:
+    """(C,) bool: candidates at least ``min_spacing`` from every fixed point ``(k, 3)``."""
+    if min_spacing <= 0 or fixed.shape[0] == 0:
+        return np.ones(positions.shape[0], dtype=bool)
+    d2 = np.sum((positions[:, None, :] - fixed[None, :, :]) ** 2, axis=-1)
+    return np.all(d2 >= min_spacing**2 * (1 - 1e-12), axis=1)
+
+
+def _best(values: np.ndarray, allowed: np.ndarray, maximise: bool) -> int:
+    """Index of the best allowed value (first on ties: determinism), −1 if none."""
+    v = np.where(allowed, values if maximise else -values, -np.inf)
+    if not np.any(np.isfinite(v)) and not np.any(allowed):
+        return -1
+    return int(np.argmax(v))
+
+
+def greedy(
+    obj: GridObjective,
+    count: int,
+    positions: np.ndarray,
+    min_spacing: float,
+    installed_m: np.ndarray,
+    start: np.ndarray | None = None,
+) -> np.ndarray:
+    """Greedy selection of ``count`` candidates (indices ``(count,) int``).
+
+    ``start`` (k,) int: candidates already chosen (kept, counted in ``count``).
+    """
+    chosen = list(start) if start is not None else []
+    maximise = obj.problem.criterion.maximise
+    while len(chosen) < count:
+        fixed = np.concatenate([installed_m, positions[chosen]])
+        allowed = _spacing_mask(positions, fixed, min_spacing)
+        allowed[chosen] = False
+        vals = obj.add_values(obj.matrix(np.array(chosen, dtype=int)))
+        c = _best(vals, allowed, maximise)
+        if c < 0:
+            raise ValueError(
+                f"the candidate grid cannot hold {count} probes {min_spacing:g} m apart; "
+                "lower `probes.min_spacing_m`, enlarge the regions or use a finer grid."
+            )
+        chosen.append(c)
+    return np.array(chosen, dtype=int)
+
+
+def exchange(
+    obj: GridObjective,
+    chosen: np.ndarray,
+    positions: np.ndarray,
+    min_spacing: float,
+    installed_m: np.ndarray,
+    stop: Callable[[], bool] | None = None,
+    on_swap: Callable[[float], None] | None = None,
+    rtol: float = 1e-10,
+) -> np.ndarray:
+    """Fedorov exchange: swap chosen candidates while a swap improves the criterion.
+
+    Returns the improved ``(count,) int`` indices. Each pass tries every chosen probe; a pass
+    without an improving swap ends the search.
+    """
+    chosen = chosen.copy()
+    maximise = obj.problem.criterion.maximise
+    current = obj.value(chosen)
+    improved = True
+    while improved:
+        improved = False
+        for i in range(chosen.size):
+            if stop is not None and stop():
+                return chosen
+            rest = np.delete(chosen, i)
+            fixed = np.concatenate([installed_m, positions[rest]])
+            allowed = _spacing_mask(positions, fixed, min_spacing)
+            allowed[rest] = False
+            vals = obj.add_values(obj.matrix(rest))
+            c = _best(vals, allowed, maximise)
+            if c < 0 or c == chosen[i]:
+                continue
+            gain = vals[c] - current if maximise else current - vals[c]
+            if gain > rtol * max(1.0, abs(current)):
+                chosen[i] = c
+                current = float(vals[c])
+                improved = True
+                if on_swap is not None:
+                    on_swap(current)
+    return chosen
+
+
+# --------------------------------------------------------------------------------------------
+# Convex relaxation (d, mean aggregate): a certified upper bound over the candidate grid
+# --------------------------------------------------------------------------------------------
+
+
+def _project_capped_simplex(y: np.ndarray, total: float) -> np.ndarray:
+    """Euclidean projection of ``y (C,)`` onto {0 ≤ w ≤ 1, Σ w = total} (bisection on τ)."""
+    lo, hi = y.min() - 1.0, y.max()
+    for _ in range(100):
+        tau = 0.5 * (lo + hi)
+        s = np.clip(y - tau, 0.0, 1.0).sum()
+        if s > total:
+            lo = tau
+        else:
+            hi = tau
+    return np.clip(y - 0.5 * (lo + hi), 0.0, 1.0)
+
+
+@dataclass(frozen=True)
+class Relaxation:
+    """Result of :func:`relaxation_bound`.
+
+    Attributes
+    ----------
+    bound : float
+        Certified upper bound on mean_s log det J_s over all grid layouts of ``count`` probes.
+    value : float
+        f(w) at the final weights.
+    gap : float
+        Frank–Wolfe duality gap at w (bound = value + gap).
+    weights : (n_candidates,) float
+    iterations : int
+    """
+
+    bound: float
+    value: float
+    gap: float
+    weights: np.ndarray
+    iterations: int
+
+
+def relaxation_bound(
+    info: np.ndarray,
+    base: np.ndarray,
+    count: int,
+    max_iter: int = 400,
+    gap_tol: float | None = None,
+) -> Relaxation:
+    """Upper bound on the D-criterion (mean log det) over candidate subsets.
+
+    Parameters
+    ----------
+    info : (n_scenarios, n_candidates, n_params, n_params) float
+        Information of one probe at each candidate.
+    base : (n_scenarios, n_params, n_params) float
+        Information that every layout has (installed probes).
+    count : int
+        Probes to place.
+    max_iter : int
+        Projected-gradient iterations at most.
+    gap_tol : float or None
+        Stop when the duality gap is below this (default n_params × BOUND_GAP_PER_PARAM).
+
+    Returns
+    -------
+    Relaxation
+    """
+    n_s, n_c, p, _ = info.shape
+    gap_tol = p * BOUND_GAP_PER_PARAM if gap_tol is None else gap_tol
+
+    def f_and_grad(w):
+        m = base + np.einsum("c,scpq->spq", w, info)
+        sign, ld = np.linalg.slogdet(m)
+        if np.any(sign <= 0):
+            return -np.inf, None
+        minv = np.linalg.inv(m)
+        grad = np.einsum("spq,scqp->c", minv, info) / n_s
+        return float(ld.mean()), grad
+
+    def fw_gap(w, grad):
+        top = np.argsort(-grad, kind="stable")[:count]
+        v = np.zeros(n_c)
+        v[top] = 1.0
+        return float(grad @ (v - w))
+
+    w = np.full(n_c, count / n_c)
+    f, g = f_and_grad(w)
+    step = 1.0 / max(np.abs(g).max(), 1e-300)
+    gap = fw_gap(w, g)
+    it = 0
+    while it < max_iter and gap > gap_tol:
+        it += 1
+        # Backtracking projected gradient ascent, with the step allowed to grow again.
+        while True:
+            w_new = _project_capped_simplex(w + step * g, count)
+            f_new, g_new = f_and_grad(w_new)
+            if f_new >= f + 1e-4 * g @ (w_new - w) and np.isfinite(f_new):
+                break
+            step *= 0.5
+            if step < 1e-300:
+                break
+        if g_new is None:
+            break
+        w, f, g = w_new, f_new, g_new
+        step *= 2.0
+        gap = fw_gap(w, g)
+    return Relaxation(bound=f + max(gap, 0.0), value=f, gap=max(gap, 0.0), weights=w, iterations=it)
+
+
+# --------------------------------------------------------------------------------------------
+# Bayesian refinement in continuous mounting coordinates
+# --------------------------------------------------------------------------------------------
+
+
+def _make_gp(dim: int):
+    from skopt.learning import GaussianProcessRegressor
+    from skopt.learning.gaussian_process.kernels import ConstantKernel, Matern
+
+    # No hyper-parameter restarts: the fit runs after every told batch, and on 1–2 unit
+    # coordinates one start is enough (measured: 30 calls in ~2 s instead of ~10 s).
+    kernel = ConstantKernel(1.0, (1e-3, 1e3)) * Matern(
+        length_scale=[0.2] * dim, length_scale_bounds=(1e-3, 10.0), nu=2.5
+    )
+    return GaussianProcessRegressor(
+        kernel=kernel, normalize_y=True, noise="gaussian", n_restarts_optimizer=0
+    )
+
+
+def refine(
+    problem: Problem,
+    layout: np.ndarray,
+    gain: np.ndarray,
+    regions: np.ndarray,
+    budget: int,
+    rng: np.random.Generator,
+    stop: Callable[[], bool] | None = None,
+    record: Callable[[float], None] | None = None,
+    progress: Callable[[int], None] | None = None,
+) -> tuple[np.ndarray, float, int]:
+    """Move one probe at a time in its region's continuous coordinates (scikit-optimize).
+
+    Parameters
+    ----------
+    problem : Problem
+    layout : (count, 3) float
+        Starting positions of the new probes.
+    gain : (count,) float
+    regions : (count,) int
+        Mounting region index of each probe (its coordinates live there).
+    budget : int
+        Objective evaluations to spend.
+    rng : numpy Generator
+
+    Returns
+    -------
+    layout : (count, 3) float
+    value : float
+    used : int
+        Evaluations spent.
+    """
+    from skopt import Optimizer
+
+    site = problem.site
+    maximise = problem.criterion.maximise
+    layout = layout.copy()
+    current = float(problem.layout_values(layout[None], gain[None])[0])
+    movable = [i for i in range(layout.shape[0]) if site.regions[regions[i]].kind != "points"]
+    if not movable or budget <= 0:
+        return layout, current, 0
+    per_probe = max(BO_BATCH * 2, budget // len(movable))
+    used = 0
+    order = rng.permutation(movable)
+    for i in order:
+        if used >= budget or (stop is not None and stop()):
+            break
+        region = site.regions[regions[i]]
+        dim = region.unit_dim
+        opt = Optimizer(
+            [(0.0, 1.0)] * dim,
+            base_estimator=_make_gp(dim),
+            n_initial_points=min(BO_BATCH, per_probe),
+            acq_optimizer="sampling",
+            acq_optimizer_kwargs={"n_points": 500},
+            random_state=int(rng.integers(2**31 - 1)),
+        )
+        n_here = min(per_probe, budget - used)
+        best_pos, best_val = layout[i].copy(), current
+        spent = 0
+        while spent < n_here:
+            if stop is not None and stop():
+                break
+            k = min(BO_BATCH, n_here - spent)
+            us = np.array(opt.ask(n_points=k), dtype=float).reshape(k, dim)
+            cand = region.from_unit(us)  # (k, 3)
+            trial = np.repeat(layout[None], k, axis=0)
+            trial[:, i] = cand
+            vals = problem.layout_values(trial, np.broadcast_to(gain, trial.shape[:2]))
+            ok = site.allowed(cand) & site.spacing_ok(trial)
+            for v, good in zip(vals, ok, strict=True):
+                if record is not None:
+                    record(float(v) if good else float("nan"))
+            # Infeasible or singular points get a penalty just worse than the current value.
+            y = -vals if maximise else vals
+            bad = ~ok | ~np.isfinite(y)
+            y = np.where(bad, (-current if maximise else current) + 1.0, y)
+            opt.tell([list(u) for u in us], [float(v) for v in y])
+            for j in np.nonzero(~bad)[0]:
+                if problem.better(vals[j], best_val):
+                    best_val, best_pos = float(vals[j]), cand[j].copy()
+            spent += k
+            used += k
+            if progress is not None:
+                progress(used)
+        if problem.better(best_val, current):
+            layout[i] = best_pos
+            current = best_val
+    return layout, current, used
+
+
+# --------------------------------------------------------------------------------------------
+# The whole plan
+# --------------------------------------------------------------------------------------------
+
+
+def plan(
+    problem: Problem,
+    *,
+    progress: Callable[[str, int, int], None] | None = None,
+    stop: Callable[[], bool] | None = None,
+    warm_start_m: np.ndarray | None = None,
+    history: np.ndarray | None = None,
+    evaluations: int | None = None,
+    random_layouts: int | None = None,
+    candidate_target: int = 1500,
+) -> PlanOutcome:
+    """Find a layout of ``problem.count`` new probes (see the module docstring for the stages).
+
+    Parameters
+    ----------
+    problem : Problem
+    progress : callable(stage: str, done: int, total: int) or None
+    stop : callable() -> bool or None
+        Polled between steps; when it returns True the search ends with the best layout so far
+        and ``complete = False``.
+    warm_start_m : (count, 3) float or None
+        A stored layout to continue from (``--resume``): it is the incumbent from the start.
+    history : (k,) float or None
+        Stored history to continue.
+    evaluations : int or None
+        Bayesian-refinement evaluations (default ``config.design.evaluations``).
+    random_layouts : int or None
+        Random layouts for the baseline (default ``config.design.random_layouts``).
+    candidate_target : int
+        Approximate number of grid candidates when the config sets no spacing.
+
+    Returns
+    -------
+    PlanOutcome
+    """
+    t0 = time.perf_counter()
+    cfg = problem.config
+    design = cfg.design
+    rng = np.random.default_rng(cfg.seed)
+    site = problem.site
+    count = problem.count
+    maximise = problem.criterion.maximise
+    evaluations = design.evaluations if evaluations is None else evaluations
+    n_random = design.random_layouts if random_layouts is None else random_layouts
+    hist: list[float] = [] if history is None else [float(v) for v in history]
+    stopped = False
+
+    def halted() -> bool:
+        nonlocal stopped
+        stopped = stopped or bool(stop is not None and stop())
+        return stopped
+
+    def tick(stage: str, done: int, total: int) -> None:
+        if progress is not None:
+            progress(stage, done, total)
+
+    tick("candidate grid", 0, 1)
+    cand = site.candidate_grid(design.grid_spacing_m, target=candidate_target)
+    gains_c = problem.new_gain * cand.gain
+    rows, _ = problem.rows(cand.positions_m, gains_c)
+    obj = GridObjective(problem, rows, prior=True)
+    tick("candidate grid", 1, 1)
+
+    min_sp = cfg.probes.min_spacing_m
+    inst = problem.installed_m
+
+    def exact(chosen: np.ndarray) -> float:
+        return float(
+            problem.layout_values(cand.positions_m[chosen][None], gains_c[chosen][None])[0]
+        )
+
+    stages: list[tuple[str, float]] = []
+    baselines: list[Baseline] = []
+
+    # Greedy, then exchange, on the grid.
+    start = None
+    if warm_start_m is not None:
+        from scipy.spatial import cKDTree
+
+        _, start = cKDTree(cand.positions_m).query(np.asarray(warm_start_m).reshape(-1, 3))
+        start = np.unique(start)[:count]
+    tick("greedy", 0, count)
+    chosen = greedy(obj, count, cand.positions_m, min_sp, inst, start=start)
+    greedy_value = exact(chosen)
+    hist.append(greedy_value)
+    stages.append(("greedy", greedy_value))
+    baselines.append(Baseline("greedy", greedy_value, cand.positions_m[chosen].copy()))
+    tick("greedy", count, count)
+
+    tick("exchange", 0, 1)
+    chosen = exchange(
+        obj,
+        chosen,
+        cand.positions_m,
+        min_sp,
+        inst,
+        stop=halted,
+        on_swap=lambda v: tick("exchange", 0, 1),
+    )
+    exchange_value = exact(chosen)
+    hist.append(exchange_value)
+    stages.append(("exchange", exchange_value))
+    baselines.append(Baseline("exchange", exchange_value, cand.positions_m[chosen].copy()))
+    tick("exchange", 1, 1)
+
+    layout = cand.positions_m[chosen].copy()
+    gain = gains_c[chosen].copy()
+    value = exchange_value
+    if warm_start_m is not None:
+        warm = np.asarray(warm_start_m, dtype=float).reshape(-1, 3)
+        warm_gain = problem.gain_at(warm)
+        warm_value = float(problem.layout_values(warm[None], warm_gain[None])[0])
+        if problem.better(warm_value, value):
+            layout, gain, value = warm, warm_gain, warm_value
+
+    # Certified bound (d with mean aggregate only).
+    bound = gap = None
+    if problem.criterion.name == "d" and design.aggregate == "mean" and not halted():
+        tick("bound", 0, 1)
+        relax = relaxation_bound(obj.info, problem.fisher_installed, count)
+        bound, gap = relax.bound, relax.gap
+        tick("bound", 1, 1)
+
+    # Bayesian refinement in continuous coordinates.
+    if evaluations > 0 and not halted():
+        regions = _region_of(problem, layout, cand)
+        tick("refine", 0, evaluations)
+        layout, value, _ = refine(
+            problem,
+            layout,
+            gain,
+            regions,
+            evaluations,
+            rng,
+            stop=halted,
+            record=hist.append,
+            progress=lambda k: tick("refine", k, evaluations),
+        )
+        stages.append(("refine", value))
+        tick("refine", evaluations, evaluations)
+
+    # Baselines: what an engineer would draw, and the best of many random layouts.
+    if not halted():
+        tick("baselines", 0, 2)
+        try:
+            regular = site.regular_layout(count)
+            rv = float(problem.layout_values(regular[None], problem.gain_at(regular)[None])[0])
+            baselines.append(Baseline("regular", rv, regular))
+        except ValueError:
+            pass  # no regular layout fits the rules: nothing to compare
+        tick("baselines", 1, 2)
+        if n_random > 0:
+            rand = site.random_layouts(n_random, count, rng)
+            g = problem.gain_at(rand.reshape(-1, 3)).reshape(rand.shape[:2])
+            rvals = problem.layout_values(rand, g)
+            k = int(np.argmax(rvals) if maximise else np.argmin(rvals))
+            baselines.append(Baseline(f"best of {n_random} random", float(rvals[k]), rand[k]))
+        tick("baselines", 2, 2)
+
+    score = problem.score(layout, gain)
+    info = SearchInfo(
+        history=np.asarray(hist, dtype=float),
+        bound=bound,
+        bound_gap=gap,
+        grid_spacing_m=float(cand.spacing_m),
+        n_candidates=int(cand.positions_m.shape[0]),
+        baselines=tuple(baselines),
+        stages=tuple(stages),
+        seconds=time.perf_counter() - t0,
+    )
+    return PlanOutcome(layout, gain, score, info, complete=not stopped)
+
+
+def _region_of(problem: Problem, layout: np.ndarray, cand) -> np.ndarray:
+    """Mounting region of each probe: that of its nearest grid candidate, ``(count,) int``."""
+    from scipy.spatial import cKDTree
+
+    _, idx = cKDTree(cand.positions_m).query(layout)
+    return cand.region_index[idx]
+
+
+def d_efficiency(value: float, bound: float | None, n_params: int) -> float | None:
+    """exp((value − bound)/n_params): the share of the best grid layout's D-value reached."""
+    if bound is None or not np.isfinite(value):
+        return None
+    return d_ratio(value, bound, n_params)
