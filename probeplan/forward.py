@@ -169,11 +169,11 @@ class Scene:
             return total, None
         if len(blocks) == 1 and blocks[0][0].contiguous and not self.background:
             # One kind, parameters in order: the kernel's block already is ∂E/∂θ.
-            full = blocks[0][1].reshape(n_s, n_pts, 3, -1)
+            full = blocks[0][1].reshape(n_s, n_pts, 3, blocks[0][0].columns.size)
         else:
             full = np.zeros((n_s, n_pts, 3, self.n_params))
             for grp, jac in blocks:
-                full[..., grp.columns.ravel()] = jac.reshape(n_s, n_pts, 3, -1)
+                full[..., grp.columns.ravel()] = jac.reshape(n_s, n_pts, 3, grp.columns.size)
             if self.background:
                 full[..., -3:] += np.eye(3)
         if columns is not None and not np.array_equal(columns, np.arange(self.n_params)):

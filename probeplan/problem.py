@@ -85,6 +85,9 @@ class Score:
     unresolved : list of Direction
         For the scenario that scores worst (nominal if none is worse).
     unresolved_scenario : int
+    failure_values : (n_probes,) float or None
+        The criterion with each single probe lost (installed first); the worst entry is the
+        layout's value under a single failure, and its index the probe that matters most.
     """
 
     positions_m: np.ndarray
@@ -102,6 +105,7 @@ class Score:
     saturated: np.ndarray
     unresolved: list[Direction] = field(default_factory=list)
     unresolved_scenario: int = 0
+    failure_values: np.ndarray | None = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -211,6 +215,84 @@ class Problem:
             out[sl] = np.moveaxis(fisher_from_rows(rows), 0, 1)
         return out + self.fisher_installed
 
+    def probe_information(
+        self, positions_m: np.ndarray, gain: np.ndarray | None = None
+    ) -> np.ndarray:
+        """Information of every probe of a layout, installed ones first.
+
+        Parameters
+        ----------
+        positions_m : (n_probes, 3) float
+            New probes.
+        gain : (n_probes,) float or None
+
+        Returns
+        -------
+        (n_scenarios, n_installed + n_probes, n_params, n_params) float
+        """
+        pos = np.asarray(positions_m, dtype=float).reshape(-1, 3)
+        rows, _ = self.rows(pos, gain)
+        parts = [fisher_from_rows(rows)]
+        if self.installed_m.shape[0]:
+            rows_i, _ = self.rows(self.installed_m, self.installed_gain, self.installed_axes)
+            parts.insert(0, fisher_from_rows(rows_i))
+        return np.concatenate(parts, axis=1)
+
+    def failure_values(self, positions_m: np.ndarray, gain: np.ndarray | None = None) -> np.ndarray:
+        """Criterion of the layout with each single probe lost.
+
+        Parameters
+        ----------
+        positions_m : (n_probes, 3) float
+            New probes (installed ones are counted and may fail too).
+        gain : (n_probes,) float or None
+
+        Returns
+        -------
+        (n_installed + n_probes,) float
+            Entry i: the criterion with probe i (installed first) out of service.
+        """
+        info = self.probe_information(positions_m, gain)  # (S, n, p, p)
+        total = info.sum(axis=1)
+        without = total[None] - np.moveaxis(info, 1, 0)  # (n, S, p, p)
+        return self.values(without)
+
+    def robust_layout_values(
+        self, layouts_m: np.ndarray, gains: np.ndarray | None = None
+    ) -> np.ndarray:
+        """Worst criterion over the loss of any one probe, for many layouts.
+
+        Parameters
+        ----------
+        layouts_m : (n_layouts, n_probes, 3) float
+        gains : (n_layouts, n_probes) float or None
+
+        Returns
+        -------
+        (n_layouts,) float
+        """
+        n_l, n_p, _ = layouts_m.shape
+        g = None if gains is None else np.broadcast_to(gains, (n_l, n_p)).reshape(-1)
+        rows, _ = self.rows(layouts_m.reshape(-1, 3), g)
+        info = fisher_from_rows(rows).reshape(self.n_scenarios, n_l, n_p, self.n_params, -1)
+        total = info.sum(axis=2) + self.fisher_installed[:, None]  # (S, L, p, p)
+        losses = [total[:, :, None] - info]  # (S, L, n, p, p)
+        if self.installed_m.shape[0]:
+            rows_i, _ = self.rows(self.installed_m, self.installed_gain, self.installed_axes)
+            inst = fisher_from_rows(rows_i)  # (S, k, p, p)
+            losses.append(total[:, :, None] - inst[:, None])
+        lost = np.moveaxis(np.concatenate(losses, axis=2), 0, 2)  # (L, n_all, S, p, p)
+        vals = self.values(lost)  # (L, n_all)
+        return vals.min(axis=1) if self.criterion.maximise else vals.max(axis=1)
+
+    def objective(self, layouts_m: np.ndarray, gains: np.ndarray | None = None) -> np.ndarray:
+        """What the search optimises: the criterion, or its worst case over single losses
+        when the config asks to tolerate a failure. ``(n_layouts, n_probes, 3)`` → ``(n_layouts,)``.
+        """
+        if getattr(self.config.design, "tolerate_failures", 0):
+            return self.robust_layout_values(layouts_m, gains)
+        return self.layout_values(layouts_m, gains)
+
     def values(self, fisher: np.ndarray) -> np.ndarray:
         """Aggregated criterion of many layouts.
 
@@ -303,6 +385,7 @@ class Problem:
             saturated=sat.mean(axis=0),
             unresolved=unresolved,
             unresolved_scenario=worst,
+            failure_values=self.failure_values(pos, gain) if pos.shape[0] + n_inst > 1 else None,
         )
 
 

@@ -88,23 +88,81 @@ class GridObjective:
         Add the tiny prior (greedy/exchange) or not (final values).
     """
 
-    def __init__(self, problem: Problem, rows: np.ndarray, prior: bool = True) -> None:
+    def __init__(
+        self,
+        problem: Problem,
+        rows: np.ndarray,
+        prior: bool = True,
+        robust: bool = False,
+        fixed_info: np.ndarray | None = None,
+    ) -> None:
         self.problem = problem
         self.rows = rows
         self.info = np.einsum("scap,scaq->scpq", rows, rows)  # (S, C, p, p)
-        base = problem.fisher_installed.copy()
+        # Information of probes that every layout has and that may fail: (S, k, p, p).
+        if fixed_info is None:
+            fixed_info = problem.probe_information(np.zeros((0, 3)))
+        self.fixed_info = fixed_info
+        base = fixed_info.sum(axis=1)
         if prior:
             diag = np.diagonal(self.info, axis1=-2, axis2=-1).mean(axis=1)  # (S, p)
             scale = np.where(diag > 0, diag, 1.0) * PRIOR_FRACTION
             base = base + scale[:, :, None] * np.eye(problem.n_params)
         self.base = base
+        self.robust = robust
 
     def matrix(self, chosen: np.ndarray) -> np.ndarray:
         """M_s of a candidate set: ``(k,) int`` → ``(n_scenarios, p, p)``."""
         return self.base + self.info[:, chosen].sum(axis=1)
 
+    def _losses(self, chosen: np.ndarray) -> list[np.ndarray]:
+        """M_s of the set with each one probe (fixed or chosen) lost."""
+        m = self.matrix(chosen)
+        out = [m - self.fixed_info[:, k] for k in range(self.fixed_info.shape[1])]
+        out += [m - self.info[:, c] for c in chosen]
+        return out
+
+    def values(self, m: np.ndarray) -> np.ndarray:
+        """Aggregated criterion of matrices M ``(..., S, p, p)`` → ``(...)``.
+
+        Unlike :meth:`Problem.values` this applies no singularity threshold: with the prior
+        M is positive definite, and the greedy's first picks must be told apart by how much
+        they add although the layout cannot resolve everything yet.
+        """
+        p = self.problem
+        if p.criterion.name == "d":
+            sign, ld = np.linalg.slogdet(m)
+            per = np.where(sign > 0, ld, -np.inf)
+        else:
+            cov = np.linalg.inv(m)
+            c = p.criterion
+            idx = [c.x_index, c.y_index] if c.name == "location" else [c.charge_index]
+            per = np.sqrt(np.maximum(sum(cov[..., i, i] for i in idx), 0.0))
+            if c.name == "charge":
+                per = per / np.abs(p.theta_est[:, c.charge_index])
+        return aggregate(per, p.aggregate, p.criterion.maximise)
+
     def value(self, chosen: np.ndarray) -> float:
-        return float(self.problem.values(self.matrix(chosen)))
+        """Criterion of a candidate set (its worst single loss when robust)."""
+        losses = self._losses(chosen) if self.robust else []
+        if not losses:
+            return float(self.values(self.matrix(chosen)))
+        vals = self.values(np.stack(losses))
+        return float(vals.min() if self.problem.criterion.maximise else vals.max())
+
+    def candidate_values(self, chosen: np.ndarray) -> np.ndarray:
+        """Value of ``chosen`` plus each candidate c, ``(C,)``; worst single loss when robust.
+
+        Losing the added candidate leaves ``chosen``; losing any other probe j is
+        M − A_j + A_c, tried for every c at once by :meth:`add_values`.
+        """
+        if not self.robust:
+            return self.add_values(self.matrix(chosen))
+        worse = np.minimum if self.problem.criterion.maximise else np.maximum
+        out = np.full(self.info.shape[1], float(self.values(self.matrix(chosen))))
+        for m in self._losses(chosen):
+            out = worse(out, self.add_values(m))
+        return out
 
     def add_values(self, m: np.ndarray) -> np.ndarray:
         """Criterion of M_s + A_sc for every candidate c: ``(S, p, p)`` → ``(C,)``.
@@ -171,7 +229,7 @@ def greedy(
         fixed = np.concatenate([installed_m, positions[chosen]])
         allowed = _spacing_mask(positions, fixed, min_spacing)
         allowed[chosen] = False
-        vals = obj.add_values(obj.matrix(np.array(chosen, dtype=int)))
+        vals = obj.candidate_values(np.array(chosen, dtype=int))
         c = _best(vals, allowed, maximise)
         if c < 0:
             raise ValueError(
@@ -210,7 +268,7 @@ def exchange(
             fixed = np.concatenate([installed_m, positions[rest]])
             allowed = _spacing_mask(positions, fixed, min_spacing)
             allowed[rest] = False
-            vals = obj.add_values(obj.matrix(rest))
+            vals = obj.candidate_values(rest)
             c = _best(vals, allowed, maximise)
             if c < 0 or c == chosen[i]:
                 continue
@@ -389,7 +447,7 @@ def refine(
     site = problem.site
     maximise = problem.criterion.maximise
     layout = layout.copy()
-    current = float(problem.layout_values(layout[None], gain[None])[0])
+    current = float(problem.objective(layout[None], gain[None])[0])
     movable = [i for i in range(layout.shape[0]) if site.regions[regions[i]].kind != "points"]
     if not movable or budget <= 0:
         return layout, current, 0
@@ -412,6 +470,7 @@ def refine(
         n_here = min(per_probe, budget - used)
         best_pos, best_val = layout[i].copy(), current
         spent = 0
+        worst_y = -np.inf
         while spent < n_here:
             if stop is not None and stop():
                 break
@@ -420,15 +479,20 @@ def refine(
             cand = region.from_unit(us)  # (k, 3)
             trial = np.repeat(layout[None], k, axis=0)
             trial[:, i] = cand
-            vals = problem.layout_values(trial, np.broadcast_to(gain, trial.shape[:2]))
+            vals = problem.objective(trial, np.broadcast_to(gain, trial.shape[:2]))
             ok = site.allowed(cand) & site.spacing_ok(trial)
             for v, good in zip(vals, ok, strict=True):
                 if record is not None:
                     record(float(v) if good else float("nan"))
-            # Infeasible or singular points get a penalty just worse than the current value.
+            # Infeasible or singular points get a finite penalty just worse than anything seen
+            # (the GP needs finite values).
             y = -vals if maximise else vals
             bad = ~ok | ~np.isfinite(y)
-            y = np.where(bad, (-current if maximise else current) + 1.0, y)
+            seen = np.concatenate([y[~bad], [-current if maximise else current]])
+            seen = seen[np.isfinite(seen)]
+            penalty = (seen.max() + 1.0) if seen.size else 1e6
+            worst_y = max(worst_y, penalty)
+            y = np.where(bad, worst_y, y)
             opt.tell([list(u) for u in us], [float(v) for v in y])
             for j in np.nonzero(~bad)[0]:
                 if problem.better(vals[j], best_val):
@@ -508,16 +572,15 @@ def plan(
     cand = site.candidate_grid(design.grid_spacing_m, target=candidate_target)
     gains_c = problem.new_gain * cand.gain
     rows, _ = problem.rows(cand.positions_m, gains_c)
-    obj = GridObjective(problem, rows, prior=True)
+    robust = bool(design.tolerate_failures)
+    obj = GridObjective(problem, rows, prior=True, robust=robust)
     tick("candidate grid", 1, 1)
 
     min_sp = cfg.probes.min_spacing_m
     inst = problem.installed_m
 
-    def exact(chosen: np.ndarray) -> float:
-        return float(
-            problem.layout_values(cand.positions_m[chosen][None], gains_c[chosen][None])[0]
-        )
+    def exact(positions: np.ndarray, gains: np.ndarray) -> float:
+        return float(problem.objective(positions[None], gains[None])[0])
 
     stages: list[tuple[str, float]] = []
     baselines: list[Baseline] = []
@@ -531,7 +594,7 @@ def plan(
         start = np.unique(start)[:count]
     tick("greedy", 0, count)
     chosen = greedy(obj, count, cand.positions_m, min_sp, inst, start=start)
-    greedy_value = exact(chosen)
+    greedy_value = exact(cand.positions_m[chosen], gains_c[chosen])
     hist.append(greedy_value)
     stages.append(("greedy", greedy_value))
     baselines.append(Baseline("greedy", greedy_value, cand.positions_m[chosen].copy()))
@@ -547,7 +610,7 @@ def plan(
         stop=halted,
         on_swap=lambda v: tick("exchange", 0, 1),
     )
-    exchange_value = exact(chosen)
+    exchange_value = exact(cand.positions_m[chosen], gains_c[chosen])
     hist.append(exchange_value)
     stages.append(("exchange", exchange_value))
     baselines.append(Baseline("exchange", exchange_value, cand.positions_m[chosen].copy()))
@@ -557,9 +620,16 @@ def plan(
     gain = gains_c[chosen].copy()
     value = exchange_value
     if warm_start_m is not None:
-        warm = np.asarray(warm_start_m, dtype=float).reshape(-1, 3)
+        # The stored layout (exact positions, perhaps off the grid) stays in the race; a
+        # smaller one (a budget's previous count) is extended greedily from the grid.
+        warm = np.asarray(warm_start_m, dtype=float).reshape(-1, 3)[:count]
         warm_gain = problem.gain_at(warm)
-        warm_value = float(problem.layout_values(warm[None], warm_gain[None])[0])
+        if warm.shape[0] < count:
+            extra = _extend(problem, obj, cand, gains_c, warm, warm_gain, count, min_sp, robust)
+            warm = np.concatenate([warm, cand.positions_m[extra]])
+            warm_gain = np.concatenate([warm_gain, gains_c[extra]])
+        warm_value = exact(warm, warm_gain)
+        hist.append(warm_value)
         if problem.better(warm_value, value):
             layout, gain, value = warm, warm_gain, warm_value
 
@@ -594,7 +664,7 @@ def plan(
         tick("baselines", 0, 2)
         try:
             regular = site.regular_layout(count)
-            rv = float(problem.layout_values(regular[None], problem.gain_at(regular)[None])[0])
+            rv = exact(regular, problem.gain_at(regular))
             baselines.append(Baseline("regular", rv, regular))
         except ValueError:
             pass  # no regular layout fits the rules: nothing to compare
@@ -602,7 +672,7 @@ def plan(
         if n_random > 0:
             rand = site.random_layouts(n_random, count, rng)
             g = problem.gain_at(rand.reshape(-1, 3)).reshape(rand.shape[:2])
-            rvals = problem.layout_values(rand, g)
+            rvals = problem.objective(rand, g)
             k = int(np.argmax(rvals) if maximise else np.argmin(rvals))
             baselines.append(Baseline(f"best of {n_random} random", float(rvals[k]), rand[k]))
         tick("baselines", 2, 2)
@@ -619,6 +689,20 @@ def plan(
         seconds=time.perf_counter() - t0,
     )
     return PlanOutcome(layout, gain, score, info, complete=not stopped)
+
+
+def _extend(problem, obj, cand, gains_c, fixed_m, fixed_gain, count, min_sp, robust):
+    """Greedy grid additions to a fixed partial layout, ``(count − k,) int`` candidates."""
+    fixed_info = np.concatenate(
+        [
+            obj.fixed_info,
+            problem.probe_information(fixed_m, fixed_gain)[:, obj.fixed_info.shape[1] :],
+        ],
+        axis=1,
+    )
+    ext = GridObjective(problem, obj.rows, prior=True, robust=robust, fixed_info=fixed_info)
+    fixed = np.concatenate([problem.installed_m, fixed_m])
+    return greedy(ext, count - fixed_m.shape[0], cand.positions_m, min_sp, fixed)
 
 
 def _region_of(problem: Problem, layout: np.ndarray, cand) -> np.ndarray:
