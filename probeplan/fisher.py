@@ -13,8 +13,8 @@ Criteria (the contract's exact definitions), per scenario s:
 
 Aggregates over scenarios: ``mean``, ``worst`` (min of d, max of the others) and
 ``quantile:q``, the q-quantile of the *badness*: for the error criteria the q-quantile, for
-``d`` the (1 − q)-quantile, so that ``quantile:0.9`` reads "90 % of scenarios do at least this
-well" for every criterion. A singular J_s scores −inf (d) or +inf (the others).
+``d`` that of −log det, negated, so that ``quantile:0.9`` reads "90 % of scenarios do at least
+this well" for every criterion. A singular J_s scores −inf (d) or +inf (the others).
 
 Inverses are taken on the correlation-scaled matrix D J D with D = diag(J)^(-1/2), so that
 parameters in coulombs, metres and V/m do not ruin the conditioning.
@@ -211,9 +211,12 @@ def aggregate(values: np.ndarray, how: str, maximise: bool) -> np.ndarray:
         return out
     if kind == "worst":
         return np.min(values, axis=-1) if maximise else np.max(values, axis=-1)
-    level = 1.0 - q if maximise else q
-    # 'inverted_cdf' keeps ±inf from poisoning a quantile through interpolation.
-    return np.quantile(values, level, axis=-1, method="inverted_cdf")
+    # 'inverted_cdf' keeps ±inf from poisoning a quantile through interpolation. For d the
+    # badness is −log det: negate, not the (1 − q)-quantile, which is one order statistic
+    # lower whenever n_scenarios·(1 − q) is a whole number.
+    if maximise:
+        return -np.quantile(-values, q, axis=-1, method="inverted_cdf")
+    return np.quantile(values, q, axis=-1, method="inverted_cdf")
 
 
 def d_ratio(value_a: float, value_b: float, n_params: int) -> float:
