@@ -1,0 +1,205 @@
+"""Instrumentation budgets: plan every (count, grade) option and compare cost with quality.
+
+The sweep is a set of independent *chains*, one per meter grade; a chain plans its counts in
+increasing order, each plan starting from the previous (smaller) one, so that more meters of one
+grade never score worse. Chains take only plain, picklable arguments (the config text, a grade
+name, the counts) and return plain data, so any ``concurrent.futures.Executor`` runs them —
+the default is a process pool on the local cores, and a Dask ``distributed.Client`` (which has
+the same ``submit`` interface) can take its place without changing this module.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Callable
+from concurrent.futures import Executor, ProcessPoolExecutor, as_completed
+from dataclasses import dataclass
+
+import numpy as np
+
+from .config import parse_config
+from .errors import InputError
+from .problem import build_problem
+from .result import BudgetTable
+from .search import plan
+
+
+@dataclass(frozen=True)
+class OptionPlan:
+    """One planned option of the sweep (plain data: crosses process boundaries)."""
+
+    count: int
+    grade: str
+    cost: float
+    value: float
+    positions_m: np.ndarray  # (count, 3)
+    gain: np.ndarray  # (count,)
+
+
+def plan_chain(
+    config_text: str,
+    config_path: str,
+    grade_name: str,
+    counts: tuple[int, ...],
+    evaluations: int | None = None,
+) -> list[OptionPlan]:
+    """Plan one grade at increasing counts, each starting from the previous plan.
+
+    Parameters
+    ----------
+    config_text, config_path : str
+        The config (re-parsed in the worker, so the call pickles cheaply).
+    grade_name : str
+    counts : tuple of int, increasing
+    evaluations : int or None
+        Refinement evaluations per plan (default: the config's).
+
+    Returns
+    -------
+    list of OptionPlan, one per count.
+    """
+    config = parse_config(config_text, config_path)
+    grade = next(g for g in config.grades if g.name == grade_name)
+    out: list[OptionPlan] = []
+    warm = None
+    for count in counts:
+        problem = build_problem(config, count=count, grade=grade)
+        outcome = plan(problem, warm_start_m=warm, evaluations=evaluations, random_layouts=0)
+        warm = outcome.positions_m
+        out.append(
+            OptionPlan(
+                count=count,
+                grade=grade_name,
+                cost=float(count * grade.cost),
+                value=float(outcome.score.value),
+                positions_m=outcome.positions_m,
+                gain=outcome.gain,
+            )
+        )
+    return out
+
+
+def pareto_front(cost: np.ndarray, value: np.ndarray, maximise: bool) -> np.ndarray:
+    """Options no other option dominates (cheaper or equal and better or equal, one strictly);
+    options with a non-finite value (a singular layout) are never on the front.
+
+    Parameters
+    ----------
+    cost, value : (n_options,) float
+    maximise : bool
+        Larger values are better (``d``).
+
+    Returns
+    -------
+    (n_options,) bool
+    """
+    v = value if maximise else -value
+    finite = np.isfinite(v)
+    v = np.where(finite, v, -np.inf)
+    no_worse = (cost[None, :] <= cost[:, None]) & (v[None, :] >= v[:, None])
+    strictly = (cost[None, :] < cost[:, None]) | (v[None, :] > v[:, None])
+    dominated = np.any(no_worse & strictly, axis=1)
+    # A layout that cannot resolve the parameters (value ±inf) is no trade-off worth showing.
+    return ~dominated & finite
+
+
+def cheapest_meeting(cost: np.ndarray, value: np.ndarray, meets: np.ndarray, maximise: bool) -> int:
+    """Row of the cheapest option meeting the target (the better value on a tie), −1 if none."""
+    rows = np.nonzero(meets)[0]
+    if rows.size == 0:
+        return -1
+    v = value[rows] if maximise else -value[rows]
+    order = np.lexsort((-v, cost[rows]))
+    return int(rows[order[0]])
+
+
+def run_budget(
+    config,
+    *,
+    executor: Executor | None = None,
+    progress: Callable[[str, int, int], None] | None = None,
+    evaluations: int | None = None,
+) -> BudgetTable:
+    """Plan every (count, grade) option of the config and tabulate cost against quality.
+
+    Parameters
+    ----------
+    config : probeplan.config.Config
+        Needs ``[budget]`` and at least one ``[[grade]]``.
+    executor : concurrent.futures.Executor or None
+        Runs the chains; default: a process pool with one worker per core (at most one per
+        grade). Pass e.g. a Dask client to spread the sweep over a cluster.
+    progress : callable(stage, done, total) or None
+    evaluations : int or None
+        Refinement evaluations per plan (default: the config's).
+
+    Returns
+    -------
+    BudgetTable
+        Rows sorted by cost (then grade name, then count).
+    """
+    if config.budget is None or not config.grades:
+        raise InputError(
+            f"{config.path}: `budget` needs a [budget] table with `counts` and at least one "
+            "[[grade]] (name, noise_v_per_m, cost)."
+        )
+    counts = tuple(sorted(config.budget.counts))
+    grades = [g.name for g in config.grades]
+    total = len(counts) * len(grades)
+    args = [(config.text, str(config.path), g, counts, evaluations) for g in grades]
+    results: list[OptionPlan] = []
+    if progress is not None:
+        progress("budget options", 0, total)
+    own = executor is None
+    if own:
+        workers = max(1, min(len(grades), os.cpu_count() or 1))
+        executor = ProcessPoolExecutor(max_workers=workers) if workers > 1 else None
+    try:
+        if executor is None:
+            for a in args:
+                results += plan_chain(*a)
+                if progress is not None:
+                    progress("budget options", len(results), total)
+        else:
+            futures = [executor.submit(plan_chain, *a) for a in args]
+            for fut in as_completed(futures):
+                results += fut.result()
+                if progress is not None:
+                    progress("budget options", len(results), total)
+    finally:
+        if own and executor is not None:
+            executor.shutdown(cancel_futures=True)
+    return tabulate(results, config)
+
+
+def tabulate(options: list[OptionPlan], config) -> BudgetTable:
+    """Sort options by cost and mark the target, the Pareto front and the cheapest winner."""
+    options = sorted(options, key=lambda o: (o.cost, o.grade, o.count))
+    maximise = config.design.criterion == "d"
+    cost = np.array([o.cost for o in options], dtype=float)
+    value = np.array([o.value for o in options], dtype=float)
+    target = config.budget.target
+    if target is None:
+        meets = np.zeros(len(options), dtype=bool)
+    else:
+        meets = value >= target if maximise else value <= target
+    return BudgetTable(
+        count=np.array([o.count for o in options], dtype=int),
+        grade=np.array([o.grade for o in options], dtype=object),
+        cost=cost,
+        value=value,
+        meets_target=meets,
+        pareto=pareto_front(cost, value, maximise),
+        cheapest=cheapest_meeting(cost, value, meets, maximise),
+        target=target,
+        layouts=tuple(o.positions_m for o in options),
+    )
+
+
+def chosen_option(table: BudgetTable, maximise: bool) -> int:
+    """Row whose layout the budget result scores in full: the cheapest meeting the target,
+    else the best-valued option."""
+    if table.cheapest >= 0:
+        return table.cheapest
+    v = np.where(np.isnan(table.value), -np.inf, table.value if maximise else -table.value)
+    return int(np.argmax(v))
