@@ -54,6 +54,9 @@ class SearchInfo:
         Criterion after each stage of the search ("greedy", "exchange", "refine"), in order.
     seconds : float
         Wall time of the search.
+    objective : str
+        What the search optimised: "criterion", or "worst single loss" when the config asks
+        to tolerate one failed probe (the stage and baseline values are then of that).
     """
 
     history: np.ndarray
@@ -64,6 +67,7 @@ class SearchInfo:
     baselines: tuple[Baseline, ...] = ()
     stages: tuple[tuple[str, float], ...] = ()
     seconds: float = 0.0
+    objective: str = "criterion"
 
 
 @dataclass(frozen=True, eq=False)
@@ -97,6 +101,79 @@ class BudgetTable:
 
 
 @dataclass(frozen=True, eq=False)
+class Changes:
+    """What changed against an earlier result (``--from OLD.h5``).
+
+    Attributes
+    ----------
+    old_path : str
+    mode : {"installed", "start"}
+        The old probes were kept fixed as installed, or used as the search's starting layout.
+    old_value : float
+        The criterion stored in the old file (under the old config).
+    old_rescored : float
+        The old layout scored under the current config (equal to ``old_value`` when nothing
+        changed).
+    kept_m : (n_kept, 3) float
+    moved_from_m, moved_to_m : (n_moved, 3) float
+    added_m : (n_added, 3) float
+    removed_m : (n_removed, 3) float
+    """
+
+    old_path: str
+    mode: str
+    old_value: float
+    old_rescored: float
+    kept_m: np.ndarray
+    moved_from_m: np.ndarray
+    moved_to_m: np.ndarray
+    added_m: np.ndarray
+    removed_m: np.ndarray
+
+
+def compare_layouts(
+    old_m: np.ndarray, new_m: np.ndarray, move_radius_m: float, tol_m: float = 1e-6
+) -> dict[str, np.ndarray]:
+    """Match an old and a new layout probe by probe.
+
+    Probes are paired by the assignment that minimises the total distance (Hungarian method,
+    scipy.optimize.linear_sum_assignment). A pair closer than ``tol_m`` is kept, one closer
+    than ``move_radius_m`` moved; the other old probes are removed, the other new ones added.
+
+    Parameters
+    ----------
+    old_m : (n_old, 3) float
+    new_m : (n_new, 3) float
+    move_radius_m : float
+    tol_m : float
+
+    Returns
+    -------
+    dict with ``kept_m``, ``moved_from_m``, ``moved_to_m``, ``added_m``, ``removed_m``
+    (each (k, 3) float).
+    """
+    from scipy.optimize import linear_sum_assignment
+
+    old_m = np.asarray(old_m, dtype=float).reshape(-1, 3)
+    new_m = np.asarray(new_m, dtype=float).reshape(-1, 3)
+    dist = np.linalg.norm(old_m[:, None, :] - new_m[None, :, :], axis=-1)
+    r, c = linear_sum_assignment(dist) if dist.size else (np.zeros(0, int), np.zeros(0, int))
+    d = dist[r, c]
+    kept = d <= tol_m
+    moved = (d > tol_m) & (d <= move_radius_m)
+    paired_old = set(r[kept | moved].tolist())
+    paired_new = set(c[kept | moved].tolist())
+    empty = np.zeros((0, 3))
+    return {
+        "kept_m": new_m[c[kept]] if kept.any() else empty,
+        "moved_from_m": old_m[r[moved]] if moved.any() else empty,
+        "moved_to_m": new_m[c[moved]] if moved.any() else empty,
+        "added_m": new_m[[j for j in range(len(new_m)) if j not in paired_new]].reshape(-1, 3),
+        "removed_m": old_m[[i for i in range(len(old_m)) if i not in paired_old]].reshape(-1, 3),
+    }
+
+
+@dataclass(frozen=True, eq=False)
 class Result:
     """Everything a command produced, with its provenance.
 
@@ -116,6 +193,10 @@ class Result:
         False when the run was interrupted and holds the best layout found so far.
     extra : dict
         Named figures worth keeping (e.g. the D-efficiency), str -> float.
+    changes : Changes or None
+        What changed against an earlier result (``--from``).
+    simulation : probeplan.simulate.Simulation or None
+        Achieved errors of simulated fits beside the bounds (``simulate``).
     """
 
     command: str
@@ -132,6 +213,8 @@ class Result:
     budget: BudgetTable | None = None
     complete: bool = True
     extra: dict = field(default_factory=dict)
+    changes: Changes | None = None
+    simulation: object | None = None
 
 
 def make_result(
@@ -143,6 +226,8 @@ def make_result(
     budget: BudgetTable | None = None,
     complete: bool = True,
     extra: dict | None = None,
+    changes: Changes | None = None,
+    simulation: object | None = None,
 ) -> Result:
     """Build the one :class:`Result` of a command from its config and outputs."""
     from . import __version__
@@ -162,4 +247,6 @@ def make_result(
         budget=budget,
         complete=complete,
         extra=dict(extra or {}),
+        changes=changes,
+        simulation=simulation,
     )

@@ -687,6 +687,7 @@ def plan(
         baselines=tuple(baselines),
         stages=tuple(stages),
         seconds=time.perf_counter() - t0,
+        objective="worst single loss" if robust else "criterion",
     )
     return PlanOutcome(layout, gain, score, info, complete=not stopped)
 
