@@ -1,0 +1,353 @@
+"""The layout search: greedy and exchange against brute force, the greedy guarantee, the
+relaxation bound, mounting rules, a known-optimal geometry and determinism.
+
+Every site, charge and number below is invented for the tests (a fictional site).
+"""
+
+from __future__ import annotations
+
+import functools
+import itertools
+import math
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from probeplan.config import parse_config
+from probeplan.fisher import d_ratio
+from probeplan.problem import build_problem
+from probeplan.search import GridObjective, exchange, greedy, plan, relaxation_bound
+
+
+def config_text(
+    *,
+    seed: int = 0,
+    count: int = 3,
+    criterion: str = "d",
+    aggregate: str = "mean",
+    scenarios: int = 6,
+    estimate: str = '["charge", "x", "z"]',
+    grid_spacing_m: float | None = None,
+    extra_probes: str = "",
+    extra_site: str = "",
+    background: str = "",
+    evaluations: int = 0,
+) -> str:
+    spacing = f"grid_spacing_m = {grid_spacing_m}" if grid_spacing_m else ""
+    return f"""
+seed = {seed}
+[ground]
+z_m = 0.0
+[probes]
+count = {count}
+component = "z"
+noise_v_per_m = 20.0
+relative_noise = 0.02
+{extra_probes}
+[[region]]
+kind = "rectangle"
+min_m = [-6000.0, -6000.0]
+max_m = [6000.0, 6000.0]
+z_m = 0.0
+{extra_site}
+[[source]]
+kind = "point"
+charge_c = -20.0
+center_m = [400.0, -300.0, 6000.0]
+estimate = {estimate}
+charge_range_c = [-30.0, -10.0]
+center_range_m = [[-3000.0, 3000.0], [-3000.0, 3000.0], [5000.0, 8000.0]]
+{background}
+[design]
+criterion = "{criterion}"
+aggregate = "{aggregate}"
+scenarios = {scenarios}
+evaluations = {evaluations}
+random_layouts = 50
+{spacing}
+"""
+
+
+def grid_problem(seed: int, spacing_m: float = 2000.0, count: int = 3, **kw):
+    """A problem, its candidate lattice (7 × 7 = 49 points at 2 km) and the one-probe rows."""
+    cfg = parse_config(
+        config_text(seed=seed, count=count, grid_spacing_m=spacing_m, **kw), "grid.toml"
+    )
+    problem = build_problem(cfg)
+    cand = problem.site.candidate_grid(spacing_m)
+    rows, _ = problem.rows(cand.positions_m)
+    return problem, cand, rows
+
+
+def all_subset_values(obj: GridObjective, count: int, problem=None):
+    """Every subset of ``count`` candidates and its value (Problem.values: the contract's
+    criterion, or the objective's own when ``problem`` is None), batched."""
+    combos = np.array(list(itertools.combinations(range(obj.info.shape[1]), count)))
+    m = obj.base[None] + np.moveaxis(obj.info[:, combos].sum(axis=2), 1, 0)  # (n, S, p, p)
+    vals = problem.values(m) if problem is not None else obj.values(m)
+    return combos, vals
+
+
+# --------------------------------------------------------------------------------------------
+# Greedy + exchange against brute force
+# --------------------------------------------------------------------------------------------
+
+# Seeds whose scenario draws let greedy + exchange find the brute-force optimum (measured:
+# seeds 1–9 do; on seed 0 the exchange stops in a local optimum 0.066 short in log det, a
+# D-efficiency of 0.978 — single swaps cannot always reach the best set).
+SEEDS = tuple(range(8))
+FINDS_OPTIMUM = tuple(s for s in SEEDS if s != 0)
+
+
+@pytest.mark.parametrize("seed", SEEDS)
+def test_greedy_exchange_against_brute_force(seed):
+    problem, cand, rows = grid_problem(seed)
+    assert 40 <= cand.n_candidates <= 60
+    obj = GridObjective(problem, rows, prior=True)
+    chosen = greedy(obj, 3, cand.positions_m, 0.0, problem.installed_m)
+    swapped = exchange(obj, chosen, cand.positions_m, 0.0, problem.installed_m)
+    assert len(set(swapped.tolist())) == 3
+
+    exact = GridObjective(problem, rows, prior=False)
+    _, vals = all_subset_values(exact, 3, problem)
+    best = vals.max()
+    value_greedy = problem.layout_values(cand.positions_m[chosen][None])[0]
+    value = problem.layout_values(cand.positions_m[swapped][None])[0]
+    assert value >= value_greedy - 1e-9  # exchange never loses what greedy found
+    assert value <= best + 1e-9
+    # Always close: D-efficiency against the true grid optimum (per-parameter information).
+    assert d_ratio(value, best, problem.n_params) >= 0.97
+    if seed in FINDS_OPTIMUM:
+        assert value == pytest.approx(best, abs=1e-9)
+
+
+@pytest.mark.parametrize("seed", [0, 2])
+@pytest.mark.parametrize("prior_weight", [None, 1.0])
+def test_greedy_reaches_the_submodular_guarantee(seed, prior_weight):
+    # Nemhauser, Wolsey & Fisher (1978), Math. Programming 14: for a monotone submodular f
+    # and a cardinality constraint k, the greedy set S_g satisfies
+    #   f(S_g) − f(∅) ≥ (1 − 1/e) (f(S*) − f(∅)),
+    # with S* the best set of size k. Here f(S) = mean_s log det(P_s + Σ_{c∈S} A_sc), P_s ≻ 0 a
+    # prior: log det of a PSD sum is monotone and submodular (Shamaiah, Banerjee & Vikalo 2010),
+    # and a mean of submodular functions is submodular. No spacing rule (a uniform matroid).
+    # The search's own tiny prior (None) makes f(∅) very negative and the check easy; a prior
+    # the size of one probe's information (1.0) makes it a real test of the greedy steps.
+    problem, cand, rows = grid_problem(seed)
+    obj = GridObjective(problem, rows, prior=True)
+    if prior_weight is not None:
+        diag = np.diagonal(obj.info, axis1=-2, axis2=-1).mean(axis=1)  # (S, p)
+        obj.base = problem.fisher_installed + prior_weight * diag[:, :, None] * np.eye(
+            problem.n_params
+        )
+    chosen = greedy(obj, 3, cand.positions_m, 0.0, problem.installed_m)
+    _, vals = all_subset_values(obj, 3)
+    f_empty = obj.value(np.zeros(0, dtype=int))
+    f_greedy = obj.value(chosen)
+    f_opt = vals.max()
+    assert f_greedy <= f_opt + 1e-9
+    assert f_greedy - f_empty >= (1.0 - 1.0 / math.e) * (f_opt - f_empty)
+
+
+# --------------------------------------------------------------------------------------------
+# The relaxation bound
+# --------------------------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("seed", [0, 2])
+def test_relaxation_bound_is_above_every_subset(seed):
+    # Joshi & Boyd (2009): relaxing the 0/1 selection to w ∈ [0, 1], Σ w = k gives a concave
+    # problem whose optimum bounds every subset's mean log det from above; the Frank–Wolfe gap
+    # certifies the bound however early the solver stops.
+    problem, cand, rows = grid_problem(seed)
+    exact = GridObjective(problem, rows, prior=False)
+    relax = relaxation_bound(exact.info, problem.fisher_installed, 3)
+    _, vals = all_subset_values(exact, 3, problem)
+    assert relax.bound >= vals.max()
+    assert relax.bound == pytest.approx(relax.value + relax.gap)
+    assert np.all((relax.weights >= -1e-12) & (relax.weights <= 1 + 1e-12))
+    assert relax.weights.sum() == pytest.approx(3.0)
+    # And not absurdly loose on this small grid (D-efficiency of the best subset).
+    assert d_ratio(vals.max(), relax.bound, problem.n_params) >= 0.9
+
+
+@functools.cache
+def big_problem():
+    """A 16 × 16 lattice (256 candidates), 6 probes, 5 parameters, and its relaxation bound."""
+    problem, cand, rows = grid_problem(
+        5, spacing_m=800.0, count=6, background="[background]\nfield_v_per_m = [0.0, 0.0, -120.0]"
+    )
+    obj = GridObjective(problem, rows, prior=False)
+    return problem, cand, rows, relaxation_bound(obj.info, problem.fisher_installed, 6)
+
+
+@settings(max_examples=30, deadline=None)
+@given(st.data())
+def test_relaxation_bound_is_above_random_subsets(data):
+    problem, cand, _, relax = big_problem()
+    n_c = cand.n_candidates
+    assert n_c > 200
+    chosen = np.array(
+        data.draw(st.lists(st.integers(0, n_c - 1), min_size=6, max_size=6, unique=True))
+    )
+    value = problem.layout_values(cand.positions_m[chosen][None])[0]
+    assert value <= relax.bound
+
+
+def test_relaxation_bound_is_above_the_search_result():
+    problem, cand, rows, relax = big_problem()
+    obj = GridObjective(problem, rows, prior=True)
+    chosen = greedy(obj, 6, cand.positions_m, 0.0, problem.installed_m)
+    chosen = exchange(obj, chosen, cand.positions_m, 0.0, problem.installed_m)
+    value = problem.layout_values(cand.positions_m[chosen][None])[0]
+    assert value <= relax.bound
+    # Design target (design notes): the grid search lands within a few % of the bound.
+    assert d_ratio(value, relax.bound, problem.n_params) >= 0.95
+
+
+def test_relaxation_bound_is_tight_when_every_candidate_is_taken():
+    # With count = n_candidates the only feasible set is all of them (w = 1): the relaxation
+    # has a single point, so its bound must equal that layout's value (within the solver's
+    # certified gap, n_params × 2e-3 by default).
+    problem, cand, rows = grid_problem(1, spacing_m=4000.0)
+    n_c = cand.n_candidates
+    assert n_c == 16
+    exact = GridObjective(problem, rows, prior=False)
+    relax = relaxation_bound(exact.info, problem.fisher_installed, n_c)
+    everything = problem.layout_values(cand.positions_m[None])[0]
+    assert relax.bound >= everything - 1e-9
+    assert relax.bound - everything <= problem.n_params * 2e-3 + 1e-9
+    np.testing.assert_allclose(relax.weights, 1.0, atol=1e-9)
+
+
+# --------------------------------------------------------------------------------------------
+# The whole plan
+# --------------------------------------------------------------------------------------------
+
+RULES = dict(
+    count=4,
+    estimate='["charge", "x", "y", "z"]',
+    extra_probes="""min_spacing_m = 1500.0
+[[probes.installed]]
+position_m = [-2000.0, -1500.0, 0.0]""",
+    extra_site="""
+[[region]]
+kind = "segment"
+start_m = [-5000.0, 6500.0, 10.0]
+end_m = [5000.0, 6500.0, 10.0]
+gain = 1.8
+
+[[keepout]]
+kind = "rectangle"
+min_m = [-1000.0, -1000.0]
+max_m = [1500.0, 1000.0]
+
+[[keepout]]
+kind = "polygon"
+vertices_m = [[2000.0, -6000.0], [6000.0, -6000.0], [6000.0, -2000.0]]
+""",
+    background="[background]\nfield_v_per_m = [0.0, 0.0, -120.0]",
+)
+
+
+def assert_follows_the_rules(problem, layout):
+    site = problem.site
+    assert layout.shape == (problem.count, 3)
+    assert site.allowed(layout).all(), site.violations(layout)
+    assert site.spacing_ok(layout[None])[0], site.violations(layout)
+    assert site.violations(layout) == []
+
+
+@pytest.mark.parametrize(
+    ("criterion", "aggregate"),
+    [
+        ("d", "mean"),
+        ("location", "mean"),
+        ("charge", "mean"),
+        ("d", "worst"),
+        ("location", "quantile:0.8"),
+        ("charge", "worst"),
+    ],
+)
+def test_plan_keeps_mounting_rules_for_every_criterion(criterion, aggregate):
+    cfg = parse_config(
+        config_text(criterion=criterion, aggregate=aggregate, scenarios=5, **RULES), "rules.toml"
+    )
+    problem = build_problem(cfg)
+    out = plan(problem, evaluations=0, random_layouts=50, candidate_target=400)
+    assert out.complete
+    assert_follows_the_rules(problem, out.positions_m)
+    for baseline in out.info.baselines:
+        assert_follows_the_rules(problem, baseline.positions_m)
+    # The bound exists for d with the mean aggregate only (contract: "where computed").
+    if (criterion, aggregate) == ("d", "mean"):
+        assert out.info.bound is not None and out.score.value <= out.info.bound
+    else:
+        assert out.info.bound is None
+    # The plan's score is the criterion of the returned layout, and no stage made it worse.
+    assert np.isfinite(out.score.value)
+    again = problem.layout_values(out.positions_m[None], out.gain[None])[0]
+    assert out.score.value == pytest.approx(again, rel=1e-9)
+    stages = dict(out.info.stages)
+    worse = (lambda a, b: a < b - 1e-9) if criterion == "d" else (lambda a, b: a > b + 1e-9)
+    assert not worse(stages["exchange"], stages["greedy"])
+    assert not worse(out.score.value, stages["exchange"])
+    # Gains follow the mounting region (a meter on the 10 m rail reads 1.8 × the field).
+    on_rail = np.isclose(out.positions_m[:, 1], 6500.0)
+    np.testing.assert_allclose(out.gain, np.where(on_rail, 1.8, 1.0))
+
+
+def test_one_charge_over_a_disc_gives_a_symmetric_layout():
+    # One charge straight above the centre of a disc-shaped region: the problem is invariant
+    # under rotations about the vertical axis, and a D-optimal layout for charge and position
+    # spreads the meters evenly around the centre (a ring, possibly with one under the charge).
+    radius = 5000.0
+    ang = np.arange(32) * 2 * np.pi / 32
+    vertices = ", ".join(f"[{radius * np.cos(a):.3f}, {radius * np.sin(a):.3f}]" for a in ang)
+    text = f"""
+seed = 2
+[ground]
+z_m = 0.0
+[probes]
+count = 6
+component = "z"
+noise_v_per_m = 20.0
+[[region]]
+kind = "polygon"
+vertices_m = [{vertices}]
+z_m = 0.0
+[[source]]
+kind = "point"
+charge_c = -20.0
+center_m = [0.0, 0.0, 6000.0]
+estimate = ["charge", "x", "y", "z"]
+[design]
+scenarios = 1
+evaluations = 0
+random_layouts = 50
+"""
+    problem = build_problem(parse_config(text, "disc.toml"))
+    out = plan(problem, candidate_target=600)
+    pos = out.positions_m
+    assert_follows_the_rules(problem, pos)
+    assert np.linalg.norm(pos[:, :2].mean(axis=0)) < 0.1 * radius
+    r = np.hypot(pos[:, 0], pos[:, 1])
+    ring = np.sort(np.arctan2(pos[r > 0.25 * radius, 1], pos[r > 0.25 * radius, 0]))
+    assert ring.size >= 4
+    assert np.std(r[r > 0.25 * radius]) < 0.1 * np.mean(r[r > 0.25 * radius])
+    gaps = np.diff(np.concatenate([ring, [ring[0] + 2 * np.pi]]))
+    assert gaps.max() < 1.5 * 2 * np.pi / ring.size  # evenly around, no empty sector
+    assert d_ratio(out.score.value, out.info.bound, problem.n_params) >= 0.95
+
+
+def test_same_seed_same_layout_to_the_bit():
+    cfg = parse_config(config_text(scenarios=4, evaluations=4, **RULES), "again.toml")
+    first = plan(build_problem(cfg), candidate_target=300)
+    second = plan(build_problem(cfg), candidate_target=300)
+    assert first.positions_m.tobytes() == second.positions_m.tobytes()
+    assert first.info.history.tobytes() == second.info.history.tobytes()
+    assert first.score.value == second.score.value
+    assert [b.positions_m.tobytes() for b in first.info.baselines] == [
+        b.positions_m.tobytes() for b in second.info.baselines
+    ]
