@@ -1,0 +1,579 @@
+"""The terminal summary, the progress bar and the error lines: the only module that prints.
+
+Everything here reads a :class:`~probeplan.result.Result` (fresh from a command or read back from
+a file by ``probeplan show``) and prints it with rich. Tables fit an 80-column terminal; status
+words carry the information, colour only repeats it.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import math
+import os
+import sys
+import traceback
+from collections.abc import Callable, Iterator
+
+import numpy as np
+from rich import box
+from rich.console import Console
+from rich.panel import Panel
+from rich.table import Table
+from rich.text import Text
+
+from .result import Result
+from .store import param_unit, probe_names
+
+#: The line every summary carries under its numbers (the contract asks for it wherever a
+#: field value is printed).
+SIGN_LINE = "Fields: physics sign convention, E points away from positive charge; z up."
+
+#: Caution panels by the config's `caution`; they defer to codes, standards and qualified
+#: practice because the tool only plans instruments.
+CAUTIONS: dict[str, str] = {
+    "lightning": (
+        "probeplan plans instrument positions; it does not make lightning-safety decisions. "
+        "Follow local codes, the applicable standards and qualified, licensed practice."
+    ),
+    "esd": (
+        "probeplan plans instrument positions; it does not make electrostatic-ignition or "
+        "ESD-compliance decisions. Follow local codes, the applicable standards (hazardous "
+        "areas, electrostatic hazards) and qualified, licensed practice."
+    ),
+    "high-voltage": (
+        "probeplan plans instrument positions; it does not make high-voltage safety decisions "
+        "(clearances, earthing, access). Follow local codes, the applicable standards and "
+        "qualified, licensed practice."
+    ),
+}
+
+_CRITERION_TEXT = {
+    "d": "D-optimal: log det of the Fisher information (larger is better)",
+    "location": "location error of source 0: sqrt(C_xx + C_yy) (smaller is better)",
+    "charge": "relative charge error of source 0: sqrt(C_qq)/|q| (smaller is better)",
+}
+_CRITERION_UNIT = {"d": "log det, SI units", "location": "m", "charge": "fraction of |q|"}
+
+
+def _console(console: Console | None, stderr: bool = False) -> Console:
+    return console if console is not None else Console(stderr=stderr, highlight=False)
+
+
+# --------------------------------------------------------------------------------------------
+# Number formatting
+# --------------------------------------------------------------------------------------------
+
+
+def format_quantity(value: float, unit: str) -> str:
+    """A value with a readable unit prefix.
+
+    Parameters
+    ----------
+    value : float
+        In SI units.
+    unit : {"m", "C", "V/m", "1"} or other
+        Lengths switch to km at 1000 m and to mm below 1 cm; charges use C, mC, µC, nC, pC.
+
+    Returns
+    -------
+    str
+        e.g. ``"1.25 km"``, ``"320 µC"``, ``"unresolved"`` for +inf.
+    """
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return "n/a"
+    if math.isinf(value):
+        return "unresolved" if value > 0 else "-inf"
+    a = abs(value)
+    if unit == "m":
+        if a >= 1000.0:
+            return f"{_sig(value / 1000.0)} km"
+        if 0 < a < 0.01:
+            return f"{_sig(value * 1000.0)} mm"
+        return f"{_sig(value)} m"
+    if unit == "C":
+        for scale, prefix in ((1.0, ""), (1e-3, "m"), (1e-6, "µ"), (1e-9, "n"), (1e-12, "p")):
+            if a >= scale:
+                return f"{_sig(value / scale)} {prefix}C"
+        return f"{_sig(value / 1e-12)} pC" if a > 0 else "0 C"
+    if unit == "1":
+        return _sig(value)
+    return f"{_sig(value)} {unit}"
+
+
+def _sig(x: float, digits: int = 3) -> str:
+    """x with `digits` significant digits, no exponent for everyday magnitudes."""
+    if x == 0 or not math.isfinite(x):
+        return f"{x:g}"
+    if 1e-3 <= abs(x) < 1e6:
+        decimals = max(0, digits - 1 - int(math.floor(math.log10(abs(x)))))
+        return f"{x:.{decimals}f}"
+    return f"{x:.{digits - 1}e}"
+
+
+def _value(x: float) -> str:
+    """A criterion value with enough digits to compare layouts (and to parse back)."""
+    if not math.isfinite(x):
+        return f"{x:g}"
+    return f"{x:.6g}"
+
+
+def _coordinate_decimals(positions_m: np.ndarray) -> int:
+    """Decimals that show a site's coordinates to about 4 significant digits of its extent."""
+    extent = float(np.max(np.abs(positions_m))) if positions_m.size else 0.0
+    if extent <= 0.0 or not math.isfinite(extent):
+        return 2
+    return int(min(4, max(0, 3 - math.floor(math.log10(extent)))))
+
+
+# --------------------------------------------------------------------------------------------
+# The summary
+# --------------------------------------------------------------------------------------------
+
+
+def print_result(result: Result, console: Console | None = None) -> None:
+    """Print the terminal summary of a result.
+
+    Parameters
+    ----------
+    result : Result
+        From a command, or read back by :func:`probeplan.store.read_result`.
+    console : rich Console or None
+        Default: a new console on standard output.
+    """
+    con = _console(console)
+    for part in summary_parts(result):
+        con.print(part)
+
+
+def summary_parts(result: Result) -> list:
+    """The renderables of the summary, in order (tables end with their own blank line)."""
+    blank = Text("")
+    parts: list = [_header(result), blank, _layout_table(result), _bounds_table(result)]
+    parts += [_criterion_text(result), blank]
+    failure = _failure_text(result)
+    if failure is not None:
+        parts += [failure, blank]
+    if result.search is not None:
+        parts += [_search_table(result), _search_notes(result), blank]
+    if result.budget is not None:
+        parts.append(_budget_table(result))
+    if result.changes is not None:
+        parts += [_changes_text(result), _changes_table(result)]
+    if result.simulation is not None:
+        parts += [_simulation_table(result), _simulation_notes(), blank]
+    parts += [_unresolved_text(result), blank, Text(SIGN_LINE)]
+    caution = CAUTIONS.get(result.caution)
+    if caution:
+        parts.append(Panel(Text(caution), title="Caution", title_align="left", width=80))
+    return parts
+
+
+def _header(result: Result) -> Text:
+    title = result.title or "(untitled)"
+    text = Text()
+    text.append(f"probeplan {result.command}: ", style="bold")
+    text.append(f"{title}\n", style="bold")
+    g = result.ground_z_m
+    ground = "free space" if g is None else f"ground plane at z = {g:g} m"
+    text.append(f"config {result.config_path}, seed {result.seed}, {ground}\n")
+    text.append(f"written {result.created_utc} by probeplan {result.version}\n")
+    if result.complete:
+        text.append("status: complete")
+    else:
+        text.append(
+            "status: INTERRUPTED - the best layout found before the search was stopped",
+            style="bold yellow",
+        )
+    return text
+
+
+def _layout_table(result: Result) -> Table:
+    s = result.score
+    pos = np.asarray(s.positions_m, dtype=float)
+    installed = np.asarray(s.installed, dtype=bool)
+    names = probe_names(result)
+    dec = _coordinate_decimals(pos)
+    n_inst = int(installed.sum())
+    title = f"Layout: {n_inst} installed + {installed.size - n_inst} new probes"
+    table = Table(title=title, title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False)
+    table.add_column("#", justify="right")
+    table.add_column("name", overflow="fold", max_width=16)
+    table.add_column("kind")
+    for axis in "xyz":
+        table.add_column(f"{axis} (m)", justify="right")
+    table.add_column("gain", justify="right")
+    table.add_column("saturated", justify="right")
+    for k in range(pos.shape[0]):
+        sat = float(s.saturated[k]) if k < len(s.saturated) else float("nan")
+        table.add_row(
+            str(k),
+            Text(names[k]),
+            "installed" if installed[k] else "new",
+            *(f"{pos[k, j]:.{dec}f}" for j in range(3)),
+            f"{float(s.gain[k]):.3g}",
+            f"{100.0 * sat:.0f} %" if math.isfinite(sat) else "n/a",
+        )
+    return table
+
+
+def _bounds_table(result: Result) -> Table:
+    s = result.score
+    crb = np.asarray(s.crb_std, dtype=float)
+    theta = np.asarray(s.theta, dtype=float)
+    n_s = crb.shape[0]
+    table = Table(
+        title=f"1-sigma Cramér–Rao bound over {n_s} scenario{'s' if n_s != 1 else ''}",
+        title_justify="left",
+        box=box.SIMPLE_HEAD,
+        pad_edge=False,
+    )
+    table.add_column("parameter", overflow="fold")
+    table.add_column("nominal", justify="right")
+    table.add_column("median 1-sigma", justify="right")
+    table.add_column("worst 1-sigma", justify="right")
+    for j, name in enumerate(s.names):
+        unit = param_unit(name)
+        col = crb[:, j]
+        # The median of a column with +inf entries is still meaningful when most are finite.
+        med = float(np.median(col)) if n_s else float("nan")
+        worst = float(np.max(col)) if n_s else float("nan")
+        nominal = float(theta[0, j]) if theta.size else float("nan")
+        table.add_row(
+            Text(name),
+            format_quantity(nominal, unit),
+            format_quantity(med, unit),
+            format_quantity(worst, unit),
+        )
+    return table
+
+
+def _criterion_text(result: Result) -> Text:
+    s = result.score
+    n_s = len(s.per_scenario)
+    n_sing = int(np.sum(s.singular))
+    unit = _CRITERION_UNIT.get(s.criterion, "")
+    text = Text()
+    text.append(f"Criterion {s.criterion}", style="bold")
+    text.append(f" = {_value(s.value)} ({unit}), {s.aggregate} over {n_s} scenarios\n")
+    text.append(f"  {_CRITERION_TEXT.get(s.criterion, s.criterion)}")
+    if s.criterion == "charge" and math.isfinite(s.value):
+        text.append(f"\n  = {100.0 * s.value:.3g} % of the charge")
+    if n_sing:
+        text.append(f"\n  singular scenarios: {n_sing} of {n_s} (some parameter is unresolved).")
+    return text
+
+
+def _ratio(result: Result, value: float, other: float) -> str:
+    """How ``value`` compares with ``other``: D-ratio for d, error ratio otherwise."""
+    s = result.score
+    n = max(len(s.names), 1)
+    if not (math.isfinite(other) and math.isfinite(value)):
+        if math.isfinite(value) or math.isfinite(other):
+            plan_better = math.isfinite(value)
+            return "inf" if plan_better else "0"
+        return "n/a"
+    if s.criterion == "d":
+        return f"{math.exp((value - other) / n):.3g}"
+    if value == 0:
+        return "n/a"
+    return f"{other / value:.3g}"
+
+
+def _plan_objective(result: Result) -> float:
+    """The plan's value of what the search optimised (the criterion, or its worst single loss)."""
+    s = result.score
+    robust = result.search is not None and result.search.objective != "criterion"
+    if robust and s.failure_values is not None and len(s.failure_values):
+        fv = np.asarray(s.failure_values, dtype=float)
+        return float(np.min(fv) if s.criterion == "d" else np.max(fv))
+    return float(s.value)
+
+
+def _search_table(result: Result) -> Table:
+    s = result.score
+    info = result.search
+    ratio = "D-ratio" if s.criterion == "d" else "error ratio"
+    title = "Search: what the plan bought"
+    if info.objective != "criterion":
+        title += f" (values: {info.objective})"
+    table = Table(title=title, title_justify="left", box=box.SIMPLE_HEAD)
+    table.add_column("layout", overflow="fold")
+    table.add_column(f"{s.criterion} value", justify="right")
+    table.add_column(f"plan vs it ({ratio})", justify="right")
+    plan = _plan_objective(result)
+    for name, value in info.stages:
+        table.add_row(f"stage: {name}", _value(value), _ratio(result, plan, value))
+    stage_rows = set(info.stages)
+    for b in info.baselines:
+        if (b.name, b.value) in stage_rows:
+            continue  # a stage's layout kept as a baseline: already on its stage row
+        row = (_value(b.value), _ratio(result, plan, b.value))
+        table.add_row(Text(f"baseline: {b.name}"), *row)
+    table.add_row("the plan", _value(plan), "1", style="bold")
+    return table
+
+
+def _failure_text(result: Result) -> Text | None:
+    """Which single meter failure hurts most, and how much."""
+    s = result.score
+    if s.failure_values is None or len(s.failure_values) == 0:
+        return None
+    fv = np.asarray(s.failure_values, dtype=float)
+    bad = np.where(np.isnan(fv), -np.inf if s.criterion == "d" else np.inf, fv)
+    k = int(np.argmin(bad) if s.criterion == "d" else np.argmax(bad))
+    names = probe_names(result)
+    text = Text()
+    text.append("If one meter fails: ", style="bold")
+    text.append(f"losing #{k} {names[k]} hurts most; {s.criterion} becomes {_value(bad[k])}")
+    if not math.isfinite(bad[k]):
+        text.append("\n  and the layout no longer resolves every parameter.")
+    else:
+        what = "D-ratio" if s.criterion == "d" else "error ratio"
+        text.append(f"\n  ({what} of the full layout over it: {_ratio(result, s.value, bad[k])}).")
+    return text
+
+
+def _search_notes(result: Result) -> Text:
+    s = result.score
+    info = result.search
+    n = max(len(s.names), 1)
+    text = Text()
+    if s.criterion == "d":
+        text.append("  D-ratio = exp((plan - other)/n_params); above 1 the plan is better.\n")
+    else:
+        text.append("  error ratio = other / plan; above 1 the plan is better.\n")
+    if info.bound is not None and math.isfinite(info.bound):
+        text.append(f"  relaxation bound on the candidate grid: {_value(info.bound)}")
+        if info.bound_gap is not None:
+            text.append(f" (gap {info.bound_gap:.3g})")
+        text.append("\n")
+        if s.criterion == "d" and math.isfinite(s.value):
+            eff = math.exp((s.value - info.bound) / n)
+            text.append(f"  D-efficiency: {100.0 * eff:.1f} % of the bound, ")
+            text.append("exp((plan - bound)/n_params)\n")
+    text.append(
+        f"  candidate grid: {info.n_candidates} points, spacing "
+        f"{format_quantity(info.grid_spacing_m, 'm')}; "
+        f"{len(info.history)} evaluations in {info.seconds:.1f} s"
+    )
+    return text
+
+
+def _budget_table(result: Result) -> Table:
+    b = result.budget
+    target = "no target" if b.target is None else f"target {_value(b.target)}"
+    table = Table(title=f"Budget options ({target})", title_justify="left", box=box.SIMPLE_HEAD)
+    for col, just in (
+        ("row", "right"),
+        ("count", "right"),
+        ("grade", "left"),
+        ("cost", "right"),
+        (f"{result.score.criterion} value", "right"),
+        ("meets target", "left"),
+        ("note", "left"),
+    ):
+        table.add_column(col, justify=just, overflow="fold")
+    for k in range(len(b.count)):
+        notes = []
+        if k == b.cheapest:
+            notes.append("CHEAPEST")
+        if b.pareto[k]:
+            notes.append("pareto")
+        table.add_row(
+            str(k),
+            str(int(b.count[k])),
+            Text(str(b.grade[k])),
+            f"{float(b.cost[k]):,.0f}",
+            _value(float(b.value[k])),
+            "yes" if b.meets_target[k] else "no",
+            ", ".join(notes),
+        )
+    return table
+
+
+def _unresolved_text(result: Result) -> Text:
+    s = result.score
+    if not s.unresolved:
+        return Text("Every estimated parameter is resolved.")
+    text = Text()
+    text.append(f"Unresolved directions (scenario {s.unresolved_scenario}):\n", style="bold")
+    for d in s.unresolved:
+        how = (
+            "not resolved"
+            if d.singular
+            else f"poorly resolved, relative eigenvalue {d.relative_eigenvalue:.1e}"
+        )
+        text.append(f"  - {d.text} [{how}]\n")
+    text.rstrip()
+    return text
+
+
+def _changes_text(result: Result) -> Text:
+    c = result.changes
+    s = result.score
+    how = {
+        "installed": "its probes kept fixed as installed",
+        "start": "its probes as the starting layout",
+    }.get(c.mode, c.mode)
+    text = Text()
+    text.append("Changes against ", style="bold")
+    text.append(f"{c.old_path} ({how}):\n", style="bold")
+    text.append(f"  old layout: {s.criterion} = {_value(c.old_value)} as stored")
+    if c.old_rescored != c.old_value:
+        text.append(f", {_value(c.old_rescored)} under this config")
+    what = "D-ratio" if s.criterion == "d" else "error ratio"
+    text.append(f"\n  new layout: {s.criterion} = {_value(s.value)}; ")
+    text.append(f"{what} new vs old: {_ratio(result, s.value, c.old_rescored)}\n")
+    counts = [
+        (len(c.kept_m), "kept"),
+        (len(c.moved_to_m), "moved"),
+        (len(c.added_m), "added"),
+        (len(c.removed_m), "removed"),
+    ]
+    text.append("  " + ", ".join(f"{n} {what}" for n, what in counts))
+    return text
+
+
+def _changes_table(result: Result) -> Table:
+    c = result.changes
+    rows = []
+    for a, b in zip(c.moved_from_m, c.moved_to_m, strict=True):
+        rows += [("moved from", a), ("  to", b)]
+    rows += [("added", p) for p in c.added_m] + [("removed", p) for p in c.removed_m]
+    every = [np.asarray(p, dtype=float) for _, p in rows]
+    dec = _coordinate_decimals(np.array(every)) if every else 2
+    table = Table(box=box.SIMPLE_HEAD, pad_edge=False)
+    table.add_column("change")
+    for axis in "xyz":
+        table.add_column(f"{axis} (m)", justify="right")
+    for what, p in rows:
+        table.add_row(what, *(f"{float(v):.{dec}f}" for v in p))
+    if not rows:
+        table.add_row("no probe moved, added or removed", "", "", "")
+    return table
+
+
+def _simulation_table(result: Result) -> Table:
+    from .simulate import summary_rows
+
+    sim = result.simulation
+    table = Table(
+        title=f"Simulated fits ({sim.trials} noisy draws a scenario) beside the bound",
+        title_justify="left",
+        box=box.SIMPLE_HEAD,
+        pad_edge=False,
+    )
+    table.add_column("scen.", justify="right")
+    table.add_column("quantity", overflow="fold", max_width=24)
+    table.add_column("achieved", justify="right")
+    table.add_column("bound", justify="right")
+    table.add_column("ratio", justify="right")
+    table.add_column("fits", justify="right")
+    for row in summary_rows(sim):
+        unit = {"fraction": "1", "": "1"}.get(row["unit"], row["unit"])
+        table.add_row(
+            str(row["scenario"]),
+            Text(row["quantity"]),
+            format_quantity(row["achieved"], unit) if math.isfinite(row["achieved"]) else "no fit",
+            format_quantity(row["bound"], unit),
+            f"{row['ratio']:.2f}" if math.isfinite(row["ratio"]) else "n/a",
+            f"{row['converged']}/{row['trials']}",
+        )
+    return table
+
+
+def _simulation_notes() -> Text:
+    return Text(
+        "  achieved: RMS error of the converged fits; bound: 1-sigma Cramér–Rao bound.\n"
+        "  A ratio near 1 means the layout delivers its bound; the RMS of n fits is\n"
+        "  itself uncertain by about 1/sqrt(2n)."
+    )
+
+
+# --------------------------------------------------------------------------------------------
+# Progress, files written, errors
+# --------------------------------------------------------------------------------------------
+
+
+@contextlib.contextmanager
+def progress_bar(console: Console | None = None) -> Iterator[Callable[[str, int, int], None]]:
+    """A progress callback for the search, drawn as a rich progress bar.
+
+    Parameters
+    ----------
+    console : rich Console or None
+        Default: standard error. When it is not a terminal nothing is drawn.
+
+    Yields
+    ------
+    progress(stage: str, done: int, total: int) -> None
+    """
+    con = _console(console, stderr=True)
+    if not con.is_terminal:
+        yield lambda stage, done, total: None
+        return
+    from rich.progress import (
+        BarColumn,
+        MofNCompleteColumn,
+        Progress,
+        TextColumn,
+        TimeElapsedColumn,
+    )
+
+    columns = (
+        TextColumn("{task.description:<14}"),
+        BarColumn(bar_width=30),
+        MofNCompleteColumn(),
+        TimeElapsedColumn(),
+    )
+    with Progress(*columns, console=con, transient=True) as bar:
+        tasks: dict[str, int] = {}
+
+        def progress(stage: str, done: int, total: int) -> None:
+            total = total if total and total > 0 else None
+            if stage not in tasks:
+                tasks[stage] = bar.add_task(stage, total=total)
+            bar.update(tasks[stage], completed=done, total=total)
+
+        yield progress
+
+
+def print_written(path, complete: bool = True, console: Console | None = None) -> None:
+    """One line naming the result file written (and how to continue an interrupted plan)."""
+    con = _console(console)
+    line = Text(f"Result written to {os.fspath(path)}")
+    if not complete:
+        line.append(f" (interrupted; continue with `probeplan plan --resume {os.fspath(path)}`)")
+    con.print(line, soft_wrap=True)
+
+
+def print_error(message: str, console: Console | None = None) -> None:
+    """One line on standard error: ``probeplan: error: <message>``."""
+    _line(f"probeplan: error: {message}", console)
+
+
+def print_interrupted(console: Console | None = None) -> None:
+    """One line on standard error after a hard interrupt: nothing was written."""
+    _line("probeplan: interrupted; no result file was written.", console)
+
+
+def print_internal_error(exc: BaseException, debug: bool, console: Console | None = None) -> None:
+    """Report an unexpected failure: one line, a hint, and the traceback only when debugging."""
+    _line(f"probeplan: internal error: {type(exc).__name__}: {exc}", console)
+    if debug:
+        tb = "".join(traceback.format_exception(exc))
+        _console(console, stderr=True).out(tb, highlight=False, end="")
+    else:
+        _line(
+            "probeplan: this is a bug in probeplan; please report it with the command and the "
+            "config. Set PROBEPLAN_DEBUG=1 to see the traceback.",
+            console,
+        )
+
+
+def _line(text: str, console: Console | None) -> None:
+    if console is None:
+        # Plain write: an error line must survive any terminal and never be re-wrapped.
+        print(text, file=sys.stderr)
+        return
+    console.print(Text(text), soft_wrap=True)
