@@ -1,0 +1,656 @@
+"""Plots of a result: the site map, the coverage map and the budget curve (PNG or SVG).
+
+Every figure is built on matplotlib's object-oriented :class:`~matplotlib.figure.Figure` and
+saved by its Agg (PNG) or SVG renderer: no display, no pyplot state, safe in a batch job. Files
+are written under a temporary name in the target folder and renamed, so a plot is never half
+written.
+
+* :func:`site_map` — mounting regions, keep-outs, installed and new meters, the charge(s) on
+  the ground plan and the spread of the scenarios.
+* :func:`coverage_grid` / :func:`coverage_map` — the 1-sigma horizontal location error of
+  source 0 for a charge at each horizontal position (Cramér–Rao, batched over the grid).
+* :func:`budget_curve` — cost against the criterion for every grade, the Pareto front and the
+  target.
+* :func:`plot_all` — the plots that apply to a result, in one folder.
+
+Symbols (our own): installed meters are blue squares, new meters orange triangles, charges
+purple stars; mounting regions are light green, keep-outs red hatching.
+"""
+
+from __future__ import annotations
+
+import os
+import secrets
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import shapely
+from matplotlib.colors import LogNorm
+from matplotlib.figure import Figure
+from matplotlib.lines import Line2D
+from matplotlib.patches import Circle, Patch, Polygon
+from matplotlib.ticker import FuncFormatter, NullFormatter
+
+from .fisher import CRITERIA, covariance, fisher_from_rows
+from .probes import whitened_rows
+from .problem import draw_scenarios
+from .simulate import layout_meters
+
+#: Output formats.
+FORMATS: tuple[str, ...] = ("png", "svg")
+#: Figure size in inches and raster resolution: a PNG is FIGSIZE_IN × DPI pixels.
+FIGSIZE_IN: tuple[float, float] = (8.0, 6.5)
+DPI: int = 120
+#: A site at least this wide (m) is drawn in km.
+KM_SPAN_M: float = 2000.0
+#: Grid points of the coverage map per batch (keeps the Jacobian near a few MB).
+_COVERAGE_BATCH = 2048
+
+SIGN_CAPTION = (
+    "Local frame, z up, ground plan (x, y). Fields: physics sign convention "
+    "(E points away from positive charge)."
+)
+
+_REGION_FACE = "#d7ebcf"
+_REGION_EDGE = "#5f8f4e"
+_KEEPOUT_EDGE = "#b03a2e"
+_INSTALLED = {"marker": "s", "color": "#2f5597", "ms": 8, "label": "installed meter"}
+_NEW = {"marker": "^", "color": "#e07b00", "ms": 10, "label": "new meter (planned)"}
+_SOURCE = "#6a2c8c"
+_GRADE_STYLES = (
+    ("o", "#1b7f79"),
+    ("D", "#c2410c"),
+    ("v", "#4338ca"),
+    ("P", "#a16207"),
+    ("X", "#be185d"),
+    ("h", "#3f6212"),
+)
+
+
+# --------------------------------------------------------------------------------------------
+# Coverage: the numbers behind the coverage map
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, eq=False)
+class Coverage:
+    """Location error of source 0 over a horizontal grid.
+
+    Attributes
+    ----------
+    x_m : (n_x,) float
+        Grid positions along x, m.
+    y_m : (n_y,) float
+        Grid positions along y, m.
+    error_m : (n_y, n_x) float
+        sqrt(C_xx + C_yy) of source 0 with its centre at (x, y), m; +inf where the layout
+        cannot resolve the parameters there.
+    z_m : float
+        The (nominal) height of source 0's centre used throughout, m.
+    charge_c : float
+        Its (nominal) charge, C.
+    """
+
+    x_m: np.ndarray
+    y_m: np.ndarray
+    error_m: np.ndarray
+    z_m: float
+    charge_c: float
+
+
+def coverage_grid(problem, positions_m, gain=None, resolution: int = 40) -> Coverage:
+    """1-sigma horizontal location error of source 0 at every point of a grid over the site.
+
+    Every other parameter keeps its nominal value (scenario 0): height, charge, size of source
+    0, the other sources and the background. The bound is the same one :meth:`Problem.score`
+    reports, for one scenario per grid point, computed for all grid points in a few batches.
+
+    Parameters
+    ----------
+    problem : probeplan.problem.Problem
+        Must estimate x and y of source 0.
+    positions_m : (n_new, 3) float
+        New probes (installed ones are added from the problem), m.
+    gain : (n_new,) float or None
+        Default: ``problem.gain_at(positions_m)``.
+    resolution : int
+        Grid points along each axis, 2 to 400.
+
+    Returns
+    -------
+    Coverage
+    """
+    names = problem.names
+    if "s0.x_m" not in names or "s0.y_m" not in names:
+        raise ValueError(
+            "the coverage map needs the horizontal position of source 0 estimated; add "
+            f'"x" and "y" to source[0].estimate (estimated now: {", ".join(names) or "none"}).'
+        )
+    if (
+        isinstance(resolution, bool)
+        or not isinstance(resolution, int | np.integer)
+        or not 2 <= resolution <= 400
+    ):
+        raise ValueError(f"`resolution` must be an integer from 2 to 400; got {resolution!r}.")
+    meters = layout_meters(problem, positions_m, gain)
+    scene = problem.scene
+    base = problem.theta[0]
+    cx, cy = (scene.param_names.index(n) for n in ("s0.x_m", "s0.y_m"))
+    ix, iy = names.index("s0.x_m"), names.index("s0.y_m")
+    x0, y0, x1, y1 = _extent(problem.config, meters.positions_m, margin=0.05)
+    xs = np.linspace(x0, x1, int(resolution))
+    ys = np.linspace(y0, y1, int(resolution))
+    gx, gy = np.meshgrid(xs, ys)
+    theta = np.tile(base, (gx.size, 1))
+    theta[:, cx] = gx.ravel()
+    theta[:, cy] = gy.ravel()
+    p = len(names)
+    err = np.empty(gx.size)
+    for start in range(0, gx.size, _COVERAGE_BATCH):
+        sl = slice(start, min(start + _COVERAGE_BATCH, gx.size))
+        with np.errstate(all="ignore"):
+            e, jac = scene.evaluate(theta[sl], meters.positions_m, columns=problem.est_cols)
+            rows, _ = whitened_rows(e, jac, meters.axes, meters.gain, problem.noise)
+            info = fisher_from_rows(rows.reshape(rows.shape[0], -1, p))
+            bad = ~np.all(np.isfinite(info), axis=(-2, -1))
+            info[bad] = 0.0
+            cov, _ = covariance(info)
+            err[sl] = np.sqrt(cov[:, ix, ix] + cov[:, iy, iy])
+    err = np.where(np.isfinite(err), err, np.inf)
+    return Coverage(
+        x_m=xs,
+        y_m=ys,
+        error_m=err.reshape(gx.shape),
+        z_m=float(base[scene.param_names.index("s0.z_m")]),
+        charge_c=float(base[scene.param_names.index("s0.charge_c")]),
+    )
+
+
+# --------------------------------------------------------------------------------------------
+# The figures
+# --------------------------------------------------------------------------------------------
+
+
+def site_map(config, result_or_score, path) -> Path:
+    """Draw the site: regions, keep-outs, meters, the charges and the scenario spread.
+
+    Parameters
+    ----------
+    config : probeplan.config.Config
+    result_or_score : probeplan.result.Result or probeplan.problem.Score
+        The layout to draw (``positions_m`` with installed probes first, ``installed`` flags).
+    path : str or path-like
+        Output file; its suffix (``.png`` or ``.svg``) chooses the format.
+
+    Returns
+    -------
+    Path
+        The file written.
+    """
+    path, fmt = _check_path(path)
+    score = getattr(result_or_score, "score", result_or_score)
+    pos = np.asarray(score.positions_m, dtype=float).reshape(-1, 3)
+    installed = np.asarray(score.installed, dtype=bool).reshape(-1)
+    x0, y0, x1, y1 = _extent(config, pos, margin=0.06)
+    scale, unit = _scale(x0, y0, x1, y1)
+
+    fig, ax = _figure()
+    handles = []
+    if _draw_regions(ax, config.regions, scale):
+        handles.append(
+            Patch(facecolor=_REGION_FACE, edgecolor=_REGION_EDGE, label="mounting region")
+        )
+    if _draw_keepouts(ax, config.keepouts, scale):
+        handles.append(
+            Patch(facecolor="none", edgecolor=_KEEPOUT_EDGE, hatch="xx", label="keep-out")
+        )
+    spread = _scenario_xy(config, score)
+    if spread is not None and len(spread) > 1:
+        ax.plot(spread[:, 0] / scale, spread[:, 1] / scale, ".", color=_SOURCE, alpha=0.25, ms=4)
+        handles.append(
+            Line2D([], [], ls="", marker=".", color=_SOURCE, alpha=0.4, label="scenario spread")
+        )
+    _draw_sources(ax, config, scale)
+    handles.append(
+        Line2D([], [], ls="", marker="*", color=_SOURCE, ms=12, label="charge (nominal)")
+    )
+    handles += _draw_probes(ax, pos, installed, scale)
+    ax.set_xlim(x0 / scale, x1 / scale)
+    ax.set_ylim(y0 / scale, y1 / scale)
+    ax.set_aspect("equal")
+    ax.set_xlabel(f"x ({unit})")
+    ax.set_ylabel(f"y ({unit})")
+    ax.set_title(f"{config.title}\nsite map: {int((~installed).sum())} new meter(s)", fontsize=11)
+    _legend_and_caption(fig, handles, SIGN_CAPTION)
+    return _save(fig, path, fmt)
+
+
+def coverage_map(problem, positions_m, gain, path, resolution: int = 40) -> Path:
+    """Draw the 1-sigma horizontal location error of source 0 over the site.
+
+    Parameters
+    ----------
+    problem : probeplan.problem.Problem
+        Must estimate x and y of source 0 (else ``ValueError``).
+    positions_m : (n_new, 3) float
+        New probes, m (installed ones come from the problem).
+    gain : (n_new,) float or None
+        Default: ``problem.gain_at(positions_m)``.
+    path : str or path-like
+        Output file, ``.png`` or ``.svg``.
+    resolution : int
+        Grid points along each axis (see :func:`coverage_grid`).
+
+    Returns
+    -------
+    Path
+    """
+    path, fmt = _check_path(path)
+    cov = coverage_grid(problem, positions_m, gain, resolution)
+    meters = layout_meters(problem, positions_m, gain)
+    config = problem.config
+    scale, unit = _scale(cov.x_m[0], cov.y_m[0], cov.x_m[-1], cov.y_m[-1])
+
+    fig, ax = _figure()
+    ax.set_facecolor("0.8")  # unresolved grid points stay grey
+    err = np.ma.masked_invalid(np.where(np.isfinite(cov.error_m), cov.error_m, np.nan))
+    finite = err.compressed()
+    if finite.size:
+        lo, hi = float(finite.min()), float(finite.max())
+        hi = hi if hi > lo else lo * 1.01 + 1e-12
+        norm = LogNorm(vmin=lo, vmax=hi)
+        mesh = ax.pcolormesh(
+            cov.x_m / scale, cov.y_m / scale, err, norm=norm, cmap="viridis_r", shading="nearest"
+        )
+        bar = fig.colorbar(mesh, ax=ax, shrink=0.85)
+        bar.set_label("1-σ horizontal location error of source 0, sqrt(C_xx + C_yy) (m)")
+        plain = FuncFormatter(lambda v, _pos: f"{v:g}")
+        bar.formatter = plain
+        # Minor ticks get labels only when the colours span less than a decade.
+        bar.minorformatter = plain if hi < 10 * lo else NullFormatter()
+        levels = _decade_levels(lo, hi)
+        if levels.size and finite.size > 3:
+            cs = ax.contour(
+                cov.x_m / scale,
+                cov.y_m / scale,
+                err,
+                levels=levels,
+                colors="white",
+                linewidths=0.7,
+                norm=norm,
+            )
+            ax.clabel(cs, fmt=_level_label, fontsize=7)
+    _draw_keepouts(ax, config.keepouts, scale, fill=False)
+    handles = _draw_probes(ax, meters.positions_m, meters.installed, scale)
+    ax.set_xlim(cov.x_m[0] / scale, cov.x_m[-1] / scale)
+    ax.set_ylim(cov.y_m[0] / scale, cov.y_m[-1] / scale)
+    ax.set_aspect("equal")
+    ax.set_xlabel(f"x ({unit})")
+    ax.set_ylabel(f"y ({unit})")
+    ax.set_title(f"{config.title}\ncoverage: where a charge is located how well", fontsize=11)
+    note = (
+        f"Source 0 at z = {cov.z_m:g} m, q = {cov.charge_c:g} C, other parameters nominal; "
+        f"grey: not resolvable.\n{SIGN_CAPTION}"
+    )
+    _legend_and_caption(fig, handles, note)
+    return _save(fig, path, fmt)
+
+
+def budget_curve(budget_table, path, criterion: str, target: float | None) -> Path:
+    """Draw cost against the criterion value for every grade, with the Pareto front.
+
+    Parameters
+    ----------
+    budget_table : probeplan.result.BudgetTable
+    path : str or path-like
+        Output file, ``.png`` or ``.svg``.
+    criterion : {"d", "location", "charge"}
+    target : float or None
+        The criterion target (a horizontal line), if any.
+
+    Returns
+    -------
+    Path
+    """
+    path, fmt = _check_path(path)
+    if criterion not in CRITERIA:
+        raise ValueError(f"`criterion` must be one of {', '.join(CRITERIA)}; got {criterion!r}.")
+    bt = budget_table
+    cost = np.asarray(bt.cost, dtype=float)
+    value = np.asarray(bt.value, dtype=float)
+    count = np.asarray(bt.count)
+    grade = np.asarray(bt.grade).astype(str)
+    pareto = np.asarray(bt.pareto, dtype=bool)
+    ok = np.isfinite(value)
+
+    fig, ax = _figure()
+    for k, name in enumerate(dict.fromkeys(grade.tolist())):
+        marker, colour = _GRADE_STYLES[k % len(_GRADE_STYLES)]
+        sel = np.nonzero((grade == name) & ok)[0]
+        sel = sel[np.argsort(cost[sel], kind="stable")]
+        ax.plot(cost[sel], value[sel], marker=marker, color=colour, label=f"grade {name}", ms=7)
+        for i in sel:
+            ax.annotate(
+                f"{count[i]}",
+                (cost[i], value[i]),
+                textcoords="offset points",
+                xytext=(5, 5),
+                fontsize=7,
+                color=colour,
+            )
+    front = np.nonzero(pareto & ok)[0]
+    if front.size:
+        ax.plot(
+            cost[front],
+            value[front],
+            ls="",
+            marker="o",
+            ms=14,
+            mfc="none",
+            mec="black",
+            mew=1.2,
+            label="Pareto front (none cheaper and better)",
+        )
+    if target is not None and np.isfinite(target):
+        ax.axhline(target, color="0.25", ls="--", lw=1.0, label=f"target {target:g}")
+    if 0 <= bt.cheapest < cost.size and ok[bt.cheapest]:
+        i = bt.cheapest
+        ax.plot(
+            cost[i],
+            value[i],
+            ls="",
+            marker="*",
+            ms=18,
+            color="#f2c200",
+            mec="black",
+            mew=0.8,
+            zorder=6,
+            label="cheapest meeting the target",
+        )
+        ax.annotate(
+            f"cheapest meeting the target:\n{count[i]} × {grade[i]}, cost {cost[i]:,.0f}",
+            (cost[i], value[i]),
+            textcoords="offset points",
+            xytext=(25, -40),
+            fontsize=8,
+            arrowprops={"arrowstyle": "->", "color": "0.2"},
+            bbox={"boxstyle": "round", "fc": "white", "ec": "0.6"},
+        )
+    if criterion != "d" and ok.any():
+        pos = value[ok & (value > 0)]
+        if pos.size and pos.max() > 10 * pos.min():
+            ax.set_yscale("log")
+    ax.set_xlabel("cost of the new meters (user's currency)")
+    ax.set_ylabel(_BUDGET_YLABEL[criterion])
+    ax.set_title("budget: cost against the design criterion", fontsize=11)
+    ax.grid(True, color="0.9")
+    ax.legend(loc="best", fontsize=8, framealpha=0.85)
+    n_bad = int((~ok).sum())
+    caption = "Numbers beside the markers: meter count."
+    if n_bad:
+        caption += f" {n_bad} option(s) cannot resolve the parameters and are not drawn."
+    fig.supxlabel(caption, fontsize=7, color="0.3")
+    return _save(fig, path, fmt)
+
+
+def plot_all(result, config, problem, folder, fmt: str = "png") -> list[Path]:
+    """Write every plot that applies to a result.
+
+    Parameters
+    ----------
+    result : probeplan.result.Result
+    config : probeplan.config.Config
+        The config the result came from.
+    problem : probeplan.problem.Problem
+        Built from that config (its installed probes match the result's).
+    folder : str or path-like
+        Created if missing. Files: ``site_map.<fmt>``, ``coverage_map.<fmt>`` (when x and y of
+        source 0 are estimated), ``budget_curve.<fmt>`` (when the result holds a budget).
+    fmt : {"png", "svg"}
+
+    Returns
+    -------
+    list of Path
+        The files written, in that order.
+    """
+    if fmt not in FORMATS:
+        raise ValueError(f"`fmt` must be one of {', '.join(FORMATS)}; got {fmt!r}.")
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    score = result.score
+    new = ~np.asarray(score.installed, dtype=bool)
+    out = [site_map(config, result, folder / f"site_map.{fmt}")]
+    if "s0.x_m" in problem.names and "s0.y_m" in problem.names:
+        out.append(
+            coverage_map(
+                problem, score.positions_m[new], score.gain[new], folder / f"coverage_map.{fmt}"
+            )
+        )
+    if result.budget is not None:
+        out.append(
+            budget_curve(
+                result.budget,
+                folder / f"budget_curve.{fmt}",
+                config.design.criterion,
+                result.budget.target,
+            )
+        )
+    return out
+
+
+# --------------------------------------------------------------------------------------------
+# Private helpers
+# --------------------------------------------------------------------------------------------
+
+_BUDGET_YLABEL = {
+    "d": "log det J (larger is better)",
+    "location": "1-σ location error of source 0 (m, smaller is better)",
+    "charge": "relative 1-σ charge error of source 0 (smaller is better)",
+}
+
+
+def _figure():
+    fig = Figure(figsize=FIGSIZE_IN, dpi=DPI, layout="constrained")
+    fig.get_layout_engine().set(h_pad=0.25)
+    return fig, fig.add_subplot()
+
+
+def _legend_and_caption(fig: Figure, handles: list, caption: str) -> None:
+    """Legend right of the axes, caption under them; both inside the constrained layout."""
+    fig.legend(handles=handles, loc="outside right upper", fontsize=8, frameon=False)
+    fig.supxlabel(caption, fontsize=7, color="0.3")
+
+
+def _check_path(path) -> tuple[Path, str]:
+    path = Path(path)
+    fmt = path.suffix.lower().lstrip(".")
+    if fmt not in FORMATS:
+        raise ValueError(
+            f"plot file `{path}` must end in one of {', '.join('.' + f for f in FORMATS)}; "
+            f"got {path.suffix or 'no suffix'!r}."
+        )
+    return path, fmt
+
+
+def _save(fig: Figure, path: Path, fmt: str) -> Path:
+    """Write to a temporary file in the same folder, then rename (never half written)."""
+    # A fresh name opened exclusively: permissions follow the umask like any other file.
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.{secrets.token_hex(4)}.tmp")
+    try:
+        with open(tmp, "xb") as fh:
+            fig.savefig(fh, format=fmt, dpi=DPI)
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    return path
+
+
+def _xy_geometry(region, buffer_m: float = 0.0):
+    """The region's shadow on the ground plan (shapely), grown by ``buffer_m``."""
+    outline = region.outline_m()[:, :2]
+    if region.kind in ("rectangle", "polygon"):
+        poly = shapely.Polygon(outline)
+        if poly.is_valid and poly.area > 1e-9 * max(region.measure, 1.0):
+            geom = poly
+        else:  # a vertical wall: its shadow is a line
+            geom = shapely.LineString(np.vstack([outline, outline[:1]]))
+    elif region.kind == "segment":
+        geom = shapely.LineString(outline)
+        if geom.length == 0.0:
+            geom = shapely.Point(outline[0])
+    else:
+        geom = shapely.MultiPoint(outline)
+    return geom.buffer(buffer_m) if buffer_m > 0 else geom
+
+
+def _draw_geometry(ax, geom, scale: float, *, face, edge, hatch=None, lw=1.0, point_ms=7):
+    if geom.is_empty:
+        return
+    kind = geom.geom_type
+    if kind in ("MultiPolygon", "MultiLineString", "GeometryCollection"):
+        for part in geom.geoms:
+            _draw_geometry(
+                ax, part, scale, face=face, edge=edge, hatch=hatch, lw=lw, point_ms=point_ms
+            )
+    elif kind == "Polygon":
+        xy = np.asarray(geom.exterior.coords) / scale
+        ax.add_patch(Polygon(xy, closed=True, facecolor=face, edgecolor=edge, hatch=hatch, lw=lw))
+    elif kind in ("LineString", "LinearRing"):
+        xy = np.asarray(geom.coords) / scale
+        ax.plot(xy[:, 0], xy[:, 1], color=edge, lw=3 * lw, solid_capstyle="round")
+    else:  # Point, MultiPoint
+        xy = shapely.get_coordinates(geom) / scale
+        ax.plot(xy[:, 0], xy[:, 1], ls="", marker="o", mfc=face, mec=edge, ms=point_ms)
+
+
+def _draw_regions(ax, regions, scale: float) -> bool:
+    for r in regions:
+        _draw_geometry(ax, _xy_geometry(r), scale, face=_REGION_FACE, edge=_REGION_EDGE)
+    return bool(regions)
+
+
+def _draw_keepouts(ax, keepouts, scale: float, fill: bool = True) -> bool:
+    for r in keepouts:
+        geom = _xy_geometry(r, r.buffer_m)
+        _draw_geometry(
+            ax,
+            geom,
+            scale,
+            face="none",
+            edge=_KEEPOUT_EDGE,
+            hatch="xx" if fill else None,
+            lw=1.0 if fill else 1.4,
+        )
+    return bool(keepouts)
+
+
+def _draw_probes(ax, pos: np.ndarray, installed: np.ndarray, scale: float) -> list:
+    handles = []
+    for mask, style in ((installed, _INSTALLED), (~installed, _NEW)):
+        if mask.any():
+            (h,) = ax.plot(
+                pos[mask, 0] / scale,
+                pos[mask, 1] / scale,
+                ls="",
+                marker=style["marker"],
+                color=style["color"],
+                ms=style["ms"],
+                mec="black",
+                mew=0.6,
+                label=style["label"],
+                zorder=5,
+            )
+            handles.append(h)
+    return handles
+
+
+def _draw_sources(ax, config, scale: float) -> None:
+    for spec in config.sources:
+        src = spec.source
+        c = np.asarray(src.center_m)
+        if src.kind == "line":
+            ends = np.array([src.start_m, src.end_m]) / scale
+            ax.plot(ends[:, 0], ends[:, 1], color=_SOURCE, lw=2.5, alpha=0.8, zorder=4)
+        size = getattr(src, "radius_m", None) or getattr(src, "sigma_m", None)
+        if size:
+            ax.add_patch(
+                Circle(c[:2] / scale, size / scale, fill=False, ec=_SOURCE, ls="--", lw=1.0)
+            )
+        if src.kind == "grid":
+            lo = (c[:2] - 0.5 * src.size_m[:2]) / scale
+            w, h = src.size_m[:2] / scale
+            ax.add_patch(
+                Polygon(
+                    [lo, lo + [w, 0], lo + [w, h], lo + [0, h]],
+                    closed=True,
+                    fill=False,
+                    ec=_SOURCE,
+                    ls="--",
+                )
+            )
+        ax.plot(
+            c[0] / scale,
+            c[1] / scale,
+            ls="",
+            marker="*",
+            color=_SOURCE,
+            ms=14,
+            mec="white",
+            mew=0.5,
+            zorder=6,
+        )
+
+
+def _scenario_xy(config, score) -> np.ndarray | None:
+    """(n_scenarios · n_sources, 2) horizontal centres of every source in every scenario."""
+    names = tuple(score.names)
+    cols = [(f"s{i}.x_m", f"s{i}.y_m") for i in range(len(config.sources))]
+    if all(x in names and y in names for x, y in cols):
+        th = np.asarray(score.theta)
+        return np.concatenate([th[:, [names.index(x), names.index(y)]] for x, y in cols])
+    from .forward import Scene
+
+    scene = Scene(
+        tuple(s.source for s in config.sources),
+        config.ground_z_m,
+        background=config.background is not None,
+    )
+    theta = draw_scenarios(config, scene, np.random.default_rng(config.seed))
+    idx = [(scene.param_names.index(x), scene.param_names.index(y)) for x, y in cols]
+    return np.concatenate([theta[:, list(ij)] for ij in idx])
+
+
+def _extent(config, probes_m: np.ndarray, margin: float) -> tuple[float, float, float, float]:
+    """Horizontal box around regions, keep-outs, probes and the nominal charges, m."""
+    geoms = [_xy_geometry(r) for r in config.regions]
+    geoms += [_xy_geometry(r, r.buffer_m) for r in config.keepouts]
+    pts = [np.asarray(probes_m, dtype=float).reshape(-1, 3)[:, :2]]
+    pts += [np.asarray(s.source.center_m)[None, :2] for s in config.sources]
+    bounds = [g.bounds for g in geoms if not g.is_empty]
+    allpts = np.concatenate(pts + [np.array(b).reshape(2, 2) for b in bounds])
+    (x0, y0), (x1, y1) = allpts.min(axis=0), allpts.max(axis=0)
+    span = max(x1 - x0, y1 - y0, 1.0)
+    pad = margin * span
+    return x0 - pad, y0 - pad, x1 + pad, y1 + pad
+
+
+def _scale(x0, y0, x1, y1) -> tuple[float, str]:
+    return (1000.0, "km") if max(x1 - x0, y1 - y0) >= KM_SPAN_M else (1.0, "m")
+
+
+def _decade_levels(lo: float, hi: float) -> np.ndarray:
+    """Contour levels 1, 2, 5 × 10^k within (lo, hi); decades only when there are many."""
+    if not (lo > 0 and hi > lo):
+        return np.zeros(0)
+    ks = np.arange(np.floor(np.log10(lo)), np.ceil(np.log10(hi)) + 1)
+    levels = (np.array([1.0, 2.0, 5.0])[None, :] * 10.0 ** ks[:, None]).ravel()
+    levels = levels[(levels > lo) & (levels < hi)]
+    if levels.size > 6:  # a wide range: decades only, to keep the labels readable
+        levels = levels[np.isclose(np.log10(levels) % 1.0, 0.0, atol=1e-9)]
+    return levels
+
+
+def _level_label(v: float) -> str:
+    return f"{v:g} m"
