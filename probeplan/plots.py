@@ -222,7 +222,8 @@ def site_map(config, result_or_score, path) -> Path:
     ax.set_xlabel(f"x ({unit})")
     ax.set_ylabel(f"y ({unit})")
     ax.set_title(f"{config.title}\nsite map: {int((~installed).sum())} new meter(s)", fontsize=11)
-    _legend_and_caption(fig, handles, SIGN_CAPTION)
+    shadow = "Walls and 3-D keep-outs are drawn as their shadows on the ground plan."
+    _legend_and_caption(fig, handles, f"{shadow}\n{SIGN_CAPTION}")
     return _save(fig, path, fmt)
 
 
