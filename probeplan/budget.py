@@ -10,9 +10,11 @@ the same ``submit`` interface) can take its place without changing this module.
 
 from __future__ import annotations
 
+import multiprocessing
 import os
+import signal
 from collections.abc import Callable
-from concurrent.futures import Executor, ProcessPoolExecutor, as_completed
+from concurrent.futures import FIRST_COMPLETED, Executor, ProcessPoolExecutor, wait
 from dataclasses import dataclass
 
 import numpy as np
@@ -34,6 +36,7 @@ class OptionPlan:
     value: float
     positions_m: np.ndarray  # (count, 3)
     gain: np.ndarray  # (count,)
+    complete: bool = True  # False when a stop request ended its search early
 
 
 def plan_chain(
@@ -42,6 +45,7 @@ def plan_chain(
     grade_name: str,
     counts: tuple[int, ...],
     evaluations: int | None = None,
+    stop_event=None,
 ) -> list[OptionPlan]:
     """Plan one grade at increasing counts, each starting from the previous plan.
 
@@ -53,18 +57,25 @@ def plan_chain(
     counts : tuple of int, increasing
     evaluations : int or None
         Refinement evaluations per plan (default: the config's).
+    stop_event : Event-like with ``is_set()`` or None
+        A stop request shared with the caller; the chain returns what it has when it is set.
 
     Returns
     -------
-    list of OptionPlan, one per count.
+    list of OptionPlan, one per count planned.
     """
     config = parse_config(config_text, config_path)
     grade = next(g for g in config.grades if g.name == grade_name)
+    stop = stop_event.is_set if stop_event is not None else None
     out: list[OptionPlan] = []
     warm = None
     for count in counts:
+        if stop is not None and stop():
+            break
         problem = build_problem(config, count=count, grade=grade)
-        outcome = plan(problem, warm_start_m=warm, evaluations=evaluations, random_layouts=0)
+        outcome = plan(
+            problem, warm_start_m=warm, evaluations=evaluations, random_layouts=0, stop=stop
+        )
         warm = outcome.positions_m
         out.append(
             OptionPlan(
@@ -74,9 +85,16 @@ def plan_chain(
                 value=float(outcome.score.value),
                 positions_m=outcome.positions_m,
                 gain=outcome.gain,
+                complete=outcome.complete,
             )
         )
     return out
+
+
+def _ignore_interrupts() -> None:
+    """Worker initialiser: Ctrl-C reaches the whole process group; only the parent handles it
+    (it sets the shared stop event, and the workers finish their current step)."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 
 def pareto_front(cost: np.ndarray, value: np.ndarray, maximise: bool) -> np.ndarray:
@@ -119,7 +137,8 @@ def run_budget(
     executor: Executor | None = None,
     progress: Callable[[str, int, int], None] | None = None,
     evaluations: int | None = None,
-) -> BudgetTable:
+    stop: Callable[[], bool] | None = None,
+) -> tuple[BudgetTable, bool]:
     """Plan every (count, grade) option of the config and tabulate cost against quality.
 
     Parameters
@@ -131,12 +150,17 @@ def run_budget(
         grade). Pass e.g. a Dask client to spread the sweep over a cluster.
     progress : callable(stage, done, total) or None
     evaluations : int or None
-        Refinement evaluations per plan (default: the config's).
+        Refinement evaluations per plan (default: ``[budget] evaluations``).
+    stop : callable() -> bool or None
+        Polled while the chains run; when it returns True the chains are asked to stop and the
+        options planned so far are tabulated.
 
     Returns
     -------
-    BudgetTable
+    table : BudgetTable
         Rows sorted by cost (then grade name, then count).
+    complete : bool
+        False when ``stop`` ended the sweep early (some options missing or cut short).
     """
     if config.budget is None or not config.grades:
         raise InputError(
@@ -144,32 +168,69 @@ def run_budget(
             "[[grade]] (name, noise_v_per_m, cost)."
         )
     counts = tuple(sorted(config.budget.counts))
+    evaluations = config.budget.evaluations if evaluations is None else evaluations
     grades = [g.name for g in config.grades]
     total = len(counts) * len(grades)
-    args = [(config.text, str(config.path), g, counts, evaluations) for g in grades]
     results: list[OptionPlan] = []
     if progress is not None:
         progress("budget options", 0, total)
     own = executor is None
-    if own:
-        workers = max(1, min(len(grades), os.cpu_count() or 1))
-        executor = ProcessPoolExecutor(max_workers=workers) if workers > 1 else None
+    workers = max(1, min(len(grades), os.cpu_count() or 1))
+    if own and workers > 1:
+        executor = ProcessPoolExecutor(max_workers=workers, initializer=_ignore_interrupts)
+    manager = multiprocessing.Manager() if own and executor is not None else None
+    event = manager.Event() if manager is not None else _LocalEvent()
+    args = [(config.text, str(config.path), g, counts, evaluations, event) for g in grades]
     try:
         if executor is None:
             for a in args:
-                results += plan_chain(*a)
+                if stop is not None and stop():
+                    event.set()
+                results += plan_chain(*a[:-1], stop_event=_polling(event, stop))
                 if progress is not None:
                     progress("budget options", len(results), total)
         else:
-            futures = [executor.submit(plan_chain, *a) for a in args]
-            for fut in as_completed(futures):
-                results += fut.result()
-                if progress is not None:
-                    progress("budget options", len(results), total)
+            pending = {executor.submit(plan_chain, *a) for a in args}
+            while pending:
+                done, pending = wait(pending, timeout=0.2, return_when=FIRST_COMPLETED)
+                for fut in done:
+                    results += fut.result()
+                    if progress is not None:
+                        progress("budget options", len(results), total)
+                if stop is not None and stop():
+                    event.set()
     finally:
         if own and executor is not None:
-            executor.shutdown(cancel_futures=True)
-    return tabulate(results, config)
+            executor.shutdown(wait=True, cancel_futures=True)
+        if manager is not None:
+            manager.shutdown()
+    complete = len(results) == total and all(o.complete for o in results)
+    return tabulate(results, config), complete
+
+
+class _LocalEvent:
+    """A stop flag for chains run in this process or in threads."""
+
+    def __init__(self) -> None:
+        self._set = False
+
+    def set(self) -> None:
+        self._set = True
+
+    def is_set(self) -> bool:
+        return self._set
+
+
+class _polling:  # noqa: N801 - a tiny adapter, used like a function
+    """An event whose ``is_set`` also polls the caller's stop callable (in-process chains)."""
+
+    def __init__(self, event, stop) -> None:
+        self.event, self.stop = event, stop
+
+    def is_set(self) -> bool:
+        if self.stop is not None and self.stop():
+            self.event.set()
+        return self.event.is_set()
 
 
 def tabulate(options: list[OptionPlan], config) -> BudgetTable:

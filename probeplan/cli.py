@@ -3,8 +3,17 @@
 Commands (the contract's "Command line"):
 
 * ``probeplan plan [CONFIG] [--out FILE.h5] [--force] [--resume FILE.h5] [--quiet]``
-* ``probeplan score CONFIG --layout LAYOUT.csv [--out FILE.h5] [--force]``
+* ``probeplan score CONFIG (--layout LAYOUT.csv | --from OLD.h5) [--out FILE.h5] [--force]``
+* ``probeplan budget CONFIG [--out FILE.h5] [--force] [--from OLD.h5 [--from-as MODE]]``
 * ``probeplan show FILE.h5``
+* ``probeplan simulate FILE.h5 [--trials N] [--seed S]`` — fits of simulated readings beside
+  the bounds, stored back into FILE.h5
+* ``probeplan plot FILE.h5 [--format png|svg] [--folder DIR]`` — site map, coverage map,
+  budget curve
+
+``--from OLD.h5`` (plan, budget) reruns after the geometry changed: the old probes are kept
+fixed as installed ones (``--from-as installed``) or start the search (``--from-as start``,
+the default), and the summary shows what changed.
 
 Exit status: 0 done, 2 bad input (one line ``probeplan: error: …``, no traceback, no result
 file), 130 after SIGINT/SIGTERM during ``plan`` (the best layout so far is written with
@@ -34,6 +43,8 @@ EXIT_INPUT = 2
 EXIT_INTERRUPTED = 130
 
 _DEMO = "demo.toml"
+FROM_MODES = ("start", "installed")
+PLOT_FORMATS = ("png", "svg")
 
 
 # --------------------------------------------------------------------------------------------
@@ -60,6 +71,24 @@ _LAYOUT_HELP = (
     "config, the same on every row); gain (calibration factor > 0, e.g. for a meter on a mast). "
     "Installed probes come from the config's [[probes.installed]] and are added in front."
 )
+
+
+def _add_from(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument(
+        "--from",
+        dest="from_file",
+        metavar="OLD.h5",
+        help="rerun from an earlier result (after the geometry changed); the summary shows "
+        "the probes added, moved and removed, and the criterion before and after",
+    )
+    parser.add_argument(
+        "--from-as",
+        dest="from_as",
+        choices=FROM_MODES,
+        default="start",
+        help="installed: keep the old probes fixed and place [probes] count new ones besides "
+        "them; start: use the old layout as the search's starting point (default)",
+    )
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -107,6 +136,7 @@ def build_parser() -> argparse.ArgumentParser:
         metavar="FILE.h5",
         help="continue from the layout and search history stored in FILE.h5",
     )
+    _add_from(p)
     p.add_argument(
         "--quiet", action="store_true", help="no progress bar and no summary; name the file only"
     )
@@ -117,9 +147,41 @@ def build_parser() -> argparse.ArgumentParser:
         description="Score a given layout of new probes (plus the config's installed ones).",
     )
     s.add_argument("config", metavar="CONFIG", help="TOML config")
-    s.add_argument("--layout", metavar="LAYOUT.csv", required=True, help=_LAYOUT_HELP)
+    src = s.add_mutually_exclusive_group(required=True)
+    src.add_argument("--layout", metavar="LAYOUT.csv", help=_LAYOUT_HELP)
+    src.add_argument(
+        "--from",
+        dest="from_file",
+        metavar="OLD.h5",
+        help="score the new probes of an earlier result under this config (its installed "
+        "probes come from the config); the summary compares with the stored score",
+    )
     s.add_argument("--out", metavar="FILE.h5", help="also write the result to this HDF5 file")
     s.add_argument("--force", action="store_true", help="overwrite an existing --out file")
+
+    b = sub.add_parser(
+        "budget",
+        help="compare instrumentation budgets (counts x grades x cost)",
+        description=(
+            "Plan a layout for every [budget] count with every [[grade]] of meter, score it, "
+            "price it, and mark the cheapest option that reaches [budget] target and the "
+            "Pareto front (no option both cheaper and better). Options run in parallel on the "
+            "local cores. Ctrl-C stops cleanly: the options planned so far are written with "
+            "complete = False and the exit status is 130."
+        ),
+    )
+    b.add_argument("config", metavar="CONFIG", help="TOML config with [budget] and [[grade]]")
+    b.add_argument(
+        "--out",
+        metavar="FILE.h5",
+        help="result file (default: <config name>-budget.h5 in the working folder, or "
+        "<name>-budget-2.h5 … if taken)",
+    )
+    b.add_argument("--force", action="store_true", help="overwrite an existing --out file")
+    _add_from(b)
+    b.add_argument(
+        "--quiet", action="store_true", help="no progress bar and no summary; name the file only"
+    )
 
     w = sub.add_parser(
         "show",
@@ -127,6 +189,41 @@ def build_parser() -> argparse.ArgumentParser:
         description="Print the terminal summary of a result file, from the file alone.",
     )
     w.add_argument("file", metavar="FILE.h5", help="result file written by plan or score")
+
+    m = sub.add_parser(
+        "simulate",
+        help="check a stored layout by simulated fits against its Cramér–Rao bounds",
+        description=(
+            "Draw noisy readings for the stored layout in several of its scenarios, fit the "
+            "estimated parameters by nonlinear least squares, and report the achieved location "
+            "and charge errors beside the Cramér–Rao bounds. The simulation is stored back "
+            "into FILE.h5 (rewritten atomically)."
+        ),
+    )
+    m.add_argument("file", metavar="FILE.h5", help="result file written by plan, score or budget")
+    m.add_argument(
+        "--trials", type=int, default=200, metavar="N", help="fits per scenario (default 200)"
+    )
+    m.add_argument(
+        "--seed", type=int, default=None, metavar="S", help="random seed (default: the config's)"
+    )
+
+    q = sub.add_parser(
+        "plot",
+        help="site map, coverage map and budget curve of a stored result",
+        description=(
+            "Draw the site map (regions, keep-outs, installed and new probes, the charge), the "
+            "coverage map (1-sigma location error of a charge at each horizontal position at "
+            "the nominal height) and, for a budget, the cost-against-criterion curve."
+        ),
+    )
+    q.add_argument("file", metavar="FILE.h5", help="result file")
+    q.add_argument("--format", dest="fmt", choices=PLOT_FORMATS, default="png", help="image format")
+    q.add_argument(
+        "--folder",
+        metavar="DIR",
+        help="where to write the images (default: <FILE stem>_plots next to FILE.h5)",
+    )
     return parser
 
 
@@ -155,7 +252,10 @@ def main(argv: list[str] | None = None) -> int:
         except SystemExit as exc:  # --help and --version
             return int(exc.code or 0)
         if args.command is None:
-            raise _UsageError("choose a command: plan, score or show (see `probeplan --help`)")
+            raise _UsageError(
+                "choose a command: plan, score, budget, show, simulate or plot "
+                "(see `probeplan --help`)"
+            )
         return _COMMANDS[args.command](args)
     except (_UsageError, InputError) as exc:
         report.print_error(str(exc))
@@ -298,8 +398,21 @@ def _cmd_plan(args: argparse.Namespace) -> int:
     force = bool(args.force) or (resume_path is not None and _same_file(out, resume_path))
     check_writable(out, force=force)  # before the search spends its time
 
+    old = None
+    base_config = config
+    if args.from_file:
+        if stored is not None:
+            raise InputError(
+                "give --resume or --from, not both: --resume continues a run, "
+                "--from starts a new one from an earlier result."
+            )
+        old = _read_old(args.from_file)
+        if args.from_as == "installed":
+            config = _with_old_installed(config, old)
     problem = _build_problem(config)
     warm = history = None
+    if old is not None and args.from_as == "start":
+        warm = _new_probes(old)
     if stored is not None:
         warm = stored.score.positions_m[~np.asarray(stored.score.installed, dtype=bool)]
         if warm.shape[0] != problem.count:
@@ -319,8 +432,17 @@ def _cmd_plan(args: argparse.Namespace) -> int:
     eff = d_efficiency(outcome.score.value, outcome.info.bound, problem.n_params)
     if eff is not None and problem.criterion.name == "d":
         extra["d_efficiency"] = float(eff)
+    changes = None
+    if old is not None:
+        changes = _changes(old, args.from_file, args.from_as, base_config, outcome.score)
     result = make_result(
-        "plan", config, outcome.score, search=outcome.info, complete=outcome.complete, extra=extra
+        "plan",
+        config,
+        outcome.score,
+        search=outcome.info,
+        complete=outcome.complete,
+        extra=extra,
+        changes=changes,
     )
     # A signal that arrives while the file is written must not leave it half-written:
     # write_result cleans its temporary up on any exception, KeyboardInterrupt included.
@@ -343,26 +465,37 @@ def _cmd_score(args: argparse.Namespace) -> int:
     from .store import check_writable, read_layout_csv, write_result
 
     config = _load_config(args.config)
-    layout = read_layout_csv(args.layout)
+    old = layout = grade = None
+    if args.from_file:
+        old = _read_old(args.from_file)
+        positions, gain = _new_probes(old), _new_gains(old)
+    else:
+        layout = read_layout_csv(args.layout)
+        positions = layout.positions_m
+        _check_components(config, layout)
+        grade = _layout_grade(config, layout)
     if args.out:
         check_writable(args.out, force=args.force)
-    _check_components(config, layout)
-    grade = _layout_grade(config, layout)
-    problem = _build_problem(config, count=layout.positions_m.shape[0], grade=grade)
-    gain = None
-    if layout.gains is not None and any(g is not None for g in layout.gains):
-        default = problem.gain_at(layout.positions_m)
-        gain = np.array(
-            [default[k] if g is None else g for k, g in enumerate(layout.gains)], dtype=float
-        )
+    problem = _build_problem(config, count=positions.shape[0], grade=grade)
+    if layout is not None:
+        gain = _csv_gains(problem, layout)
     with _as_input_error():  # e.g. a probe placed on a point charge: the layout's fault
-        score = problem.score(layout.positions_m, gain=gain)
-    result = make_result("score", config, score)
+        score = problem.score(positions, gain=gain)
+    changes = _changes(old, args.from_file, "start", config, score) if old is not None else None
+    result = make_result("score", config, score, changes=changes)
     report.print_result(result)
     if args.out:
         written = write_result(result, args.out, force=args.force)
         report.print_written(written)
     return EXIT_OK
+
+
+def _csv_gains(problem, layout) -> np.ndarray | None:
+    """Per-probe gains from the CSV; empty cells take the mounting region's gain."""
+    if layout.gains is None or all(g is None for g in layout.gains):
+        return None
+    default = problem.gain_at(layout.positions_m)
+    return np.array([default[k] if g is None else g for k, g in enumerate(layout.gains)])
 
 
 def _check_components(config, layout) -> None:
@@ -416,6 +549,123 @@ def _layout_grade(config, layout):
     return offered[named.pop()]
 
 
+def _cmd_budget(args: argparse.Namespace) -> int:
+    from .budget import chosen_option, run_budget
+    from .result import make_result
+    from .store import check_writable, free_name, write_result
+
+    config = base_config = _load_config(args.config)
+    old = None
+    if args.from_file:
+        old = _read_old(args.from_file)
+        if args.from_as == "installed":
+            config = _with_old_installed(config, old)
+    out = Path(args.out) if args.out else free_name(Path(config.path).stem + "-budget")
+    check_writable(out, force=args.force)
+    _build_problem(config)  # every config check before the sweep spends its time
+
+    flag = _StopFlag()
+    progress_cm = contextlib.nullcontext(None) if args.quiet else report.progress_bar()
+    with progress_cm as progress, _signals_to(flag):
+        with _as_input_error():
+            table, complete = run_budget(config, progress=progress, stop=flag)
+    if table.count.size == 0:
+        report.print_interrupted()
+        return EXIT_INTERRUPTED  # stopped before any option was planned: nothing to write
+    maximise = config.design.criterion == "d"
+    row = chosen_option(table, maximise)
+    grade = next(g for g in config.grades if g.name == table.grade[row])
+    problem = _build_problem(config, count=int(table.count[row]), grade=grade)
+    score = problem.score(table.layouts[row])
+    changes = None
+    if old is not None:
+        changes = _changes(old, args.from_file, args.from_as, base_config, score)
+    result = make_result(
+        "budget",
+        config,
+        score,
+        budget=table,
+        complete=complete,
+        extra={"budget_row_scored": float(row)},
+        changes=changes,
+    )
+    written = write_result(result, out, force=args.force)
+    if not args.quiet:
+        report.print_result(result)
+    report.print_written(written, complete=complete)
+    return EXIT_OK if complete else EXIT_INTERRUPTED
+
+
+# --------------------------------------------------------------------------------------------
+# --from: rerun from an earlier result
+# --------------------------------------------------------------------------------------------
+
+
+def _read_old(path: str):
+    from .store import read_result
+
+    old = read_result(path)
+    if old.command not in ("plan", "score", "budget"):
+        raise InputError(f"{path}: holds a `{old.command}` result, not a layout to start from.")
+    return old
+
+
+def _new_probes(old) -> np.ndarray:
+    """(n, 3) float: the new (not installed) probes of a stored result."""
+    return old.score.positions_m[~np.asarray(old.score.installed, dtype=bool)]
+
+
+def _with_old_installed(config, old):
+    """The config with every probe of ``old`` added as installed (those already there kept)."""
+    from dataclasses import replace
+
+    from .config import InstalledProbe
+
+    have = config.installed_m
+    extra = []
+    for k, pos in enumerate(old.score.positions_m):
+        if have.shape[0] and np.min(np.linalg.norm(have - pos, axis=1)) < 1e-6:
+            continue
+        gain = float(old.score.gain[k])
+        extra.append(InstalledProbe(tuple(float(v) for v in pos), f"kept-{k}", None, gain))
+    return replace(config, installed=tuple(config.installed) + tuple(extra))
+
+
+def _new_gains(old) -> np.ndarray:
+    return old.score.gain[~np.asarray(old.score.installed, dtype=bool)]
+
+
+def _changes(old, old_path: str, mode: str, config, score):
+    """What changed against the earlier result: probes and the criterion before and after.
+
+    ``config`` is the current config as the user wrote it (without the old probes added as
+    installed): the old layout is rescored under it to show the criterion before the change.
+    """
+    from .result import Changes, compare_layouts
+
+    old_new = _new_probes(old)
+    rescored = float("nan")
+    if old_new.shape[0]:
+        problem = _build_problem(config, count=old_new.shape[0])
+        with _as_input_error():
+            rescored = float(problem.score(old_new, gain=_new_gains(old)).value)
+    radius = max(float(config.probes.min_spacing_m), 0.05 * _site_extent(config.site()))
+    parts = compare_layouts(old.score.positions_m, score.positions_m, radius)
+    return Changes(
+        old_path=str(old_path),
+        mode=mode,
+        old_value=float(old.score.value),
+        old_rescored=rescored,
+        **parts,
+    )
+
+
+def _site_extent(site) -> float:
+    """Diagonal of the candidate grid's bounding box, m (a length scale for 'moved')."""
+    pts = site.candidate_grid(target=200).positions_m
+    return float(np.linalg.norm(pts.max(axis=0) - pts.min(axis=0))) if pts.size else 0.0
+
+
 def _cmd_show(args: argparse.Namespace) -> int:
     from .store import read_result
 
@@ -424,4 +674,61 @@ def _cmd_show(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-_COMMANDS = {"plan": _cmd_plan, "score": _cmd_score, "show": _cmd_show}
+def _stored_problem(result):
+    """The config and problem of a stored result, with the count and grade of its layout."""
+    config = _parse_config_text(result.config_text, result.config_path)
+    new = ~np.asarray(result.score.installed, dtype=bool)
+    grade = None
+    if result.budget is not None:
+        row = int(result.extra.get("budget_row_scored", -1))
+        if row >= 0:
+            grade = next((g for g in config.grades if g.name == result.budget.grade[row]), None)
+    problem = _build_problem(config, count=int(new.sum()), grade=grade)
+    return config, problem, result.score.positions_m[new], result.score.gain[new]
+
+
+def _cmd_simulate(args: argparse.Namespace) -> int:
+    from dataclasses import replace
+
+    from .simulate import simulate
+    from .store import read_result, write_result
+
+    if args.trials < 2:
+        raise InputError(f"--trials must be a whole number >= 2; got {args.trials}.")
+    result = read_result(args.file)
+    config, problem, positions, gain = _stored_problem(result)
+    seed = config.seed if args.seed is None else args.seed
+    with _as_input_error():
+        sim = simulate(
+            problem, positions, gain, trials=args.trials, rng=np.random.default_rng(seed)
+        )
+    result = replace(result, simulation=sim)
+    report.print_result(result)
+    written = write_result(result, args.file, force=True)
+    report.print_written(written)
+    return EXIT_OK
+
+
+def _cmd_plot(args: argparse.Namespace) -> int:
+    from .plots import plot_all
+    from .store import read_result
+
+    result = read_result(args.file)
+    config, problem, _, _ = _stored_problem(result)
+    src = Path(args.file)
+    folder = Path(args.folder) if args.folder else src.with_name(src.stem + "_plots")
+    folder.mkdir(parents=True, exist_ok=True)
+    with _as_input_error():
+        paths = plot_all(result, config, problem, folder, fmt=args.fmt)
+    report.print_plots(paths)
+    return EXIT_OK
+
+
+_COMMANDS = {
+    "plan": _cmd_plan,
+    "score": _cmd_score,
+    "budget": _cmd_budget,
+    "show": _cmd_show,
+    "simulate": _cmd_simulate,
+    "plot": _cmd_plot,
+}

@@ -119,7 +119,7 @@ _DESIGN_KEYS = (
     "random_layouts",
 )
 _GRADE_KEYS = ("name", "noise_v_per_m", "relative_noise", "cost", "range_v_per_m")
-_BUDGET_KEYS = ("counts", "target")
+_BUDGET_KEYS = ("counts", "target", "evaluations")
 
 _XYZ = "3 numbers (x, y, z) in metres"
 
@@ -291,10 +291,15 @@ class BudgetSpec:
         Sorted, distinct, each >= 1.
     target : float or None
         The criterion must reach this (>= for ``d``, <= for the others).
+    evaluations : int
+        Continuous-refinement evaluations per option (default 0: each option is planned by
+        greedy + exchange on the candidate grid, which ranks options well at a fraction of the
+        time; raise it to polish every option).
     """
 
     counts: tuple[int, ...]
     target: float | None = None
+    evaluations: int = 0
 
 
 @dataclass(frozen=True)
@@ -877,7 +882,8 @@ def _parse_budget(root: _Table, grades: tuple[Grade, ...], design: DesignSpec) -
             f"`{t.key('target')}` must be > 0 for criterion {_show(design.criterion)} (a bound "
             f"to stay under); got {target!r}."
         )
-    return BudgetSpec(counts=tuple(sorted(counts)), target=target)
+    evaluations = t.integer("evaluations", default=0, ge=0)
+    return BudgetSpec(counts=tuple(sorted(counts)), target=target, evaluations=evaluations)
 
 
 def _check_feasible(ck: _Checker, config: Config) -> None:

@@ -547,6 +547,13 @@ def print_written(path, complete: bool = True, console: Console | None = None) -
     con.print(line, soft_wrap=True)
 
 
+def print_plots(paths, console: Console | None = None) -> None:
+    """List the image files a ``plot`` command wrote."""
+    con = _console(console)
+    for path in paths:
+        con.print(f"Plot written to {path}", markup=False, highlight=False)
+
+
 def print_error(message: str, console: Console | None = None) -> None:
     """One line on standard error: ``probeplan: error: <message>``."""
     _line(f"probeplan: error: {message}", console)

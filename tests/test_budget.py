@@ -59,7 +59,7 @@ def _config(target: float = -20.0):
 @pytest.fixture(scope="module")
 def table():
     with ThreadPoolExecutor(max_workers=2) as pool:
-        return run_budget(_config(), executor=pool)
+        return run_budget(_config(), executor=pool)[0]
 
 
 def test_cost_is_count_times_unit_cost(table):
@@ -103,7 +103,8 @@ def test_target_and_cheapest(table):
 def test_no_option_meets_an_impossible_target():
     cfg = _config(target=1e6)
     with ThreadPoolExecutor(max_workers=2) as pool:
-        tab = run_budget(cfg, executor=pool)
+        tab, complete = run_budget(cfg, executor=pool)
+    assert complete
     assert tab.cheapest == -1 and not tab.meets_target.any()
 
 

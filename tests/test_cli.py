@@ -246,9 +246,9 @@ def test_missing_or_wrong_files(site, capsys, argv, message):
 @pytest.mark.parametrize(
     ("argv", "message"),
     [
-        ([], r"choose a command: plan, score or show"),
+        ([], r"choose a command: plan, score, budget, show, simulate or plot"),
         (["frobnicate"], r"invalid choice: 'frobnicate'"),
-        (["score", "x.toml"], r"the following arguments are required: --layout"),
+        (["score", "x.toml"], r"one of the arguments --layout --from is required"),
         (["plan", "--bogus"], r"unrecognized arguments: --bogus"),
         (["show"], r"the following arguments are required: FILE\.h5"),
     ],
