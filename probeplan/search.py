@@ -623,6 +623,8 @@ def plan(
         # The stored layout (exact positions, perhaps off the grid) stays in the race; a
         # smaller one (a budget's previous count) is extended greedily from the grid.
         warm = np.asarray(warm_start_m, dtype=float).reshape(-1, 3)[:count]
+        # Probes the current rules forbid (a new keep-out, a region given up) are dropped.
+        warm = _feasible_subset(site, warm)
         warm_gain = problem.gain_at(warm)
         if warm.shape[0] < count:
             extra = _extend(problem, obj, cand, gains_c, warm, warm_gain, count, min_sp, robust)
@@ -690,6 +692,18 @@ def plan(
         objective="worst single loss" if robust else "criterion",
     )
     return PlanOutcome(layout, gain, score, info, complete=not stopped)
+
+
+def _feasible_subset(site, layout: np.ndarray) -> np.ndarray:
+    """The probes of ``layout (k, 3)`` that the mounting rules allow, kept in order, each
+    also spaced from those kept before it: ``(k', 3)``."""
+    keep: list[int] = []
+    allowed = site.allowed(layout)
+    for i in np.nonzero(allowed)[0]:
+        trial = layout[keep + [int(i)]][None]
+        if site.spacing_ok(trial)[0]:
+            keep.append(int(i))
+    return layout[keep]
 
 
 def _extend(problem, obj, cand, gains_c, fixed_m, fixed_gain, count, min_sp, robust):

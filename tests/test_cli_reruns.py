@@ -1,0 +1,220 @@
+"""The commands of a user's second day: budget, reruns with --from, simulate and plot."""
+
+from __future__ import annotations
+
+import struct
+
+import numpy as np
+import pytest
+
+from probeplan.cli import main
+from probeplan.store import read_result
+
+# A tiny invented site (fictional numbers): every command runs in seconds.
+SITE = """title = "Rerun test site (fictional)"
+seed = 5
+
+[ground]
+z_m = 0.0
+
+[probes]
+count = 4
+component = "z"
+noise_v_per_m = 20.0
+min_spacing_m = 300.0
+
+[[probes.installed]]
+name = "mast"
+position_m = [-1500.0, -1000.0, 0.0]
+
+[[region]]
+kind = "rectangle"
+min_m = [-2000.0, -2000.0]
+max_m = [2000.0, 2000.0]
+z_m = 0.0
+{keepout}
+[[source]]
+kind = "point"
+charge_c = -20.0
+center_m = [0.0, 0.0, 3000.0]
+estimate = ["charge", "x", "y", "z"]
+center_range_m = [[-500.0, 500.0], [-500.0, 500.0], [2500.0, 3500.0]]
+
+[design]
+scenarios = 4
+evaluations = 0
+random_layouts = 10
+grid_spacing_m = 500.0
+
+[[grade]]
+name = "basic"
+noise_v_per_m = 40.0
+cost = 1000.0
+
+[[grade]]
+name = "fine"
+noise_v_per_m = 10.0
+cost = 2500.0
+
+[budget]
+counts = [3, 5]
+target = -30.0
+"""
+
+# A new building appears in the north-east quarter: a keep-out for the rerun.
+BUILDING = """
+[[keepout]]
+kind = "rectangle"
+min_m = [0.0, 0.0]
+max_m = [2000.0, 2000.0]
+"""
+
+
+@pytest.fixture()
+def site(tmp_path, monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    (tmp_path / "site.toml").write_text(SITE.format(keepout=""))
+    (tmp_path / "site2.toml").write_text(SITE.format(keepout=BUILDING))
+    return tmp_path
+
+
+@pytest.fixture()
+def planned(site):
+    assert main(["plan", "site.toml", "--out", "old.h5", "--quiet"]) == 0
+    return read_result(site / "old.h5")
+
+
+def test_score_from_an_old_result_reproduces_its_score(planned, capsys):
+    assert main(["score", "site.toml", "--from", "old.h5", "--out", "again.h5"]) == 0
+    again = read_result("again.h5")
+    assert again.score.value == pytest.approx(planned.score.value, rel=1e-12)
+    np.testing.assert_allclose(again.score.fisher, planned.score.fisher, rtol=1e-12)
+    assert again.changes is not None
+    assert again.changes.added_m.shape[0] == 0 and again.changes.removed_m.shape[0] == 0
+    assert again.changes.old_rescored == pytest.approx(planned.score.value, rel=1e-12)
+    assert "Changes against old.h5" in capsys.readouterr().out
+
+
+def test_rerun_with_old_probes_installed_keeps_them_fixed(planned):
+    code = main(
+        [
+            "plan",
+            "site2.toml",
+            "--from",
+            "old.h5",
+            "--from-as",
+            "installed",
+            "--out",
+            "new.h5",
+            "--quiet",
+        ]
+    )
+    assert code == 0
+    new = read_result("new.h5")
+    installed = new.score.positions_m[new.score.installed]
+    # Every probe of the old layout is installed now, at exactly its old position.
+    for pos in planned.score.positions_m:
+        assert np.min(np.linalg.norm(installed - pos, axis=1)) == 0.0
+    added = new.score.positions_m[~new.score.installed]
+    assert added.shape == (4, 3)
+    # The new probes respect the new keep-out.
+    assert not np.any((added[:, 0] >= 0) & (added[:, 1] >= 0))
+    assert new.changes.mode == "installed"
+    assert new.changes.added_m.shape[0] == 4 and new.changes.removed_m.shape[0] == 0
+    # More probes, same site: the information can only grow (Loewner order), so does d.
+    assert new.score.value >= planned.score.value
+
+
+def test_rerun_from_old_start_reports_changes(planned):
+    assert main(["plan", "site2.toml", "--from", "old.h5", "--out", "new.h5", "--quiet"]) == 0
+    new = read_result("new.h5")
+    ch = new.changes
+    assert ch.mode == "start"
+    n_old, n_new = len(planned.score.positions_m), len(new.score.positions_m)
+    kept, moved = ch.kept_m.shape[0], ch.moved_to_m.shape[0]
+    assert kept + moved + ch.added_m.shape[0] == n_new
+    assert kept + moved + ch.removed_m.shape[0] == n_old
+    added = new.score.positions_m[~new.score.installed]
+    assert not np.any((added[:, 0] >= 0) & (added[:, 1] >= 0)), "new keep-out honoured"
+
+
+def test_resume_and_from_do_not_mix(planned, capsys):
+    code = main(["plan", "site.toml", "--resume", "old.h5", "--from", "old.h5", "--quiet"])
+    assert code == 2
+    assert "give --resume or --from, not both" in capsys.readouterr().err
+
+
+def test_budget_writes_the_table(site, capsys):
+    assert main(["budget", "site.toml", "--quiet"]) == 0
+    res = read_result(site / "site-budget.h5")
+    b = res.budget
+    assert res.command == "budget" and res.complete
+    assert sorted(zip(b.count.tolist(), b.grade.tolist(), strict=True)) == [
+        (3, "basic"),
+        (3, "fine"),
+        (5, "basic"),
+        (5, "fine"),
+    ]
+    unit = {"basic": 1000.0, "fine": 2500.0}
+    np.testing.assert_array_equal(
+        b.cost, [c * unit[g] for c, g in zip(b.count, b.grade, strict=True)]
+    )
+    np.testing.assert_array_equal(b.meets_target, b.value >= -30.0)
+    if b.cheapest >= 0:
+        assert b.cost[b.cheapest] == b.cost[b.meets_target].min()
+    # The scored layout is the cheapest option that meets the target (or the best one).
+    row = b.cheapest if b.cheapest >= 0 else int(np.argmax(b.value))
+    np.testing.assert_allclose(res.score.positions_m[~res.score.installed], b.layouts[row])
+    assert res.score.value == pytest.approx(b.value[row], rel=1e-9)
+
+
+def test_budget_without_grades_is_bad_input(site, capsys):
+    text = SITE.format(keepout="").split("[[grade]]")[0]
+    (site / "nogrades.toml").write_text(text)
+    assert main(["budget", "nogrades.toml"]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("probeplan: error: nogrades.toml:")
+    assert "[budget] table" in err and not (site / "nogrades-budget.h5").exists()
+
+
+def test_simulate_stores_its_fits_in_the_file(planned, capsys):
+    assert main(["simulate", "old.h5", "--trials", "20"]) == 0
+    out = capsys.readouterr().out
+    assert "Simulated fits" in out
+    res = read_result("old.h5")
+    sim = res.simulation
+    assert sim is not None and sim.trials == 20
+    assert sim.rms_error.shape == sim.crb_std.shape
+    assert np.all(np.isfinite(sim.crb_std))
+    # The rest of the result is untouched.
+    assert res.score.value == planned.score.value
+
+
+def test_simulate_rejects_too_few_trials(planned, capsys):
+    assert main(["simulate", "old.h5", "--trials", "1"]) == 2
+    assert "--trials must be a whole number >= 2" in capsys.readouterr().err
+
+
+def _png_size(path):
+    # PNG: 8-byte signature, then the IHDR chunk whose data starts with width, height
+    # (big-endian 32-bit) — the PNG specification (ISO/IEC 15948), section 11.2.2.
+    head = path.read_bytes()[:24]
+    assert head[:8] == b"\x89PNG\r\n\x1a\n"
+    return struct.unpack(">II", head[16:24])
+
+
+def test_plot_writes_images(planned, site, capsys):
+    assert main(["plot", "old.h5"]) == 0
+    folder = site / "old_plots"
+    files = sorted(p.name for p in folder.iterdir())
+    assert files == ["coverage_map.png", "site_map.png"]
+    for name in files:
+        w, h = _png_size(folder / name)
+        assert w > 400 and h > 300
+    assert main(["plot", "old.h5", "--format", "svg", "--folder", "svgs"]) == 0
+    assert (site / "svgs" / "site_map.svg").read_text().lstrip().startswith("<?xml")
+
+
+def test_plot_rejects_an_unknown_format(planned, capsys):
+    assert main(["plot", "old.h5", "--format", "bmp"]) == 2
+    assert "invalid choice: 'bmp'" in capsys.readouterr().err
