@@ -272,11 +272,13 @@ def _ratio(result: Result, value: float, other: float) -> str:
             plan_better = math.isfinite(value)
             return "inf" if plan_better else "0"
         return "n/a"
-    if s.criterion == "d":
-        return f"{math.exp((value - other) / n):.3g}"
-    if value == 0:
+    ratio = (
+        math.exp((value - other) / n) if s.criterion == "d" else (other / value if value else None)
+    )
+    if ratio is None:
         return "n/a"
-    return f"{other / value:.3g}"
+    # Three decimals near 1, where stages differ by fractions of a percent; else 3 digits.
+    return f"{ratio:.3f}" if 0.1 <= ratio < 10 else f"{ratio:.3g}"
 
 
 def _plan_objective(result: Result) -> float:
