@@ -311,7 +311,7 @@ def _search_table(result: Result) -> Table:
             continue  # a stage's layout kept as a baseline: already on its stage row
         row = (_value(b.value), _ratio(result, plan, b.value))
         table.add_row(Text(f"baseline: {b.name}"), *row)
-    table.add_row("the plan", _value(plan), "1", style="bold")
+    table.add_row("the plan", _value(plan), _ratio(result, plan, plan), style="bold")
     return table
 
 
