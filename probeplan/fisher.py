@@ -50,7 +50,9 @@ def fisher_from_rows(rows: np.ndarray) -> np.ndarray:
     (..., n_params, n_params) float
         J = Σ rows rowsᵀ, in 1/(unit θ_i · unit θ_j).
     """
-    return np.einsum("...rp,...rq->...pq", rows, rows)
+    # A stacked matrix product: about 3x faster than the equivalent einsum on the small
+    # (n_readings, n_params) blocks of a batch of layouts; same sums, rounded in another order.
+    return np.matmul(np.swapaxes(rows, -1, -2), rows)
 
 
 def _scaled(fisher: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
