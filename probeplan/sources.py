@@ -565,9 +565,15 @@ def _grid_corner_terms(xi, eta, zeta, want_grad):
     at_x = _atan_ratio(eta * zeta, xi * r)
     at_y = _atan_ratio(xi * zeta, eta * r)
     at_z = _atan_ratio(xi * eta, zeta * r)
-    gx = eta * ln_z + zeta * ln_y - xi * at_x
-    gy = zeta * ln_x + xi * ln_z - eta * at_y
-    gz = xi * ln_y + eta * ln_x - zeta * at_z
+    with np.errstate(invalid="ignore"):
+        gx = eta * ln_z + zeta * ln_y - xi * at_x
+        gy = zeta * ln_x + xi * ln_z - eta * at_y
+        gz = xi * ln_y + eta * ln_x - zeta * at_z
+    # At a cell vertex (R = 0) the logs are -inf and 0 * -inf gave NaN, but every term tends to
+    # 0 there (|η ln(ζ + R)| <= R |ln R| -> 0): the field at a vertex is finite, so use the limit.
+    vertex = r == 0.0
+    if np.any(vertex):
+        gx, gy, gz = (np.where(vertex, 0.0, g) for g in (gx, gy, gz))
     if not want_grad:
         return (gx, gy, gz), None
     grad = (at_x, at_y, at_z, -ln_z, -ln_y, -ln_x)  # xx, yy, zz, xy, xz, yz
