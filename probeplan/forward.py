@@ -63,7 +63,13 @@ class Scene:
         srcs = _as_sources(self.sources)
         object.__setattr__(self, "sources", srcs)
         if self.ground_z_m is not None:
-            g = float(self.ground_z_m)
+            # A non-number used to surface as float()'s own message, naming no argument.
+            try:
+                g = float(self.ground_z_m)
+            except (TypeError, ValueError):
+                raise ValueError(
+                    f"`ground_z_m` must be a finite number or None; got {self.ground_z_m!r}."
+                ) from None
             if not np.isfinite(g):
                 raise ValueError(f"`ground_z_m` must be a finite number or None; got {g}.")
             object.__setattr__(self, "ground_z_m", g)

@@ -287,7 +287,14 @@ class DensityGrid(_SourceBase):
         rho.setflags(write=False)
         object.__setattr__(self, "density_c_per_m3", rho)
         object.__setattr__(self, "origin_m", _vector3(self.origin_m, "origin_m"))
-        sp = np.broadcast_to(np.asarray(self.spacing_m, dtype=float), (3,))
+        sp = np.asarray(self.spacing_m, dtype=float)
+        # Checked before broadcasting: numpy's own broadcast error does not name the argument.
+        if sp.shape not in ((), (1,), (3,)):
+            got = sp.size if sp.ndim == 1 else f"shape {sp.shape}"
+            raise ValueError(
+                f"`spacing_m` must be one number or 3 numbers (dx, dy, dz) in metres; got {got}."
+            )
+        sp = np.broadcast_to(sp, (3,))
         if not np.all(np.isfinite(sp)) or np.any(sp <= 0):
             raise ValueError(f"`spacing_m` must be > 0 and finite; got {sp.tolist()}.")
         object.__setattr__(self, "spacing_m", (float(sp[0]), float(sp[1]), float(sp[2])))
