@@ -235,8 +235,13 @@ def _geometry(kind: str, members: list) -> tuple[object, object]:
         return hv, np.concatenate([hv, hv * np.array([1.0, 1.0, -1.0])])
     if kind == "grid":
         grids = tuple(members)
+        # The image density is negated here, not only through the charge parameter: a neutral
+        # grid has no charge to negate (its kernel keeps the density as given), and without the
+        # sign its image doubled the tangential field on the plane instead of cancelling it.
+        # For a charged grid the kernel divides by the image's own (now negated) total charge,
+        # so its result is unchanged.
         images = tuple(
-            DensityGrid(m.density_c_per_m3[:, :, ::-1], m.origin_m, m.spacing_m) for m in members
+            DensityGrid(-m.density_c_per_m3[:, :, ::-1], m.origin_m, m.spacing_m) for m in members
         )
         return grids, grids + images
     return None, None
