@@ -44,6 +44,9 @@ PRIOR_FRACTION = 1e-8
 #: Stop the relaxation when its certified gap is below this (in log det units, per parameter).
 BOUND_GAP_PER_PARAM = 2e-3
 
+#: Half-width of each probe's refinement box, in candidate-grid spacings.
+REFINE_RADIUS_CELLS = 1.5
+
 #: Objective evaluations per Bayesian step: asked and told in small batches (constant liar).
 BO_BATCH = 4
 
@@ -396,6 +399,27 @@ def relaxation_bound(
 # --------------------------------------------------------------------------------------------
 
 
+def _trust_box(region, position: np.ndarray, radius_m: float | None) -> list[tuple[float, float]]:
+    """Unit-coordinate bounds of a box of half-width ``radius_m`` around ``position``."""
+    dim = region.unit_dim
+    if radius_m is None or region.kind == "points":
+        return [(0.0, 1.0)] * dim
+    u0 = np.asarray(region.to_unit(position), dtype=float).reshape(dim)
+    # Metres per unit coordinate along each axis, from two nearby mapped points.
+    box = []
+    for k in range(dim):
+        step = np.zeros(dim)
+        step[k] = 1e-3
+        a = region.from_unit(np.clip(u0 - step, 0, 1)[None])[0]
+        b = region.from_unit(np.clip(u0 + step, 0, 1)[None])[0]
+        du = abs(np.clip(u0 + step, 0, 1)[k] - np.clip(u0 - step, 0, 1)[k])
+        metres_per_unit = np.linalg.norm(b - a) / du if du > 0 else 0.0
+        half = radius_m / metres_per_unit if metres_per_unit > 0 else 1.0
+        lo, hi = max(0.0, u0[k] - half), min(1.0, u0[k] + half)
+        box.append((float(lo), float(hi)) if hi > lo else (0.0, 1.0))
+    return box
+
+
 def _make_gp(dim: int):
     from skopt.learning import GaussianProcessRegressor
     from skopt.learning.gaussian_process.kernels import ConstantKernel, Matern
@@ -420,8 +444,14 @@ def refine(
     stop: Callable[[], bool] | None = None,
     record: Callable[[float], None] | None = None,
     progress: Callable[[int], None] | None = None,
+    radius_m: float | None = None,
 ) -> tuple[np.ndarray, float, int]:
     """Move one probe at a time in its region's continuous coordinates (scikit-optimize).
+
+    Each probe is searched in a trust box of half-width ``radius_m`` around its position (in
+    its region's unit coordinates): the grid stages have already found the right
+    neighbourhood, and a dozen or two Gaussian-process calls can refine a small box but not
+    rediscover a whole site.
 
     Parameters
     ----------
@@ -434,6 +464,8 @@ def refine(
     budget : int
         Objective evaluations to spend.
     rng : numpy Generator
+    radius_m : float or None
+        Half-width of each probe's search box, m (None: the whole region).
 
     Returns
     -------
@@ -459,8 +491,9 @@ def refine(
             break
         region = site.regions[regions[i]]
         dim = region.unit_dim
+        box = _trust_box(region, layout[i], radius_m)
         opt = Optimizer(
-            [(0.0, 1.0)] * dim,
+            box,
             base_estimator=_make_gp(dim),
             n_initial_points=min(BO_BATCH, per_probe),
             acq_optimizer="sampling",
@@ -471,6 +504,10 @@ def refine(
         best_pos, best_val = layout[i].copy(), current
         spent = 0
         worst_y = -np.inf
+        # The incumbent position is the first point the optimiser knows (a GP needs finite y).
+        if np.isfinite(current):
+            u0 = np.clip(region.to_unit(layout[i]), *np.array(box).T)
+            opt.tell([list(map(float, u0))], [-current if maximise else current])
         while spent < n_here:
             if stop is not None and stop():
                 break
@@ -654,6 +691,7 @@ def plan(
             regions,
             evaluations,
             rng,
+            radius_m=REFINE_RADIUS_CELLS * cand.spacing_m if cand.spacing_m > 0 else None,
             stop=halted,
             record=hist.append,
             progress=lambda k: tick("refine", k, evaluations),
