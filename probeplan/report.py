@@ -353,6 +353,11 @@ def _search_notes(result: Result) -> Text:
             eff = math.exp((s.value - info.bound) / n)
             text.append(f"  D-efficiency: {100.0 * eff:.1f} % of the bound, ")
             text.append("exp((plan - bound)/n_params)\n")
+            if eff > 1.0:
+                text.append(
+                    "  (above 100 %: the refinement moved probes off the grid, where the bound "
+                    "does not apply)\n"
+                )
     text.append(
         f"  candidate grid: {info.n_candidates} points, spacing "
         f"{format_quantity(info.grid_spacing_m, 'm')}; "
