@@ -27,6 +27,9 @@ BACKGROUND_PARAMS: tuple[str, ...] = ("bg.x_v_per_m", "bg.y_v_per_m", "bg.z_v_pe
 
 # Multiply-adds per stacked matrix product in the Jacobian assembly (see _small_products).
 _PRODUCT_ELEMENTS = 1 << 16
+# Largest (kernel columns × kept columns) mapped by a matrix product in Scene._assemble
+# (measured crossover with the in-place path: between 300 and 800, 64 scenarios, 1 MB blocks).
+_SMALL_MAP = 512
 
 
 @dataclass(frozen=True)
@@ -181,27 +184,50 @@ class Scene:
     def _assemble(self, blocks, cols: np.ndarray, n_s: int, n_pts: int) -> np.ndarray:
         """∂E/∂θ of the kept columns from the kernels' blocks, ``(S, M, 3, n_cols)``.
 
-        Each kind's block is mapped onto the kept θ columns by one matrix product with a 0/±1
-        matrix: image columns enter with charge and height negated (chain rule through q' = −q,
-        z' = 2g − z). One BLAS call replaces strided adds, a scatter and a column gather; every
-        output entry is still real ± image rounded once, so the values are unchanged. The
-        kernels return finite values (points on a point or line charge are rejected there), so
-        the zero entries of the matrix add exact zeros.
+        Image columns enter with charge and height negated (chain rule through q' = −q,
+        z' = 2g − z). A kind with few parameters is mapped onto the kept θ columns by one
+        small matrix product with a 0/±1 matrix, which replaces strided adds, a scatter and a
+        column gather (every entry is still real ± image rounded once, and the kernels return
+        finite values, so the zeros of the matrix add exact zeros). With many sources that
+        matrix would grow with the square of the parameter count, so there the images are
+        added in place and the kept columns copied.
         """
         n_rows = n_s * n_pts * 3
-        full = (np.empty if blocks else np.zeros)((n_s, n_pts, 3, cols.size))
-        flat = full.reshape(n_rows, cols.size)
-        for k, (grp, jac) in enumerate(blocks):
-            kept = (grp.columns.reshape(-1, 1) == cols[None, :]).astype(float)  # (N*P, n_cols)
-            if self.ground_z_m is not None:  # real sources followed by their images
-                p = np.arange(grp.columns.size) % grp.columns.shape[1]
-                sign = np.where((p == 0) | (p == 3), -1.0, 1.0)
-                kept = np.concatenate([kept, kept * sign[:, None]])
-            block = jac.reshape(n_rows, kept.shape[0])
-            if k == 0:
-                _small_products(block, kept, flat)
-            else:
-                flat += _small_products(block, kept, np.empty_like(flat))
+        shape = (n_s, n_pts, 3, cols.size)
+        ground = self.ground_z_m is not None
+        full = None
+        for grp, jac in blocks:
+            n_src, n_par = grp.columns.shape
+            kept = grp.columns.reshape(-1, 1) == cols[None, :]  # (N*P, n_cols)
+            n_in = jac.shape[3] * n_par
+            if n_in * cols.size <= _SMALL_MAP:
+                m = kept.astype(float)
+                if ground:
+                    sign = np.where(np.isin(np.arange(n_par), (0, 3)), -1.0, 1.0)
+                    m = np.concatenate([m, m * np.tile(sign, n_src)[:, None]])
+                block = jac.reshape(n_rows, n_in)
+                if full is None:
+                    full = np.empty(shape)
+                    _small_products(block, m, full.reshape(n_rows, cols.size))
+                else:
+                    full.reshape(n_rows, cols.size)[...] += _small_products(
+                        block, m, np.empty((n_rows, cols.size))
+                    )
+                continue
+            if full is None:
+                full = np.zeros(shape)
+            if ground:
+                img = jac[:, :, :, n_src:]
+                img[..., 0] *= -1.0
+                img[..., 3] *= -1.0
+                jac = jac[:, :, :, :n_src]
+                jac += img
+            src = jac.reshape(n_s, n_pts, 3, n_src * n_par)
+            j_out = np.flatnonzero(kept.any(axis=0))
+            f_src = kept.argmax(axis=0)[j_out]
+            full[..., j_out] = src[..., f_src]
+        if full is None:
+            full = np.zeros(shape)
         if self.background:
             first = self.n_params - 3
             j = np.flatnonzero(cols >= first)
