@@ -306,10 +306,17 @@ def test_scenario_batch_equals_one_at_a_time():
     thetas = _fd_thetas(scene, rng, n_scenarios=6)
     pts = _points_for(scene, rng, n=40)
     e, jac = scene.evaluate(thetas, pts)
+    # The grid's corner sums are ill-conditioned (~1e-10 relative here) and the batch size
+    # changes how they are blocked and summed, so its columns (and the field) get 1e-8; the
+    # closed-form kinds must agree to rounding.
+    grid_src = [f"s{i}." for i, src in enumerate(scene.sources) if src.kind == "grid"]
+    is_grid = np.array([n.startswith(tuple(grid_src)) for n in scene.param_names])
+    rel = np.where(is_grid, 1e-8, 1e-13)
     for s in range(len(thetas)):
         e1, jac1 = scene.evaluate(thetas[s : s + 1], pts)
-        np.testing.assert_allclose(e[s], e1[0], rtol=1e-13, atol=1e-13 * np.abs(e1).max())
-        np.testing.assert_allclose(jac[s], jac1[0], rtol=1e-13, atol=1e-13 * np.abs(jac1).max())
+        np.testing.assert_allclose(e[s], e1[0], rtol=1e-8, atol=1e-8 * np.abs(e1).max())
+        err = np.abs(jac[s] - jac1[0])
+        assert np.all(err <= rel * (np.abs(jac1[0]) + np.abs(jac1[0]).max(axis=(0, 1)))), s
     # Selected columns are the same numbers as the full Jacobian's.
     cols = np.array([0, 5, 2])
     _, jac_cols = scene.evaluate(thetas, pts, columns=cols)
