@@ -126,6 +126,7 @@ class Scene:
         *,
         jacobian: bool = True,
         columns: np.ndarray | None = None,
+        out: np.ndarray | None = None,
     ) -> tuple[np.ndarray, np.ndarray | None]:
         """Field and parameter Jacobian for many scenarios at once.
 
@@ -139,6 +140,9 @@ class Scene:
             Whether to compute ∂E/∂θ.
         columns : (n_cols,) int or None
             Which θ columns the Jacobian keeps (default: all).
+        out : (n_scenarios, n_points, 3, n_cols) float or None
+            Where to write the Jacobian, reused between calls (as numpy's ``out=``): a large
+            fresh array costs page faults on its first write, about as long as writing it.
 
         Returns
         -------
@@ -155,11 +159,31 @@ class Scene:
         total = np.zeros((n_s, n_pts, 3))
         blocks = []  # (group, the kernel's Jacobian (S, M, 3, N or 2N, P))
         g = self.ground_z_m
+        every = columns is None or np.array_equal(columns, np.arange(self.n_params))
+        if out is not None:
+            n_cols = self.n_params if columns is None else len(columns)
+            if out.shape != (n_s, n_pts, 3, n_cols):
+                raise ValueError(
+                    f"`out` must have shape {(n_s, n_pts, 3, n_cols)} "
+                    f"(n_scenarios, n_points, 3, n_cols); got {out.shape}."
+                )
+        # One kind in free space, parameters in order: the kernel writes ∂E/∂θ directly.
+        direct = (
+            jacobian
+            and g is None
+            and every
+            and len(self._groups) == 1
+            and self._groups[0].contiguous
+            and not self.background
+        )
         for grp in self._groups:
             params = theta[:, grp.columns]  # (S, N, P)
             kernel = KERNELS[grp.kind]
             if g is None:
-                e, jac = kernel(params, points_m, grp.geometry, jacobian)
+                buf = None
+                if direct and out is not None:
+                    buf = out.reshape(n_s, n_pts, 3, *grp.columns.shape)
+                e, jac = kernel(params, points_m, grp.geometry, jacobian, buf)
             else:
                 # Real sources and their images in one kernel call: N real then N images.
                 mirrored = params.copy()
@@ -174,12 +198,15 @@ class Scene:
         if not jacobian:
             return total, None
         cols = np.arange(self.n_params) if columns is None else np.asarray(columns, dtype=int)
-        every = columns is None or np.array_equal(cols, np.arange(self.n_params))
-        if g is None and every and len(blocks) == 1 and blocks[0][0].contiguous:
-            if not self.background:
-                # One kind, parameters in order: the kernel's block already is ∂E/∂θ.
-                return total, blocks[0][1].reshape(n_s, n_pts, 3, blocks[0][0].columns.size)
-        return total, self._assemble(blocks, cols, n_s, n_pts)
+        if direct:
+            full = blocks[0][1].reshape(n_s, n_pts, 3, blocks[0][0].columns.size)
+        else:
+            full = self._assemble(blocks, cols, n_s, n_pts)
+        if out is not None:
+            if not np.shares_memory(full, out):
+                out[...] = full
+            full = out
+        return total, full
 
     def _assemble(self, blocks, cols: np.ndarray, n_s: int, n_pts: int) -> np.ndarray:
         """∂E/∂θ of the kept columns from the kernels' blocks, ``(S, M, 3, n_cols)``.

@@ -373,11 +373,11 @@ def _centres(params: np.ndarray):
     return [np.ascontiguousarray(params[:, None, :, 1 + k]) for k in range(3)]
 
 
-def _point_kernel(params, pts, geom, want_jac):
+def _point_kernel(params, pts, geom, want_jac, out=None):
     S, N, P = params.shape
     M = pts.shape[0]
     E = np.zeros((S, M, 3))
-    jac = np.empty((S, M, 3, N, P)) if want_jac else None
+    jac = _jac_buffer((S, M, 3, N, P), want_jac, out)
     kq = K_COULOMB * params[:, None, :, 0]  # (S, 1, N)
     kq3 = 3.0 * kq
     centres = _centres(params)
@@ -449,11 +449,11 @@ def _write_radial_terms(E, jac, blk, R, a, kqa, nkqb, extra=None):
             np.multiply(t, R[i], out=jb[:, :, i, :, 4])
 
 
-def _sphere_kernel(params, pts, geom, want_jac):
+def _sphere_kernel(params, pts, geom, want_jac, out=None):
     S, N, P = params.shape
     M = pts.shape[0]
     E = np.zeros((S, M, 3))
-    jac = np.empty((S, M, 3, N, P)) if want_jac else None
+    jac = _jac_buffer((S, M, 3, N, P), want_jac, out)
     q = params[:, None, :, 0]
     radius = params[:, None, :, 4]
     for blk in _blocks(M, S * N, _RADIAL_BLOCK_ELEMENTS):
@@ -476,7 +476,7 @@ _GAUSS_SERIES = np.array([2 / 5, 4 / 35, 8 / 315, 16 / 3465, 32 / 45045])
 _GAUSS_SERIES_Z = 0.05
 
 
-def _gaussian_kernel(params, pts, geom, want_jac):
+def _gaussian_kernel(params, pts, geom, want_jac, out=None):
     """Isotropic Gaussian: E = k q h(r) R with h = F(r)/r^3, F = P(3/2, z), z = r^2/2s^2.
 
     phi = F'(r)/r^2 = 4 pi rho_1(r) (rho_1 the unit-charge density); the gradient is
@@ -486,7 +486,7 @@ def _gaussian_kernel(params, pts, geom, want_jac):
     S, N, P = params.shape
     M = pts.shape[0]
     E = np.zeros((S, M, 3))
-    jac = np.empty((S, M, 3, N, P)) if want_jac else None
+    jac = _jac_buffer((S, M, 3, N, P), want_jac, out)
     q = params[:, None, :, 0]
     sigma = params[:, None, :, 4]
     amp = 2.0 / (3.0 * math.sqrt(2.0 * math.pi) * sigma**3)  # h(0) = phi(0)/3
@@ -509,7 +509,7 @@ def _gaussian_kernel(params, pts, geom, want_jac):
     return E, jac
 
 
-def _line_kernel(params, pts, half_vectors, want_jac):
+def _line_kernel(params, pts, half_vectors, want_jac, out=None):
     """Uniform finite segment, centre c and half-vector hv (N, 3), ends a = c − hv, b = c + hv.
 
     With d1 = x − a, d2 = x − b, r1, r2 their lengths, S = r1 + r2 and L = 2|hv|,
@@ -520,7 +520,7 @@ def _line_kernel(params, pts, half_vectors, want_jac):
     S_, N, P = params.shape
     M = pts.shape[0]
     E = np.zeros((S_, M, 3))
-    jac = np.empty((S_, M, 3, N, P)) if want_jac else None
+    jac = _jac_buffer((S_, M, 3, N, P), want_jac, out)
     q = params[:, None, :, 0]
     hv = half_vectors  # (N, 3)
     length = 2.0 * np.sqrt(np.sum(hv * hv, axis=1))  # (N,)
@@ -566,6 +566,20 @@ def _line_kernel(params, pts, half_vectors, want_jac):
                 if j != i:
                     jac[:, blk, j, :, 1 + i] = jac[:, blk, i, :, 1 + j]
     return E, jac
+
+
+def _jac_buffer(shape, want_jac: bool, out: np.ndarray | None, zero: bool = False):
+    """The Jacobian output of a kernel: ``out`` when given (reused between calls: no fresh
+    pages to fault in), else a new array. ``out`` must have exactly ``shape``."""
+    if not want_jac:
+        return None
+    if out is None:
+        return np.zeros(shape) if zero else np.empty(shape)
+    if out.shape != shape:
+        raise ValueError(f"`out` must have shape {shape}; got {out.shape}.")
+    if zero:
+        out.fill(0.0)
+    return out
 
 
 def _check_not_on_charge(mask: np.ndarray, pts_block: np.ndarray, blk: slice, what: str) -> None:
@@ -639,7 +653,7 @@ def _corner_weights(rho: np.ndarray) -> np.ndarray:
     return -np.diff(np.diff(np.diff(p, axis=0), axis=1), axis=2)
 
 
-def _grid_kernel(params, pts, grids, want_jac):
+def _grid_kernel(params, pts, grids, want_jac, out=None):
     """Density grids (a Python loop over grids only: each has its own shape).
 
     params (S, N, 4) = (total charge, centre); grids: sequence of N DensityGrid. The density
@@ -649,7 +663,7 @@ def _grid_kernel(params, pts, grids, want_jac):
     S, N, P = params.shape
     M = pts.shape[0]
     E = np.zeros((S, M, 3))
-    jac = np.zeros((S, M, 3, N, P)) if want_jac else None
+    jac = _jac_buffer((S, M, 3, N, P), want_jac, out, zero=True)
     tensor = ((0, 3, 4), (3, 1, 5), (4, 5, 2))  # index into (xx, yy, zz, xy, xz, yz)
     for n, grid in enumerate(grids):
         q0 = grid.charge_c
@@ -679,7 +693,7 @@ def _grid_kernel(params, pts, grids, want_jac):
     return E, jac
 
 
-#: kind name -> kernel(params (S, N, P), points (M, 3), geometry, want_jac)
+#: kind name -> kernel(params (S, N, P), points (M, 3), geometry, want_jac, out=None)
 KERNELS = {
     "point": _point_kernel,
     "line": _line_kernel,

@@ -574,3 +574,22 @@ def test_bad_field_input(call, match):
     # Source: the project's contract on bad input (a convention: checks wording, not physics).
     with pytest.raises(ValueError, match=match):
         call()
+
+
+@pytest.mark.parametrize("ground", [None, 0.0])
+def test_evaluate_writes_into_a_reused_output(ground):
+    # `out=` is numpy's convention: same numbers as a fresh array, written in place.
+    scene = pp.Scene(
+        (pp.PointCharge(-3.0, (10.0, -5.0, 400.0)), pp.PointCharge(2.0, (-30.0, 20.0, 650.0))),
+        ground,
+    )
+    theta = np.stack([scene.nominal(), scene.nominal() * 1.01])
+    pts = np.array([[0.0, 0.0, 0.0], [100.0, 50.0, 5.0], [-80.0, 10.0, 20.0]])
+    e, jac = scene.evaluate(theta, pts)
+    buf = np.full_like(jac, np.nan)
+    e2, jac2 = scene.evaluate(theta, pts, out=buf)
+    assert jac2 is buf
+    np.testing.assert_array_equal(jac2, jac)
+    np.testing.assert_array_equal(e2, e)
+    with pytest.raises(ValueError, match="could not broadcast|must have shape"):
+        scene.evaluate(theta, pts, out=np.empty((2, 3, 3, 7)))
