@@ -73,6 +73,14 @@ _LAYOUT_HELP = (
 )
 
 
+_QUIET_HELP = "no progress bar and no summary; name the file only"
+
+
+def _add_out(parser: argparse.ArgumentParser, help_text: str) -> None:
+    parser.add_argument("--out", metavar="FILE.h5", help=help_text)
+    parser.add_argument("--force", action="store_true", help="overwrite an existing --out file")
+
+
 def _add_from(parser: argparse.ArgumentParser) -> None:
     parser.add_argument(
         "--from",
@@ -124,22 +132,18 @@ def build_parser() -> argparse.ArgumentParser:
         help="TOML config (default: the bundled fictional demo site; with --resume: the "
         "config stored in the resumed file)",
     )
-    p.add_argument(
-        "--out",
-        metavar="FILE.h5",
-        help="result file (default: <config name>.h5 in the working folder, or <name>-2.h5 … "
+    _add_out(
+        p,
+        "result file (default: <config name>.h5 in the working folder, or <name>-2.h5 … "
         "if taken; with --resume: the resumed file itself)",
     )
-    p.add_argument("--force", action="store_true", help="overwrite an existing --out file")
     p.add_argument(
         "--resume",
         metavar="FILE.h5",
         help="continue from the layout and search history stored in FILE.h5",
     )
     _add_from(p)
-    p.add_argument(
-        "--quiet", action="store_true", help="no progress bar and no summary; name the file only"
-    )
+    p.add_argument("--quiet", action="store_true", help=_QUIET_HELP)
 
     s = sub.add_parser(
         "score",
@@ -156,8 +160,7 @@ def build_parser() -> argparse.ArgumentParser:
         help="score the new probes of an earlier result under this config (its installed "
         "probes come from the config); the summary compares with the stored score",
     )
-    s.add_argument("--out", metavar="FILE.h5", help="also write the result to this HDF5 file")
-    s.add_argument("--force", action="store_true", help="overwrite an existing --out file")
+    _add_out(s, "also write the result to this HDF5 file")
 
     b = sub.add_parser(
         "budget",
@@ -171,17 +174,13 @@ def build_parser() -> argparse.ArgumentParser:
         ),
     )
     b.add_argument("config", metavar="CONFIG", help="TOML config with [budget] and [[grade]]")
-    b.add_argument(
-        "--out",
-        metavar="FILE.h5",
-        help="result file (default: <config name>-budget.h5 in the working folder, or "
+    _add_out(
+        b,
+        "result file (default: <config name>-budget.h5 in the working folder, or "
         "<name>-budget-2.h5 … if taken)",
     )
-    b.add_argument("--force", action="store_true", help="overwrite an existing --out file")
     _add_from(b)
-    b.add_argument(
-        "--quiet", action="store_true", help="no progress bar and no summary; name the file only"
-    )
+    b.add_argument("--quiet", action="store_true", help=_QUIET_HELP)
 
     w = sub.add_parser(
         "show",
@@ -362,6 +361,28 @@ def _signals_to(flag: _StopFlag) -> Iterator[None]:
             signal.signal(sig, old)
 
 
+@contextlib.contextmanager
+def _stoppable(quiet: bool) -> Iterator[tuple]:
+    """A progress callable (None when quiet) and a stop flag set by SIGINT/SIGTERM."""
+    flag = _StopFlag()
+    progress_cm = contextlib.nullcontext(None) if quiet else report.progress_bar()
+    with progress_cm as progress, _signals_to(flag):
+        yield progress, flag
+
+
+def _finish(result, out: Path, force: bool, quiet: bool) -> int:
+    """Write a plan or budget result, print it, and give the exit status of its completion."""
+    from .store import write_result
+
+    # A signal that arrives while the file is written must not leave it half-written:
+    # write_result cleans its temporary up on any exception, KeyboardInterrupt included.
+    written = write_result(result, out, force=force)
+    if not quiet:
+        report.print_result(result)
+    report.print_written(written, complete=result.complete)
+    return EXIT_OK if result.complete else EXIT_INTERRUPTED
+
+
 # --------------------------------------------------------------------------------------------
 # Commands
 # --------------------------------------------------------------------------------------------
@@ -370,7 +391,7 @@ def _signals_to(flag: _StopFlag) -> Iterator[None]:
 def _cmd_plan(args: argparse.Namespace) -> int:
     from .result import make_result
     from .search import d_efficiency, plan
-    from .store import check_writable, free_name, read_result, write_result
+    from .store import check_writable, free_name, read_result
 
     stored = None
     if args.resume:
@@ -423,9 +444,7 @@ def _cmd_plan(args: argparse.Namespace) -> int:
             )
         history = stored.search.history if stored.search is not None else None
 
-    flag = _StopFlag()
-    progress_cm = contextlib.nullcontext(None) if args.quiet else report.progress_bar()
-    with progress_cm as progress, _signals_to(flag):
+    with _stoppable(args.quiet) as (progress, flag):
         outcome = plan(problem, progress=progress, stop=flag, warm_start_m=warm, history=history)
 
     extra = {}
@@ -444,13 +463,7 @@ def _cmd_plan(args: argparse.Namespace) -> int:
         extra=extra,
         changes=changes,
     )
-    # A signal that arrives while the file is written must not leave it half-written:
-    # write_result cleans its temporary up on any exception, KeyboardInterrupt included.
-    written = write_result(result, out, force=force)
-    if not args.quiet:
-        report.print_result(result)
-    report.print_written(written, complete=outcome.complete)
-    return EXIT_OK if outcome.complete else EXIT_INTERRUPTED
+    return _finish(result, out, force, args.quiet)
 
 
 def _same_file(a: Path, b: Path) -> bool:
@@ -552,7 +565,7 @@ def _layout_grade(config, layout):
 def _cmd_budget(args: argparse.Namespace) -> int:
     from .budget import chosen_option, run_budget
     from .result import make_result
-    from .store import check_writable, free_name, write_result
+    from .store import check_writable, free_name
 
     config = base_config = _load_config(args.config)
     old = None
@@ -564,11 +577,8 @@ def _cmd_budget(args: argparse.Namespace) -> int:
     check_writable(out, force=args.force)
     _build_problem(config)  # every config check before the sweep spends its time
 
-    flag = _StopFlag()
-    progress_cm = contextlib.nullcontext(None) if args.quiet else report.progress_bar()
-    with progress_cm as progress, _signals_to(flag):
-        with _as_input_error():
-            table, complete = run_budget(config, progress=progress, stop=flag)
+    with _stoppable(args.quiet) as (progress, flag), _as_input_error():
+        table, complete = run_budget(config, progress=progress, stop=flag)
     if table.count.size == 0:
         report.print_interrupted()
         return EXIT_INTERRUPTED  # stopped before any option was planned: nothing to write
@@ -589,11 +599,7 @@ def _cmd_budget(args: argparse.Namespace) -> int:
         extra={"budget_row_scored": float(row)},
         changes=changes,
     )
-    written = write_result(result, out, force=args.force)
-    if not args.quiet:
-        report.print_result(result)
-    report.print_written(written, complete=complete)
-    return EXIT_OK if complete else EXIT_INTERRUPTED
+    return _finish(result, out, args.force, args.quiet)
 
 
 # --------------------------------------------------------------------------------------------
