@@ -29,9 +29,9 @@ import numpy as np
 CRITERIA: tuple[str, ...] = ("d", "location", "charge")
 AGGREGATE_NAMES: tuple[str, ...] = ("mean", "worst", "quantile:q")
 
-#: Hadamard ratio det(J)/Π J_ii below which J counts as singular (the layout cannot resolve
-#: some combination of parameters), and relative eigenvalue of the scaled J below which a
-#: direction is reported as unresolved.
+#: Relative eigenvalue λ_min/λ_max of the scaled J = D J D below which J counts as singular
+#: (the layout cannot resolve some combination of parameters); the same threshold marks a
+#: direction as unresolved. Float64 round-off leaves a rank-deficient J near 1e-16.
 SINGULAR_RTOL = 1e-12
 #: Relative eigenvalue of the scaled J below which a direction is reported as poorly resolved.
 WEAK_RTOL = 1e-6
@@ -62,16 +62,32 @@ def _scaled(fisher: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return fisher * d[..., :, None] * d[..., None, :], d
 
 
-def _is_singular(fisher: np.ndarray) -> np.ndarray:
-    """(...,) bool: J has a zero diagonal or its Hadamard ratio is below SINGULAR_RTOL.
+def _singular_from_scaled(scaled: np.ndarray, d: np.ndarray, sign, logdet) -> np.ndarray:
+    """(...,) bool: the scaled information has a zero diagonal or λ_min/λ_max < SINGULAR_RTOL.
 
-    The Hadamard ratio det(J)/Π J_ii = det(D J D) lies in [0, 1]; it is 1 for independent
-    parameters and 0 for a layout that cannot separate some combination of them. It costs one
-    batched LU, where an eigendecomposition per scenario would cost several.
+    λ_min/λ_max of D J D is the test (the same as :func:`unresolved_directions` uses). Since
+    det(D J D) ≤ λ_min · λ_max^(p−1) and λ_max ≤ tr(D J D) = p, a determinant (already at hand
+    from the LU of ``slogdet``) of at least SINGULAR_RTOL · p^p gives λ_min ≥ SINGULAR_RTOL · p
+    ≥ SINGULAR_RTOL · λ_max and proves a matrix regular; only the others — few, in practice —
+    pay for an eigendecomposition.
     """
+    p = scaled.shape[-1]
+    singular = np.any(d == 0.0, axis=-1) | (sign <= 0)
+    if p == 0:
+        return singular
+    proven = ~singular & (logdet >= np.log(SINGULAR_RTOL) + p * np.log(p))
+    check = ~singular & ~proven
+    if np.any(check):
+        eig = np.linalg.eigvalsh(scaled[check])
+        singular[check] = ~(eig[..., 0] > SINGULAR_RTOL * eig[..., -1])
+    return singular
+
+
+def _is_singular(fisher: np.ndarray) -> np.ndarray:
+    """(...,) bool: J cannot be inverted meaningfully (see :func:`_singular_from_scaled`)."""
     scaled, d = _scaled(fisher)
     sign, logdet = np.linalg.slogdet(scaled)
-    return np.any(d == 0.0, axis=-1) | (sign <= 0) | (logdet < np.log(SINGULAR_RTOL))
+    return _singular_from_scaled(scaled, d, sign, logdet)
 
 
 def covariance(fisher: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -116,7 +132,7 @@ def log_det(fisher: np.ndarray) -> np.ndarray:
     """log det J (natural log, SI units); −inf where J is singular. Shape (...,)."""
     scaled, d = _scaled(fisher)
     sign, logdet = np.linalg.slogdet(scaled)
-    singular = np.any(d == 0.0, axis=-1) | (sign <= 0) | (logdet < np.log(SINGULAR_RTOL))
+    singular = _singular_from_scaled(scaled, d, sign, logdet)
     # log det J = log det(D J D) − 2 Σ log d_i, without a second factorisation.
     with np.errstate(divide="ignore"):
         full = logdet - 2.0 * np.sum(np.log(np.where(d > 0, d, 1.0)), axis=-1)

@@ -124,13 +124,14 @@ class Problem:
     names: tuple[str, ...]
     criterion: Criterion
     aggregate: str
-    noise: Noise
+    noise: Noise  # of the new meters (a budget grade replaces it)
     count: int
     new_axes: np.ndarray  # (n_axes, 3)
     new_gain: float
     installed_m: np.ndarray  # (n_installed, 3)
     installed_axes: np.ndarray  # (n_installed, n_axes_i, 3)
     installed_gain: np.ndarray  # (n_installed,)
+    installed_noise: Noise  # the installed meters keep [probes]' grade whatever is bought
     site: object
     fisher_installed: np.ndarray  # (n_scenarios, n_params, n_params)
 
@@ -154,6 +155,7 @@ class Problem:
         positions_m: np.ndarray,
         gain: np.ndarray | None = None,
         axes: np.ndarray | None = None,
+        noise: Noise | None = None,
     ) -> tuple[np.ndarray, np.ndarray]:
         """Whitened reading gradients of probes at many positions.
 
@@ -164,6 +166,8 @@ class Problem:
             Calibration factors (default: the new probes' gain).
         axes : (n_points, n_axes, 3) float or None
             Measurement axes (default: the new probes' component).
+        noise : Noise or None
+            The meters' grade (default: the new probes' grade).
 
         Returns
         -------
@@ -176,7 +180,13 @@ class Problem:
         if gain is None:
             gain = np.full(n, self.new_gain)
         e, jac = self.scene.evaluate(self.theta, positions_m, columns=self.est_cols)
-        return whitened_rows(e, jac, axes, gain, self.noise)
+        return whitened_rows(e, jac, axes, gain, self.noise if noise is None else noise)
+
+    def installed_rows(self) -> tuple[np.ndarray, np.ndarray]:
+        """:meth:`rows` of the installed meters, with their own axes, gains and grade."""
+        return self.rows(
+            self.installed_m, self.installed_gain, self.installed_axes, self.installed_noise
+        )
 
     def point_information(
         self, positions_m: np.ndarray, gain: np.ndarray | None = None
@@ -245,7 +255,7 @@ class Problem:
         rows, _ = self.rows(pos, gain)
         parts = [fisher_from_rows(rows)]
         if self.installed_m.shape[0]:
-            rows_i, _ = self.rows(self.installed_m, self.installed_gain, self.installed_axes)
+            rows_i, _ = self.installed_rows()
             parts.insert(0, fisher_from_rows(rows_i))
         return np.concatenate(parts, axis=1)
 
@@ -289,7 +299,7 @@ class Problem:
         total = info.sum(axis=2) + self.fisher_installed[:, None]  # (S, L, p, p)
         losses = [total[:, :, None] - info]  # (S, L, n, p, p)
         if self.installed_m.shape[0]:
-            rows_i, _ = self.rows(self.installed_m, self.installed_gain, self.installed_axes)
+            rows_i, _ = self.installed_rows()
             inst = fisher_from_rows(rows_i)  # (S, k, p, p)
             losses.append(total[:, :, None] - inst[:, None])
         lost = np.moveaxis(np.concatenate(losses, axis=2), 0, 2)  # (L, n_all, S, p, p)
@@ -366,9 +376,7 @@ class Problem:
         rows_new, sat_new = self.rows(pos, gain)
         n_inst = self.installed_m.shape[0]
         if n_inst:
-            rows_inst, sat_inst = self.rows(
-                self.installed_m, self.installed_gain, self.installed_axes
-            )
+            rows_inst, sat_inst = self.installed_rows()
             sat = np.concatenate([_any_axis(sat_inst), _any_axis(sat_new)], axis=1)
         else:
             sat = _any_axis(sat_new)
@@ -417,7 +425,8 @@ def build_problem(config, *, count: int | None = None, grade=None) -> Problem:
     count : int or None
         Number of new probes (default ``config.probes.count``).
     grade : probeplan.config.Grade or None
-        Meter grade whose noise and range replace those of ``[probes]`` (for budgets).
+        Meter grade whose noise and range replace those of ``[probes]`` for the new meters (for
+        budgets); installed meters keep the grade of ``[probes]``.
 
     Returns
     -------
@@ -436,9 +445,8 @@ def build_problem(config, *, count: int | None = None, grade=None) -> Problem:
     inst = config.installed
     installed_axes = axes_table([p.component or pr.component for p in inst])
     if config.background is not None and config.background.estimate:
-        # Only the background components some meter reads can be estimated (contract).
         seen_axes = np.concatenate([component_axes(pr.component), installed_axes.reshape(-1, 3)])
-        seen = np.any(np.abs(seen_axes) > 1e-12, axis=0)
+        seen = _seen_background(seen_axes)
         est += [n for n, k in zip(BACKGROUND_PARAMS, seen, strict=True) if k]
     est_cols = np.array([names_all.index(n) for n in est], dtype=int)
     criterion = _bind_criterion(config, tuple(est))
@@ -464,14 +472,42 @@ def build_problem(config, *, count: int | None = None, grade=None) -> Problem:
         installed_m=installed_m,
         installed_axes=installed_axes,
         installed_gain=installed_gain,
+        installed_noise=Noise(pr.noise_v_per_m, pr.relative_noise, pr.range_v_per_m),
         site=config.site(),
         fisher_installed=np.zeros((theta.shape[0], len(est), len(est))),
     )
     if installed_m.shape[0]:
-        rows, _ = problem.rows(installed_m, installed_gain, installed_axes)
+        rows, _ = problem.installed_rows()
         info = fisher_from_rows(rows.reshape(theta.shape[0], -1, len(est)))
         problem = replace(problem, fisher_installed=info)
     return problem
+
+
+def _seen_background(axes: np.ndarray) -> np.ndarray:
+    """Which background components the meters can tell apart, ``(3,) bool`` for x, y, z.
+
+    A uniform background adds axis · B to every reading, so the readings see B only through
+    the span of the meters' axes: as many components as its rank (contract: "its components
+    seen by the probes are estimated"). Components are taken in the order z, x, y while each
+    adds to the rank; the others stay at their nominal values. For axis-aligned meters this is
+    exactly the components some meter reads; a tilted axis [0, 0.6, 0.8] alone gives z only,
+    since 0.6 B_y + 0.8 B_z cannot be split into its two terms.
+
+    Parameters
+    ----------
+    axes : (n_axes, 3) float
+        Every measurement axis of the new and installed meters (zero rows allowed).
+    """
+    rank = np.linalg.matrix_rank(axes, tol=1e-9) if axes.size else 0
+    chosen: list[int] = []
+    for k in (2, 0, 1):
+        if len(chosen) == rank:
+            break
+        if np.linalg.matrix_rank(axes[:, chosen + [k]], tol=1e-9) == len(chosen) + 1:
+            chosen.append(k)
+    seen = np.zeros(3, dtype=bool)
+    seen[chosen] = True
+    return seen
 
 
 def _bind_criterion(config, names: tuple[str, ...]) -> Criterion:

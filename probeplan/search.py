@@ -207,11 +207,12 @@ def _spacing_mask(positions: np.ndarray, fixed: np.ndarray, min_spacing: float) 
 
 
 def _best(values: np.ndarray, allowed: np.ndarray, maximise: bool) -> int:
-    """Index of the best allowed value (first on ties: determinism), −1 if none."""
-    v = np.where(allowed, values if maximise else -values, -np.inf)
-    if not np.any(np.isfinite(v)) and not np.any(allowed):
+    """Index of the best allowed value (first on ties: determinism), −1 if none is allowed."""
+    idx = np.flatnonzero(allowed)
+    if idx.size == 0:
         return -1
-    return int(np.argmax(v))
+    v = values[idx] if maximise else -values[idx]
+    return int(idx[np.argmax(np.where(np.isnan(v), -np.inf, v))])
 
 
 def greedy(
@@ -372,6 +373,11 @@ def relaxation_bound(
 
     w = np.full(n_c, count / n_c)
     f, g = f_and_grad(w)
+    if g is None:
+        # Singular with every candidate at equal weight: then Σ_c A_c is singular and so is
+        # every subset's information (it is dominated by a multiple of that sum); the best any
+        # grid layout can do is −inf, which is a valid (and exact) bound.
+        return Relaxation(bound=-np.inf, value=-np.inf, gap=0.0, weights=w, iterations=0)
     step = 1.0 / max(np.abs(g).max(), 1e-300)
     gap = fw_gap(w, g)
     it = 0
@@ -627,8 +633,14 @@ def plan(
     if warm_start_m is not None:
         from scipy.spatial import cKDTree
 
-        _, start = cKDTree(cand.positions_m).query(np.asarray(warm_start_m).reshape(-1, 3))
-        start = np.unique(start)[:count]
+        _, near = cKDTree(cand.positions_m).query(np.asarray(warm_start_m).reshape(-1, 3))
+        # Keep the snapped points in order, once each, and only while they respect spacing.
+        start = []
+        for c in dict.fromkeys(int(i) for i in near):
+            fixed = np.concatenate([inst, cand.positions_m[start]])
+            if len(start) < count and _spacing_mask(cand.positions_m[[c]], fixed, min_sp)[0]:
+                start.append(c)
+        start = np.array(start, dtype=int)
     tick("greedy", 0, count)
     chosen = greedy(obj, count, cand.positions_m, min_sp, inst, start=start)
     greedy_value = exact(cand.positions_m[chosen], gains_c[chosen])

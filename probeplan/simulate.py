@@ -5,14 +5,15 @@ parameters does better than the Cramér–Rao bound J⁻¹. This module checks t
 user would meet it in the field. For each simulated scenario it
 
 1. computes the noise-free readings of every meter of the layout (installed ones first), and
-   draws ``trials`` noisy copies in one array operation (:func:`probeplan.probes.draw_readings`:
-   additive and proportional Gaussian noise, readings clipped at the meter's range);
+   draws ``trials`` noisy copies in one array operation (additive and proportional Gaussian
+   noise of each meter's own grade, readings clipped at the meter's range);
 2. drops the readings that came back at the end of the range (saturated: they carry no
    information, and a user would discard them), and unused axes;
 3. fits the estimated parameters to each trial's readings by nonlinear least squares
    (:func:`scipy.optimize.least_squares`, trust-region reflective) on whitened residuals
-   (m_obs − h(θ))/σ, with the analytic Jacobian of the forward model, σ taken from each reading
-   as a meter datasheet states it (additive floor and proportional part of the reading);
+   (m_obs − h(θ))/σ, with the analytic Jacobian of the forward model; σ is the noise of the
+   *model* reading (additive floor and proportional part), reweighted until it settles —
+   weights from the noisy readings would favour readings that fell low and bias the fit;
 4. reports the achieved RMS errors beside the bounds at the same scenario.
 
 The fit starts from the truth plus a draw from the Cramér–Rao covariance: this models a user
@@ -40,13 +41,16 @@ import numpy as np
 from scipy.optimize import least_squares
 
 from .fisher import covariance
-from .probes import draw_readings, readings
+from .probes import readings
 
 #: Scenarios simulated by default: scenario 0 (nominal) and up to this many in all.
 DEFAULT_SCENARIOS = 8
 
 #: Least trials per scenario (an RMS from fewer means nothing).
 MIN_TRIALS = 2
+
+#: Reweighting passes of the fit when the noise is proportional to the reading.
+IRLS_PASSES = 3
 
 
 @dataclass(frozen=True, eq=False)
@@ -62,6 +66,8 @@ class Meters:
     used : (n_probes, n_axes) bool
         Which axes are real readings.
     installed : (n_probes,) bool
+    noise_v_per_m, relative_noise, range_v_per_m : (n_probes, 1) float
+        Each meter's grade (installed meters keep theirs when a budget grade is planned).
     """
 
     positions_m: np.ndarray
@@ -69,6 +75,13 @@ class Meters:
     gain: np.ndarray
     used: np.ndarray
     installed: np.ndarray
+    noise_v_per_m: np.ndarray
+    relative_noise: np.ndarray
+    range_v_per_m: np.ndarray
+
+    def sigma(self, readings_v_per_m: np.ndarray) -> np.ndarray:
+        """1-sigma noise of readings ``(..., n_probes, n_axes)``, V/m."""
+        return np.hypot(self.noise_v_per_m, self.relative_noise * readings_v_per_m)
 
 
 def layout_meters(problem, positions_m, gain=None) -> Meters:
@@ -106,12 +119,20 @@ def layout_meters(problem, positions_m, gain=None) -> Meters:
     if n_inst:
         axes[:n_inst, : inst_axes.shape[1]] = inst_axes
     axes[n_inst:, : problem.new_axes.shape[0]] = problem.new_axes
+    grades = [problem.installed_noise] * n_inst + [problem.noise] * n_new
+
+    def column(attr: str) -> np.ndarray:
+        return np.array([getattr(g, attr) for g in grades], dtype=float).reshape(-1, 1)
+
     return Meters(
         positions_m=np.concatenate([problem.installed_m, pos]),
         axes=axes,
         gain=np.concatenate([problem.installed_gain, g_new]),
         used=np.linalg.norm(axes, axis=-1) > 0.0,
         installed=np.arange(n_inst + n_new) < n_inst,
+        noise_v_per_m=column("noise_v_per_m"),
+        relative_noise=column("relative_noise"),
+        range_v_per_m=column("range_v_per_m"),
     )
 
 
@@ -237,10 +258,12 @@ def simulate(
     field_clean, _ = problem.scene.evaluate(theta_all, meters.positions_m, jacobian=False)
     clean = readings(field_clean, meters.axes, meters.gain)
     shape = (n_sim, trials, *clean.shape[1:])
-    noisy, sat = draw_readings(np.broadcast_to(clean[:, None], shape), problem.noise, rng)
+    clean = np.broadcast_to(clean[:, None], shape)
+    noisy = clean + rng.standard_normal(shape) * meters.sigma(clean)
+    sat = np.abs(noisy) >= meters.range_v_per_m  # the meter reports its full scale
+    noisy = np.clip(noisy, -meters.range_v_per_m, meters.range_v_per_m)
     usable = meters.used & ~sat
     saturated = np.any(sat & meters.used, axis=-1).mean(axis=1)
-    sigma_obs = problem.noise.sigma(noisy)
     # First guesses: truth + a draw from N(0, C), C the bound's covariance, all at once.
     z = rng.standard_normal((n_sim, trials, p))
     start = truth[:, None, :] + np.einsum("spq,stq->stp", _sqrt_cov(cov, singular), z)
@@ -259,9 +282,7 @@ def simulate(
             if keep.sum() < p:
                 continue  # fewer readings than unknowns: counted as a failed fit
             x0 = _inside(start[k, t], lo, hi)
-            fitted[k, t], converged[k, t] = fit.solve(
-                x0, noisy[k, t][keep], sigma_obs[k, t][keep], keep, crb[k], lo, hi
-            )
+            fitted[k, t], converged[k, t] = fit.solve(x0, noisy[k, t][keep], keep, crb[k], lo, hi)
 
     err = fitted - truth[:, None, :]
     w = converged[..., None]
@@ -389,26 +410,41 @@ class _Fit:
         self._dm = np.einsum("nip,nai->nap", jac[0], mt.axes) * mt.gain[:, None, None]
         self._x = np.array(x)
 
-    def solve(self, x0, observed, sigma, keep, x_scale, lo, hi) -> tuple[np.ndarray, bool]:
-        """Fit one trial; returns (parameters (n_params,), converged)."""
+    def solve(self, x0, observed, keep, x_scale, lo, hi) -> tuple[np.ndarray, bool]:
+        """Fit one trial; returns (parameters (n_params,), converged).
 
-        def fun(x):
+        Iteratively reweighted least squares: the weights come from the noise of the *model*
+        readings at the current estimate, refitted until they settle. Weights from the noisy
+        readings themselves would favour readings that happened to fall low when the noise is
+        proportional, and bias the fit.
+        """
+        x = np.asarray(x0, dtype=float)
+        for _ in range(IRLS_PASSES):
             self._eval(x)
-            return (observed - self._m[keep]) / sigma
+            sigma = self.meters.sigma(self._m)[keep]
 
-        def jac(x):
-            self._eval(x)
-            return -self._dm[keep] / sigma[:, None]
+            def fun(x, sigma=sigma):
+                self._eval(x)
+                return (observed - self._m[keep]) / sigma
 
-        with np.errstate(all="ignore"):
-            try:
-                res = least_squares(
-                    fun, x0, jac=jac, bounds=(lo, hi), x_scale=x_scale, method="trf"
-                )
-            except (ValueError, np.linalg.LinAlgError):
-                return x0, False
-        ok = bool(res.success) and bool(np.all(np.isfinite(res.x))) and np.isfinite(res.cost)
-        return (res.x if ok else x0), ok
+            def jac(x, sigma=sigma):
+                self._eval(x)
+                return -self._dm[keep] / sigma[:, None]
+
+            with np.errstate(all="ignore"):
+                try:
+                    res = least_squares(
+                        fun, x, jac=jac, bounds=(lo, hi), x_scale=x_scale, method="trf"
+                    )
+                except (ValueError, np.linalg.LinAlgError):
+                    return np.asarray(x0, dtype=float), False
+            ok = bool(res.success) and bool(np.all(np.isfinite(res.x))) and np.isfinite(res.cost)
+            if not ok:
+                return np.asarray(x0, dtype=float), False
+            x = res.x
+            if not np.any(self.meters.relative_noise):
+                break  # constant weights: one pass is the fit
+        return x, True
 
 
 def _check_scenarios(scenarios, n_scenarios: int) -> np.ndarray:

@@ -13,6 +13,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+import probeplan.fisher as fisher_mod
 from probeplan.config import parse_config
 from probeplan.fisher import (
     CRITERIA,
@@ -298,3 +299,26 @@ def test_a_parameter_no_reading_sees_is_named():
     assert out[0].singular and out[0].relative_eigenvalue == 0.0
     assert out[0].text.startswith("bg.z_v_per_m is not seen by any reading")
     np.testing.assert_array_equal(out[0].weights, [0, 0, 0, 0, 1.0])
+
+
+def test_many_parameters_with_a_tiny_determinant_are_not_singular():
+    # Nine parameters whose scaled information has eigenvalues 1 … 1e-7: the determinant of the
+    # scaled matrix (the Hadamard ratio) is ~1e-28, yet the condition number is 1e7 ≪ 1/eps,
+    # so J⁻¹ exists and is accurate (numerical linear algebra: relative error ~ κ·eps;
+    # Golub & Van Loan, Matrix Computations, §2.6). Only λ_min/λ_max decides singularity.
+    rng = np.random.default_rng(4)
+    q, _ = np.linalg.qr(rng.normal(size=(9, 9)))
+    lam = np.logspace(0, -7, 9)
+    core = q @ np.diag(lam) @ q.T
+    d = 1.0 / np.sqrt(np.diag(core))
+    corr = core * d[:, None] * d[None, :]  # unit diagonal, same conditioning order
+    scales = np.logspace(-3, 4, 9)  # parameters in very different units
+    fisher = corr * scales[:, None] * scales[None, :]
+    assert not fisher_mod._is_singular(fisher[None])[0]
+    assert np.isfinite(fisher_mod.log_det(fisher[None])[0])
+    np.testing.assert_allclose(
+        fisher_mod.crb_std(fisher[None])[0], np.sqrt(np.diag(np.linalg.inv(fisher))), rtol=1e-6
+    )
+    # A genuinely rank-deficient one still is singular.
+    v = rng.normal(size=(9, 8))
+    assert fisher_mod._is_singular((v @ v.T)[None])[0]
