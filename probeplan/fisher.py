@@ -33,8 +33,9 @@ AGGREGATE_NAMES: tuple[str, ...] = ("mean", "worst", "quantile:q")
 #: (the layout cannot resolve some combination of parameters); the same threshold marks a
 #: direction as unresolved. Float64 round-off leaves a rank-deficient J near 1e-16.
 SINGULAR_RTOL = 1e-12
-#: Relative eigenvalue of the scaled J below which a direction is reported as poorly resolved.
-WEAK_RTOL = 1e-6
+#: Relative eigenvalue of the scaled J below which a direction is reported as poorly resolved
+#: (1e-4: errors along it are 100 times larger than along the best-resolved direction).
+WEAK_RTOL = 1e-4
 
 
 def fisher_from_rows(rows: np.ndarray) -> np.ndarray:
@@ -315,23 +316,36 @@ def unresolved_directions(
 def _describe(
     w: np.ndarray, names: tuple[str, ...], ground: bool, max_terms: int, singular: bool = True
 ) -> str:
+    """A direction in words: the parameters it moves and how, with the physics where known."""
     order = np.argsort(-np.abs(w))
     main = [int(i) for i in order[:max_terms] if abs(w[i]) >= 0.25 * abs(w[order[0]])]
     if len(main) == 1:
         return f"{names[main[0]]} is not pinned down by this layout"
     parts = ", ".join(names[i] for i in main[:-1]) + f" and {names[main[-1]]}"
-    same = [i for i in main[1:] if np.sign(w[i]) == np.sign(w[main[0]])]
-    how = "rise together" if len(same) == len(main) - 1 else "trade off"
+    # Signed moves that leave the readings (nearly) unchanged, e.g. "s0.charge_c up with
+    # s0.z_m down"; signs refer to the parameters' own values (a negative charge going "up"
+    # becomes smaller in magnitude).
+    lead = main[0]
+    moves = ", ".join(
+        f"{names[i]} {'up' if np.sign(w[i]) == np.sign(w[lead]) else 'down'}" for i in main[1:]
+    )
+    change = f"{names[lead]} up with {moves}"
     if singular:
-        text = f"{parts} {how}: only a combination of them is seen"
+        text = f"{parts}: only a combination is seen ({change} leaves every reading unchanged)"
     else:
-        text = f"{parts} {how}: they are hard to tell apart (strongly correlated errors)"
+        text = f"{parts} are hard to tell apart: strongly correlated errors ({change})"
     src = {n.split(".")[0] for n in (names[i] for i in main)}
     kinds = {n.split(".", 1)[1] for n in (names[i] for i in main)}
-    if singular and ground and len(src) == 1 and kinds == {"charge_c", "z_m"}:
+    if ground and len(src) == 1 and {"charge_c", "z_m"} <= kinds:
         s = src.pop()
-        text = (
-            f"charge and height of {s} trade off: only their product is seen "
-            "(far from the probes a charge and its ground image act as one dipole)"
-        )
+        extra = sorted(kinds - {"charge_c", "z_m"})
+        also = f" (with {', '.join(s + '.' + k for k in extra)})" if extra else ""
+        if singular:
+            text = f"charge and height of {s}{also} trade off: only their product is seen"
+        else:
+            text = (
+                f"charge and height of {s}{also} are hard to tell apart: mainly their product "
+                "is seen"
+            )
+        text += " (seen from the probes, a charge and its ground image act as a dipole, 2qh)"
     return text

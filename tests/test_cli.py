@@ -476,8 +476,11 @@ def test_unresolved_directions_in_words(site, capsys):
     assert code == 0
     assert "Unresolved directions" in out
     assert "[not resolved]" in flat(out)
+    # Four meters within 2 km of a charge 3 km up: resolvable, but charge and height are
+    # strongly correlated (the near-dipole of a charge and its ground image).
     code, out, _ = run(capsys, "score", site / "tiny.toml", "--layout", site / "layout.csv")
-    assert "Every estimated parameter is resolved." in out
+    assert "[poorly resolved" in flat(out) and "[not resolved]" not in flat(out)
+    assert "mainly their product is seen" in flat(out)
 
 
 def test_progress_bar_draws_only_on_a_terminal():

@@ -277,8 +277,8 @@ def test_moderately_far_charge_is_named_as_poorly_resolved():
     [direction] = score.unresolved
     assert not direction.singular
     assert 0.0 < direction.relative_eigenvalue < 1e-6
-    assert "s0.charge_c" in direction.text and "s0.z_m" in direction.text
-    assert "hard to tell apart" in direction.text
+    assert "charge and height of s0" in direction.text
+    assert "hard to tell apart: mainly their product is seen" in direction.text
 
 
 def test_a_well_spread_layout_leaves_nothing_unresolved():
