@@ -494,7 +494,7 @@ def _cmd_score(args: argparse.Namespace) -> int:
         gain = _csv_gains(problem, layout)
     with _as_input_error():  # e.g. a probe placed on a point charge: the layout's fault
         score = problem.score(positions, gain=gain)
-    changes = _changes(old, args.from_file, "start", config, score) if old is not None else None
+    changes = _changes(old, args.from_file, "rescore", config, score) if old is not None else None
     result = make_result("score", config, score, changes=changes)
     report.print_result(result)
     if args.out:
@@ -662,6 +662,7 @@ def _changes(old, old_path: str, mode: str, config, score):
         mode=mode,
         old_value=float(old.score.value),
         old_rescored=rescored,
+        old_criterion=old.score.criterion,
         **parts,
     )
 

@@ -54,7 +54,7 @@ CRITERIA: tuple[str, ...] = ("d", "location", "charge")
 #: Aggregates over scenarios; ``quantile:q`` stands for any 0 < q < 1, e.g. ``quantile:0.9``.
 AGGREGATES: tuple[str, ...] = ("mean", "worst", "quantile:q")
 #: Caution lines the summary can carry (the top-level ``caution`` key).
-CAUTIONS: tuple[str, ...] = ("lightning", "esd", "high-voltage", "none")
+CAUTIONS: tuple[str, ...] = ("lightning", "esd", "high-voltage", "general", "none")
 #: Mounting-region and keep-out kinds.
 REGION_KINDS: tuple[str, ...] = ("rectangle", "polygon", "segment", "points")
 #: Source kinds, in the order of :data:`probeplan.sources.KINDS`.
@@ -347,7 +347,7 @@ class Config:
     grades: tuple[Grade, ...]
     budget: BudgetSpec | None
     storm_watch: bool
-    caution: str = "none"
+    caution: str = "general"
 
     @property
     def installed_m(self) -> np.ndarray:
@@ -441,7 +441,7 @@ def parse_config(text: str, path: str = "<config>") -> Config:
     heuristic = ground_z_m is not None and any(
         s.source.center_m[2] - ground_z_m >= STORM_HEIGHT_M for s in sources
     )
-    caution = root.choice("caution", CAUTIONS, default="lightning" if heuristic else "none")
+    caution = root.choice("caution", CAUTIONS, default="lightning" if heuristic else "general")
 
     config = Config(
         path=path,

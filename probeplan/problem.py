@@ -226,7 +226,7 @@ class Problem:
         """
         n_l, n_p, _ = layouts_m.shape
         gains = None if gains is None else np.broadcast_to(gains, (n_l, n_p))
-        per_layout = self.n_scenarios * n_p * 3 * max(self.scene.n_params, 1) * 8
+        per_layout = self.n_scenarios * max(n_p, 1) * 3 * max(self.scene.n_params, 1) * 8
         step = max(1, _CHUNK_BYTES // per_layout)
         for start in range(0, n_l, step):
             sl = slice(start, min(start + step, n_l))

@@ -45,7 +45,18 @@ CAUTIONS: dict[str, str] = {
         "(clearances, earthing, access). Follow local codes, the applicable standards and "
         "qualified, licensed practice."
     ),
+    "general": (
+        "probeplan plans instrument positions; it does not make safety decisions about the "
+        "charges it models (lightning, electrostatic ignition, high voltage). Follow local "
+        "codes, the applicable standards and qualified, licensed practice."
+    ),
 }
+
+#: The line a summary carries when its config says ``caution = "none"``.
+CAUTION_LINE = (
+    "probeplan plans instrument positions only; safety decisions follow local codes, the "
+    "applicable standards and qualified, licensed practice."
+)
 
 _CRITERION_TEXT = {
     "d": "D-optimal: log det of the Fisher information (larger is better)",
@@ -148,7 +159,10 @@ def print_result(result: Result, console: Console | None = None) -> None:
 def summary_parts(result: Result) -> list:
     """The renderables of the summary, in order (tables end with their own blank line)."""
     blank = Text("")
-    parts: list = [_header(result), blank, _layout_table(result), _bounds_table(result)]
+    parts: list = [_header(result), blank]
+    if result.notes:
+        parts += [_notes_text(result), blank]
+    parts += [_layout_table(result), _bounds_table(result)]
     parts += [_criterion_text(result), blank]
     failure = _failure_text(result)
     if failure is not None:
@@ -165,6 +179,8 @@ def summary_parts(result: Result) -> list:
     caution = CAUTIONS.get(result.caution)
     if caution:
         parts.append(Panel(Text(caution), title="Caution", title_align="left", width=80))
+    else:
+        parts.append(Text(CAUTION_LINE))  # even `caution = "none"` keeps one line of it
     return parts
 
 
@@ -184,6 +200,14 @@ def _header(result: Result) -> Text:
             "status: INTERRUPTED - the best layout found before the search was stopped",
             style="bold yellow",
         )
+    return text
+
+
+def _notes_text(result: Result) -> Text:
+    text = Text()
+    for k, note in enumerate(result.notes):
+        text.append("Note: ", style="bold yellow")
+        text.append(note + ("\n" if k + 1 < len(result.notes) else ""))
     return text
 
 
@@ -326,6 +350,9 @@ def _failure_text(result: Result) -> Text | None:
     names = probe_names(result)
     text = Text()
     text.append("If one meter fails: ", style="bold")
+    if not np.any(np.isfinite(bad)):
+        text.append("losing any one of them leaves some parameter unresolved.")
+        return text
     text.append(f"losing #{k} {names[k]} hurts most; {s.criterion} becomes {_value(bad[k])}")
     if not math.isfinite(bad[k]):
         text.append("\n  and the layout no longer resolves every parameter.")
@@ -421,13 +448,15 @@ def _changes_text(result: Result) -> Text:
     how = {
         "installed": "its probes kept fixed as installed",
         "start": "its probes as the starting layout",
+        "rescore": "its layout rescored under this config",
     }.get(c.mode, c.mode)
+    old_name = c.old_criterion or s.criterion
     text = Text()
     text.append("Changes against ", style="bold")
     text.append(f"{c.old_path} ({how}):\n", style="bold")
-    text.append(f"  old layout: {s.criterion} = {_value(c.old_value)} as stored")
-    if c.old_rescored != c.old_value:
-        text.append(f", {_value(c.old_rescored)} under this config")
+    text.append(f"  old layout: {old_name} = {_value(c.old_value)} as stored")
+    if c.old_rescored != c.old_value or old_name != s.criterion:
+        text.append(f"; {s.criterion} = {_value(c.old_rescored)} under this config")
     what = "D-ratio" if s.criterion == "d" else "error ratio"
     text.append(f"\n  new layout: {s.criterion} = {_value(s.value)}; ")
     text.append(f"{what} new vs old: {_ratio(result, s.value, c.old_rescored)}\n")

@@ -40,7 +40,9 @@ class SearchInfo:
     Attributes
     ----------
     history : (n_evaluations,) float
-        Criterion of each evaluated layout, in order.
+        Criterion of each evaluated layout that keeps the mounting rules, in order: the greedy
+        and exchange layouts, a warm start, then every refinement proposal (proposals that
+        break the rules are not recorded). ±inf for a layout that cannot resolve everything.
     bound : float or None
         Upper bound on the ``d`` value over the candidate grid (convex relaxation), if computed.
     bound_gap : float or None
@@ -107,10 +109,11 @@ class Changes:
     Attributes
     ----------
     old_path : str
-    mode : {"installed", "start"}
-        The old probes were kept fixed as installed, or used as the search's starting layout.
+    mode : {"installed", "start", "rescore"}
+        The old probes were kept fixed as installed, used as the search's starting layout, or
+        rescored as they are (``score --from``).
     old_value : float
-        The criterion stored in the old file (under the old config).
+        The criterion stored in the old file (under the old config, named ``old_criterion``).
     old_rescored : float
         The old layout scored under the current config (equal to ``old_value`` when nothing
         changed).
@@ -129,6 +132,7 @@ class Changes:
     moved_to_m: np.ndarray
     added_m: np.ndarray
     removed_m: np.ndarray
+    old_criterion: str = ""
 
 
 def compare_layouts(
@@ -197,6 +201,12 @@ class Result:
         What changed against an earlier result (``--from``).
     simulation : probeplan.simulate.Simulation or None
         Achieved errors of simulated fits beside the bounds (``simulate``).
+    probe_names : tuple of n_probes str or None
+        Names of all probes, installed first (None: the installed names of the config, then
+        ``new-k``).
+    notes : tuple of str
+        Things the user must know about this result (rule violations of a scored layout, which
+        budget option the layout is), printed with the summary.
     """
 
     command: str
@@ -215,6 +225,8 @@ class Result:
     extra: dict = field(default_factory=dict)
     changes: Changes | None = None
     simulation: object | None = None
+    probe_names: tuple[str, ...] | None = None
+    notes: tuple[str, ...] = ()
 
 
 def make_result(
@@ -228,6 +240,8 @@ def make_result(
     extra: dict | None = None,
     changes: Changes | None = None,
     simulation: object | None = None,
+    probe_names: tuple[str, ...] | None = None,
+    notes: tuple[str, ...] = (),
 ) -> Result:
     """Build the one :class:`Result` of a command from its config and outputs."""
     from . import __version__
@@ -249,4 +263,6 @@ def make_result(
         extra=dict(extra or {}),
         changes=changes,
         simulation=simulation,
+        probe_names=None if probe_names is None else tuple(probe_names),
+        notes=tuple(notes),
     )

@@ -33,6 +33,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .errors import InputError
 from .fisher import aggregate, d_ratio
 from .problem import Problem, Score
 from .result import Baseline, SearchInfo
@@ -236,9 +237,11 @@ def greedy(
         vals = obj.candidate_values(np.array(chosen, dtype=int))
         c = _best(vals, allowed, maximise)
         if c < 0:
-            raise ValueError(
-                f"the candidate grid cannot hold {count} probes {min_spacing:g} m apart; "
-                "lower `probes.min_spacing_m`, enlarge the regions or use a finer grid."
+            raise InputError(
+                f"`probes.min_spacing_m` = {min_spacing:g}: the candidate grid cannot hold "
+                f"{count} probes that far apart (it placed {len(chosen)}); lower "
+                "`probes.min_spacing_m`, enlarge the regions, or set a finer "
+                "`design.grid_spacing_m`."
             )
         chosen.append(c)
     return np.array(chosen, dtype=int)
@@ -525,8 +528,8 @@ def refine(
             vals = problem.objective(trial, np.broadcast_to(gain, trial.shape[:2]))
             ok = site.allowed(cand) & site.spacing_ok(trial)
             for v, good in zip(vals, ok, strict=True):
-                if record is not None:
-                    record(float(v) if good else float("nan"))
+                if record is not None and good:
+                    record(float(v))  # a proposal that breaks the rules is no layout
             # Infeasible or singular points get a finite penalty just worse than anything seen
             # (the GP needs finite values).
             y = -vals if maximise else vals
@@ -610,6 +613,12 @@ def plan(
     def tick(stage: str, done: int, total: int) -> None:
         if progress is not None:
             progress(stage, done, total)
+
+    if count == 0:
+        # Nothing to place ([probes] count = 0): the plan is the installed meters as they are.
+        empty = np.zeros((0, 3))
+        info = SearchInfo(np.asarray(hist, dtype=float), None, None, 0.0, 0)
+        return PlanOutcome(empty, np.zeros(0), problem.score(empty, np.zeros(0)), info, True)
 
     tick("candidate grid", 0, 1)
     cand = site.candidate_grid(design.grid_spacing_m, target=candidate_target)

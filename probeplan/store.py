@@ -38,6 +38,7 @@ File layout (beyond the contract's paths)::
     /budget/count, grade, cost, value, meets_target, pareto  attrs cheapest, [target]
     /budget/layouts/{row}/positions_m
     /extra                 attrs name -> float
+    /notes                 (n_notes,)     str      what the user must know (rule violations …)
     /changes, /simulation  one field a dataset (arrays, floats) or attr (str, int, bool);
                            attr none_fields lists the fields that were None
 """
@@ -110,6 +111,8 @@ def probe_names(result: Result) -> tuple[str, ...]:
     -------
     tuple of n_probes str
     """
+    if result.probe_names is not None:
+        return tuple(result.probe_names)
     installed = np.asarray(result.score.installed, dtype=bool)
     n_inst = int(installed.sum())
     names = [f"installed-{k}" for k in range(n_inst)]
@@ -270,6 +273,8 @@ def _write(f: h5py.File, result: Result) -> None:
     extra = f.create_group("extra")
     for key, val in result.extra.items():
         extra.attrs[str(key)] = np.float64(val)
+    if result.notes:
+        _strings(f, "notes", result.notes)
     if result.changes is not None:
         units = {n: "m" for n in ("kept_m", "moved_from_m", "moved_to_m", "added_m", "removed_m")}
         units |= {"old_value": vunit, "old_rescored": vunit}
@@ -496,6 +501,8 @@ def _read(r: _Reader) -> Result:
         from .simulate import Simulation
 
         sections["simulation"] = _read_dataclass(r, "simulation", Simulation)
+    names = r.strings("layout/names") if r.has("layout/names") else None
+    notes = r.strings("notes") if r.has("notes") else ()
     return Result(
         command=r.attr("", "command"),
         config_text=r.attr("", "config_toml"),
@@ -511,6 +518,8 @@ def _read(r: _Reader) -> Result:
         budget=budget,
         complete=r.attr("", "complete", bool),
         extra=extra,
+        probe_names=None if names is None else tuple(names),
+        notes=tuple(notes),
         **sections,
     )
 

@@ -322,9 +322,9 @@ def test_vocabulary_tuples():
 
 def test_free_space_and_low_sources_are_not_storm_watch():
     free = parse_config(BASE.replace("[ground]\nz_m = 0.0\n", ""))
-    assert free.ground_z_m is None and free.storm_watch is False and free.caution == "none"
+    assert free.ground_z_m is None and free.storm_watch is False and free.caution == "general"
     low = parse_config(edited("[0.0, 0.0, 7000.0]", "[0.0, 0.0, 5.0]"))
-    assert low.storm_watch is False and low.caution == "none"
+    assert low.storm_watch is False and low.caution == "general"
     esd = parse_config('caution = "esd"\n' + BASE)
     assert esd.caution == "esd" and esd.storm_watch is False
 
@@ -595,7 +595,10 @@ BAD = {
     ),
     "unknown caution": (
         ('title = "Fictional test range"', 'caution = "storm"'),
-        ['`caution` must be one of "lightning", "esd", "high-voltage", "none"; got "storm"'],
+        [
+            '`caution` must be one of "lightning", "esd", "high-voltage", "general", "none"; '
+            'got "storm"'
+        ],
     ),
     # estimate names
     "unknown estimate name": (
