@@ -46,6 +46,7 @@ def plan_chain(
     counts: tuple[int, ...],
     evaluations: int | None = None,
     stop_event=None,
+    warm_start_m: np.ndarray | None = None,
 ) -> list[OptionPlan]:
     """Plan one grade at increasing counts, each starting from the previous plan.
 
@@ -59,6 +60,8 @@ def plan_chain(
         Refinement evaluations per plan (default: the config's).
     stop_event : Event-like with ``is_set()`` or None
         A stop request shared with the caller; the chain returns what it has when it is set.
+    warm_start_m : (k, 3) float or None
+        A smaller plan of this grade to start from (a resumed sweep).
 
     Returns
     -------
@@ -68,7 +71,7 @@ def plan_chain(
     grade = next(g for g in config.grades if g.name == grade_name)
     stop = stop_event.is_set if stop_event is not None else None
     out: list[OptionPlan] = []
-    warm = None
+    warm = warm_start_m
     for count in counts:
         if stop is not None and stop():
             break
@@ -138,6 +141,7 @@ def run_budget(
     progress: Callable[[str, int, int], None] | None = None,
     evaluations: int | None = None,
     stop: Callable[[], bool] | None = None,
+    done: tuple[OptionPlan, ...] = (),
 ) -> tuple[BudgetTable, bool]:
     """Plan every (count, grade) option of the config and tabulate cost against quality.
 
@@ -153,7 +157,10 @@ def run_budget(
         Refinement evaluations per plan (default: ``[budget] evaluations``).
     stop : callable() -> bool or None
         Polled while the chains run; when it returns True the chains are asked to stop and the
-        options planned so far are tabulated.
+        options finished so far are tabulated.
+    done : tuple of OptionPlan
+        Options already planned (a resumed sweep): kept as they are, and the largest of each
+        grade starts the chain of its larger counts.
 
     Returns
     -------
@@ -171,22 +178,30 @@ def run_budget(
     evaluations = config.budget.evaluations if evaluations is None else evaluations
     grades = [g.name for g in config.grades]
     total = len(counts) * len(grades)
-    results: list[OptionPlan] = []
     if progress is not None:
-        progress("budget options", 0, total)
+        progress("budget options", len(done), total)
     own = executor is None
     workers = max(1, min(len(grades), os.cpu_count() or 1))
     if own and workers > 1:
         executor = ProcessPoolExecutor(max_workers=workers, initializer=_ignore_interrupts)
     manager = multiprocessing.Manager() if own and executor is not None else None
     event = manager.Event() if manager is not None else _LocalEvent()
-    args = [(config.text, str(config.path), g, counts, evaluations, event) for g in grades]
+    results: list[OptionPlan] = [o for o in done if o.grade in grades and o.count in counts]
+    args = []
+    for g in grades:
+        have = {o.count: o for o in results if o.grade == g}
+        todo = tuple(c for c in counts if c not in have)
+        if not todo:
+            continue
+        smaller = [c for c in have if c < todo[0]]
+        warm = have[max(smaller)].positions_m if smaller else None
+        args.append((config.text, str(config.path), g, todo, evaluations, event, warm))
     try:
         if executor is None:
             for a in args:
                 if stop is not None and stop():
                     event.set()
-                results += plan_chain(*a[:-1], stop_event=_polling(event, stop))
+                results += plan_chain(*a[:5], stop_event=_polling(event, stop), warm_start_m=a[6])
                 if progress is not None:
                     progress("budget options", len(results), total)
         else:
@@ -204,7 +219,9 @@ def run_budget(
             executor.shutdown(wait=True, cancel_futures=True)
         if manager is not None:
             manager.shutdown()
-    complete = len(results) == total and all(o.complete for o in results)
+    # An option whose search was cut short is dropped: a resumed sweep plans it again.
+    results = [o for o in results if o.complete]
+    complete = len(results) == total
     return tabulate(results, config), complete
 
 

@@ -93,7 +93,7 @@ def _add_from(parser: argparse.ArgumentParser) -> None:
         "--from-as",
         dest="from_as",
         choices=FROM_MODES,
-        default="start",
+        default=None,
         help="installed: keep the old probes fixed and place [probes] count new ones besides "
         "them; start: use the old layout as the search's starting point (default)",
     )
@@ -173,7 +173,17 @@ def build_parser() -> argparse.ArgumentParser:
             "complete = False and the exit status is 130."
         ),
     )
-    b.add_argument("config", metavar="CONFIG", help="TOML config with [budget] and [[grade]]")
+    b.add_argument(
+        "config",
+        nargs="?",
+        metavar="CONFIG",
+        help="TOML config with [budget] and [[grade]] (with --resume: default the stored one)",
+    )
+    b.add_argument(
+        "--resume",
+        metavar="FILE.h5",
+        help="continue an interrupted budget: keep its finished options, plan the others",
+    )
     _add_out(
         b,
         "result file (default: <config name>-budget.h5 in the working folder, or "
@@ -255,6 +265,10 @@ def main(argv: list[str] | None = None) -> int:
                 "choose a command: plan, score, budget, show, simulate or plot "
                 "(see `probeplan --help`)"
             )
+        if getattr(args, "from_as", None) and not getattr(args, "from_file", None):
+            raise _UsageError("--from-as goes with --from OLD.h5 (see `probeplan plan --help`)")
+        if getattr(args, "from_file", None) and getattr(args, "from_as", "x") is None:
+            args.from_as = "start"
         return _COMMANDS[args.command](args)
     except (_UsageError, InputError) as exc:
         report.print_error(str(exc))
@@ -379,7 +393,7 @@ def _finish(result, out: Path, force: bool, quiet: bool) -> int:
     written = write_result(result, out, force=force)
     if not quiet:
         report.print_result(result)
-    report.print_written(written, complete=result.complete)
+    report.print_written(written, complete=result.complete, command=result.command)
     return EXIT_OK if result.complete else EXIT_INTERRUPTED
 
 
@@ -391,16 +405,9 @@ def _finish(result, out: Path, force: bool, quiet: bool) -> int:
 def _cmd_plan(args: argparse.Namespace) -> int:
     from .result import make_result
     from .search import d_efficiency, plan
-    from .store import check_writable, free_name, read_result
+    from .store import check_writable, free_name
 
-    stored = None
-    if args.resume:
-        stored = read_result(args.resume)
-        if stored.command != "plan":
-            raise InputError(
-                f"{args.resume}: holds a `{stored.command}` result; --resume continues a "
-                "`plan` result."
-            )
+    stored = _read_resumed(args.resume, "plan") if args.resume else None
     if args.config:
         config = _load_config(args.config)
     elif stored is not None:
@@ -423,14 +430,12 @@ def _cmd_plan(args: argparse.Namespace) -> int:
     base_config = config
     if args.from_file:
         if stored is not None:
-            raise InputError(
-                "give --resume or --from, not both: --resume continues a run, "
-                "--from starts a new one from an earlier result."
-            )
+            raise InputError(_RESUME_OR_FROM)
         old = _read_old(args.from_file)
         if args.from_as == "installed":
             config = _with_old_installed(config, old)
     problem = _build_problem(config)
+    _check_enough_readings(problem, config)
     warm = history = None
     if old is not None and args.from_as == "start":
         warm = _new_probes(old)
@@ -466,6 +471,39 @@ def _cmd_plan(args: argparse.Namespace) -> int:
     return _finish(result, out, force, args.quiet)
 
 
+_RESUME_OR_FROM = (
+    "give --resume or --from, not both: --resume continues a run, --from starts a new one "
+    "from an earlier result."
+)
+
+
+def _check_enough_readings(problem, config) -> None:
+    """A layout of n scalar readings cannot determine more than n parameters: say so before
+    searching (the Fisher information is a sum of n rank-one terms)."""
+    axes = problem.new_axes.shape[0]
+    readings = problem.count * axes + int(np.count_nonzero(np.any(problem.installed_axes, -1)))
+    if readings < problem.n_params:
+        raise InputError(
+            f"{config.path}: `probes.count` = {problem.count} new meters of {axes} axis/axes"
+            f"{' plus the installed ones' if problem.installed_m.shape[0] else ''} give "
+            f"{readings} readings, which cannot determine {problem.n_params} estimated "
+            f"parameters ({', '.join(problem.names)}); add meters, use 3-axis meters "
+            '(component = "vector") or estimate fewer parameters.'
+        )
+
+
+def _read_resumed(path: str, command: str):
+    from .store import read_result
+
+    stored = read_result(path)
+    if stored.command != command:
+        raise InputError(
+            f"{path}: holds a `{stored.command}` result; `{command} --resume` continues a "
+            f"`{command}` result."
+        )
+    return stored
+
+
 def _same_file(a: Path, b: Path) -> bool:
     try:
         return a.resolve() == b.resolve()
@@ -492,15 +530,43 @@ def _cmd_score(args: argparse.Namespace) -> int:
     problem = _build_problem(config, count=positions.shape[0], grade=grade)
     if layout is not None:
         gain = _csv_gains(problem, layout)
+    where = f"{args.from_file}" if old is not None else f"{layout.path}"
+    g = config.ground_z_m
+    if g is not None and positions.size and positions[:, 2].min() < g:
+        i = int(np.argmin(positions[:, 2]))
+        raise InputError(
+            f"{where}: probe {i} is at z = {positions[i, 2]:g} m, below the ground plane at "
+            f"z = {g:g} m of {config.path}; a meter reads the field on or above the ground."
+        )
     with _as_input_error():  # e.g. a probe placed on a point charge: the layout's fault
         score = problem.score(positions, gain=gain)
+    # Scoring a layout that breaks the mounting rules is allowed (it may be what is installed
+    # today), but the summary says which rules it breaks.
+    notes = tuple(
+        f"{where} (new probes counted from 0 in file order): {v} The mounting rules of "
+        f"{config.path} do not allow this."
+        for v in problem.site.violations(positions)
+    )
+    names = None
+    if layout is not None and layout.names is not None:
+        n_inst = problem.installed_m.shape[0]
+        from .store import probe_names as default_names
+
+        names = default_names(_names_only(config, score))[:n_inst] + tuple(layout.names)
     changes = _changes(old, args.from_file, "rescore", config, score) if old is not None else None
-    result = make_result("score", config, score, changes=changes)
+    result = make_result("score", config, score, changes=changes, notes=notes, probe_names=names)
     report.print_result(result)
     if args.out:
         written = write_result(result, args.out, force=args.force)
         report.print_written(written)
     return EXIT_OK
+
+
+def _names_only(config, score):
+    """A bare result carrying just what ``store.probe_names`` reads (config text, layout)."""
+    from types import SimpleNamespace
+
+    return SimpleNamespace(probe_names=None, config_text=config.text, score=score)
 
 
 def _csv_gains(problem, layout) -> np.ndarray | None:
@@ -567,18 +633,35 @@ def _cmd_budget(args: argparse.Namespace) -> int:
     from .result import make_result
     from .store import check_writable, free_name
 
-    config = base_config = _load_config(args.config)
+    stored = _read_resumed(args.resume, "budget") if args.resume else None
+    if args.config:
+        config = _load_config(args.config)
+    elif stored is not None:
+        config = _parse_config_text(stored.config_text, stored.config_path)
+    else:
+        raise _UsageError("budget needs a CONFIG (or --resume FILE.h5)")
+    base_config = config
     old = None
     if args.from_file:
+        if stored is not None:
+            raise InputError(_RESUME_OR_FROM)
         old = _read_old(args.from_file)
         if args.from_as == "installed":
             config = _with_old_installed(config, old)
-    out = Path(args.out) if args.out else free_name(Path(config.path).stem + "-budget")
-    check_writable(out, force=args.force)
+    resume_path = Path(args.resume) if args.resume else None
+    if args.out:
+        out = Path(args.out)
+    elif resume_path is not None:
+        out = resume_path
+    else:
+        out = free_name(Path(config.path).stem + "-budget")
+    force = bool(args.force) or (resume_path is not None and _same_file(out, resume_path))
+    check_writable(out, force=force)
     _build_problem(config)  # every config check before the sweep spends its time
+    done = _stored_options(stored) if stored is not None else ()
 
     with _stoppable(args.quiet) as (progress, flag), _as_input_error():
-        table, complete = run_budget(config, progress=progress, stop=flag)
+        table, complete = run_budget(config, progress=progress, stop=flag, done=done)
     if table.count.size == 0:
         report.print_interrupted()
         return EXIT_INTERRUPTED  # stopped before any option was planned: nothing to write
@@ -590,6 +673,19 @@ def _cmd_budget(args: argparse.Namespace) -> int:
     changes = None
     if old is not None:
         changes = _changes(old, args.from_file, args.from_as, base_config, score)
+    why = (
+        "the cheapest option that meets the target"
+        if table.cheapest >= 0
+        else (
+            "no option meets the target; the best-scoring option"
+            if table.target is not None
+            else "no target set; the best-scoring option"
+        )
+    )
+    note = (
+        f"the layout and bounds below are budget row {row}: {table.count[row]} new "
+        f'"{table.grade[row]}" meters, cost {table.cost[row]:,.0f} ({why}).'
+    )
     result = make_result(
         "budget",
         config,
@@ -598,8 +694,22 @@ def _cmd_budget(args: argparse.Namespace) -> int:
         complete=complete,
         extra={"budget_row_scored": float(row)},
         changes=changes,
+        notes=(note,),
     )
-    return _finish(result, out, args.force, args.quiet)
+    return _finish(result, out, force, args.quiet)
+
+
+def _stored_options(stored) -> tuple:
+    """The finished options of a stored budget, as the sweep resumes them."""
+    from .budget import OptionPlan
+
+    b = stored.budget
+    if b is None:
+        return ()
+    return tuple(
+        OptionPlan(int(c), str(g), float(cost), float(v), np.asarray(lay), np.ones(len(lay)))
+        for c, g, cost, v, lay in zip(b.count, b.grade, b.cost, b.value, b.layouts, strict=True)
+    )
 
 
 # --------------------------------------------------------------------------------------------
@@ -724,7 +834,12 @@ def _cmd_plot(args: argparse.Namespace) -> int:
     config, problem, _, _ = _stored_problem(result)
     src = Path(args.file)
     folder = Path(args.folder) if args.folder else src.with_name(src.stem + "_plots")
-    folder.mkdir(parents=True, exist_ok=True)
+    if folder.exists() and not folder.is_dir():
+        raise InputError(f"{folder}: exists and is not a folder; give --folder a folder name.")
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise InputError(f"{folder}: cannot create the folder ({exc.strerror}).") from None
     with _as_input_error():
         paths = plot_all(result, config, problem, folder, fmt=args.fmt)
     report.print_plots(paths)

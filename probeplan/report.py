@@ -574,12 +574,16 @@ def progress_bar(console: Console | None = None) -> Iterator[Callable[[str, int,
         yield progress
 
 
-def print_written(path, complete: bool = True, console: Console | None = None) -> None:
-    """One line naming the result file written (and how to continue an interrupted plan)."""
+def print_written(
+    path, complete: bool = True, console: Console | None = None, command: str = "plan"
+) -> None:
+    """One line naming the result file written (and how to continue an interrupted run)."""
     con = _console(console)
     line = Text(f"Result written to {os.fspath(path)}")
     if not complete:
-        line.append(f" (interrupted; continue with `probeplan plan --resume {os.fspath(path)}`)")
+        line.append(
+            f" (interrupted; continue with `probeplan {command} --resume {os.fspath(path)}`)"
+        )
     con.print(line, soft_wrap=True)
 
 

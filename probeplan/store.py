@@ -50,6 +50,7 @@ import dataclasses
 import difflib
 import math
 import os
+import tempfile
 import tomllib
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -187,6 +188,13 @@ def check_writable(path: str | os.PathLike, *, force: bool = False) -> Path:
         raise InputError(f"{target}: the folder {folder} does not exist; create it first.")
     if target.exists() and not force:
         raise InputError(f"{target} exists; pass --force to overwrite it, or choose another --out.")
+    try:  # a real probe: permissions alone do not tell (root, read-only or special mounts)
+        with tempfile.TemporaryFile(dir=folder):
+            pass
+    except OSError as exc:
+        raise InputError(
+            f"{target}: cannot write in the folder {folder} ({exc.strerror}); choose another --out."
+        ) from None
     return target
 
 

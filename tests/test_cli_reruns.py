@@ -218,3 +218,83 @@ def test_plot_writes_images(planned, site, capsys):
 def test_plot_rejects_an_unknown_format(planned, capsys):
     assert main(["plot", "old.h5", "--format", "bmp"]) == 2
     assert "invalid choice: 'bmp'" in capsys.readouterr().err
+
+
+def test_budget_resume_keeps_finished_options_and_plans_the_rest(site, capsys):
+    from concurrent.futures import ThreadPoolExecutor
+
+    from probeplan.budget import OptionPlan, run_budget
+    from probeplan.config import load_config
+
+    cfg = load_config(site / "site.toml")
+    with ThreadPoolExecutor(max_workers=2) as pool:
+        full, complete = run_budget(cfg, executor=pool)
+    assert complete
+    # Pretend the sweep was interrupted after the two smallest options of grade "basic".
+    keep = [k for k in range(len(full.count)) if full.grade[k] == "basic" and full.count[k] == 3]
+    done = tuple(
+        OptionPlan(
+            int(full.count[k]), "basic", float(full.cost[k]), -1.0, full.layouts[k], np.ones(3)
+        )
+        for k in keep
+    )
+    with ThreadPoolExecutor(max_workers=2) as pool:
+        resumed, complete = run_budget(cfg, executor=pool, done=done)
+    assert complete and len(resumed.count) == len(full.count)
+    row = [
+        k
+        for k in range(len(resumed.count))
+        if resumed.grade[k] == "basic" and resumed.count[k] == 3
+    ][0]
+    assert resumed.value[row] == -1.0, "a finished option is kept as stored, not replanned"
+
+
+def test_budget_resume_on_the_command_line(site, capsys):
+    assert main(["budget", "site.toml", "--out", "b.h5", "--quiet"]) == 0
+    before = read_result(site / "b.h5")
+    assert main(["budget", "--resume", "b.h5", "--quiet"]) == 0
+    after = read_result(site / "b.h5")
+    np.testing.assert_array_equal(after.budget.value, before.budget.value)
+    assert "budget row" in after.notes[0]
+    assert main(["plan", "--resume", "b.h5"]) == 2
+    assert "`plan --resume` continues a `plan` result" in capsys.readouterr().err
+
+
+def test_score_notes_rule_breaks_and_keeps_csv_names(site, capsys):
+    (site / "l.csv").write_text("name,x_m,y_m,z_m\nalpha,100,1500,0\nbeta,9000,0,0\n")
+    (site / "l2.csv").write_text(
+        "name,x_m,y_m,z_m\nalpha,100,1500,0\nbeta,0,0,0\ngamma,1500,-900,0\ndelta,-900,1200,0\n"
+    )
+    assert main(["score", "site.toml", "--layout", "l2.csv", "--out", "s.h5"]) == 0
+    res = read_result(site / "s.h5")
+    assert res.probe_names == ("mast", "alpha", "beta", "gamma", "delta")
+    assert res.notes == ()
+    assert main(["score", "site.toml", "--layout", "l.csv"]) == 0
+    out = capsys.readouterr().out
+    assert "lies outside every mounting region" in " ".join(out.split())
+    (site / "under.csv").write_text("x_m,y_m,z_m\n0,0,-3\n")
+    assert main(["score", "site.toml", "--layout", "under.csv"]) == 2
+    assert "below the ground plane" in capsys.readouterr().err
+
+
+def test_plan_refuses_fewer_readings_than_parameters(site, capsys):
+    text = (site / "site.toml").read_text().replace("count = 4", "count = 2")
+    text = text.replace(
+        '[[probes.installed]]\nname = "mast"\nposition_m = [-1500.0, -1000.0, 0.0]', ""
+    )
+    (site / "few.toml").write_text(text)
+    assert main(["plan", "few.toml"]) == 2
+    err = capsys.readouterr().err
+    assert "give 2 readings, which cannot determine 4 estimated parameters" in err
+    assert not (site / "few.h5").exists()
+
+
+def test_from_as_needs_from(site, capsys):
+    assert main(["plan", "site.toml", "--from-as", "installed"]) == 2
+    assert "--from-as goes with --from" in capsys.readouterr().err
+
+
+def test_plot_folder_that_is_a_file_is_bad_input(planned, site, capsys):
+    (site / "taken").write_text("x")
+    assert main(["plot", "old.h5", "--folder", "taken"]) == 2
+    assert "exists and is not a folder" in capsys.readouterr().err
