@@ -385,9 +385,13 @@ def _search_notes(result: Result) -> Text:
                     "  (above 100 %: the refinement moved probes off the grid, where the bound "
                     "does not apply)\n"
                 )
+    spacing = (
+        f"spacing {format_quantity(info.grid_spacing_m, 'm')}"
+        if info.grid_spacing_m > 0
+        else "the listed mounting points"
+    )
     text.append(
-        f"  candidate grid: {info.n_candidates} points, spacing "
-        f"{format_quantity(info.grid_spacing_m, 'm')}; "
+        f"  candidate grid: {info.n_candidates} points, {spacing}; "
         f"{len(info.history)} evaluations in {info.seconds:.1f} s"
     )
     return text
