@@ -381,10 +381,7 @@ def _search_notes(result: Result) -> Text:
             text.append(f"  D-efficiency: {100.0 * eff:.1f} % of the bound, ")
             text.append("exp((plan - bound)/n_params)\n")
             if eff > 1.0:
-                text.append(
-                    "  (above 100 %: the refinement moved probes off the grid, where the bound "
-                    "does not apply)\n"
-                )
+                text.append("  (over 100 %: refinement moved probes off the grid it covers)\n")
     spacing = (
         f"spacing {format_quantity(info.grid_spacing_m, 'm')}"
         if info.grid_spacing_m > 0
