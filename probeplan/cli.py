@@ -31,6 +31,7 @@ import sys
 from collections.abc import Iterator
 from importlib import resources
 from pathlib import Path
+from typing import NamedTuple
 
 import numpy as np
 
@@ -402,38 +403,56 @@ def _finish(result, out: Path, force: bool, quiet: bool) -> int:
 # --------------------------------------------------------------------------------------------
 
 
-def _cmd_plan(args: argparse.Namespace) -> int:
-    from .result import make_result
-    from .search import d_efficiency, plan
+class _Run(NamedTuple):
+    """What plan and budget resolve from their arguments before any work."""
+
+    stored: object  # the resumed result, or None
+    config: object  # the config to run (with --from-as installed: old probes added)
+    base_config: object  # the config as the user wrote it
+    old: object  # the --from result, or None
+    out: Path
+    force: bool
+
+
+def _prepare_run(args: argparse.Namespace, command: str, suffix: str) -> _Run:
+    """Config (given, resumed or the demo), --resume / --from, and the output file, checked
+    writable before the search spends its time."""
     from .store import check_writable, free_name
 
-    stored = _read_resumed(args.resume, "plan") if args.resume else None
+    stored = _read_resumed(args.resume, command) if args.resume else None
     if args.config:
         config = _load_config(args.config)
     elif stored is not None:
         config = _parse_config_text(stored.config_text, stored.config_path)
-    else:
+    elif command == "plan":
         config = _demo_config()
-
-    resume_path = Path(args.resume) if args.resume else None
-    if args.out:
-        out = Path(args.out)
-    elif resume_path is not None:
-        out = resume_path
     else:
-        out = free_name(Path(config.path).stem)
-    # Resuming into the resumed file replaces it: that is what --resume is for.
-    force = bool(args.force) or (resume_path is not None and _same_file(out, resume_path))
-    check_writable(out, force=force)  # before the search spends its time
-
-    old = None
-    base_config = config
+        raise _UsageError(f"{command} needs a CONFIG (or --resume FILE.h5)")
+    base_config, old = config, None
     if args.from_file:
         if stored is not None:
             raise InputError(_RESUME_OR_FROM)
         old = _read_old(args.from_file)
         if args.from_as == "installed":
             config = _with_old_installed(config, old)
+    resume_path = Path(args.resume) if args.resume else None
+    if args.out:
+        out = Path(args.out)
+    elif resume_path is not None:
+        out = resume_path
+    else:
+        out = free_name(Path(config.path).stem + suffix)
+    # Resuming into the resumed file replaces it: that is what --resume is for.
+    force = bool(args.force) or (resume_path is not None and _same_file(out, resume_path))
+    check_writable(out, force=force)
+    return _Run(stored, config, base_config, old, out, force)
+
+
+def _cmd_plan(args: argparse.Namespace) -> int:
+    from .result import make_result
+    from .search import d_efficiency, plan
+
+    stored, config, base_config, old, out, force = _prepare_run(args, "plan", suffix="")
     problem = _build_problem(config)
     _check_enough_readings(problem, config)
     warm = history = None
@@ -631,32 +650,8 @@ def _layout_grade(config, layout):
 def _cmd_budget(args: argparse.Namespace) -> int:
     from .budget import chosen_option, run_budget
     from .result import make_result
-    from .store import check_writable, free_name
 
-    stored = _read_resumed(args.resume, "budget") if args.resume else None
-    if args.config:
-        config = _load_config(args.config)
-    elif stored is not None:
-        config = _parse_config_text(stored.config_text, stored.config_path)
-    else:
-        raise _UsageError("budget needs a CONFIG (or --resume FILE.h5)")
-    base_config = config
-    old = None
-    if args.from_file:
-        if stored is not None:
-            raise InputError(_RESUME_OR_FROM)
-        old = _read_old(args.from_file)
-        if args.from_as == "installed":
-            config = _with_old_installed(config, old)
-    resume_path = Path(args.resume) if args.resume else None
-    if args.out:
-        out = Path(args.out)
-    elif resume_path is not None:
-        out = resume_path
-    else:
-        out = free_name(Path(config.path).stem + "-budget")
-    force = bool(args.force) or (resume_path is not None and _same_file(out, resume_path))
-    check_writable(out, force=force)
+    stored, config, base_config, old, out, force = _prepare_run(args, "budget", suffix="-budget")
     _build_problem(config)  # every config check before the sweep spends its time
     done = _stored_options(stored) if stored is not None else ()
 
