@@ -373,10 +373,12 @@ def budget_curve(budget_table, path, criterion: str, target: float | None) -> Pa
             f"cheapest meeting the target:\n{count[i]} × {grade[i]}, cost {cost[i]:,.0f}",
             (cost[i], value[i]),
             textcoords="offset points",
-            xytext=(25, -40),
+            # Up and to the right, half transparent: the next options of a curve that falls
+            # with cost lie down and to the right, and must stay visible.
+            xytext=(30, 35),
             fontsize=8,
             arrowprops={"arrowstyle": "->", "color": "0.2"},
-            bbox={"boxstyle": "round", "fc": "white", "ec": "0.6"},
+            bbox={"boxstyle": "round", "fc": "white", "ec": "0.6", "alpha": 0.85},
         )
     if criterion != "d" and ok.any():
         pos = value[ok & (value > 0)]
