@@ -621,7 +621,7 @@ def plan(
         return PlanOutcome(empty, np.zeros(0), problem.score(empty, np.zeros(0)), info, True)
 
     tick("candidate grid", 0, 1)
-    cand = site.candidate_grid(design.grid_spacing_m, target=candidate_target)
+    cand = _candidates(problem, design.grid_spacing_m, candidate_target)
     gains_c = problem.new_gain * cand.gain
     rows, _ = problem.rows(cand.positions_m, gains_c)
     robust = bool(design.tolerate_failures)
@@ -751,6 +751,27 @@ def plan(
         objective="worst single loss" if robust else "criterion",
     )
     return PlanOutcome(layout, gain, score, info, complete=not stopped)
+
+
+#: The automatic grid is never finer than this fraction of the typical distance from a
+#: candidate to the nominal charges: the field changes on that scale, and a finer grid only
+#: costs time (an 18 m rail 3–7 m from an electrode got 1.2 cm spacing from the count target).
+GRID_FRACTION_OF_DISTANCE = 0.02
+
+
+def _candidates(problem: Problem, spacing_m: float | None, target: int):
+    """The candidate grid: the config's spacing, or about ``target`` points but no finer than
+    :data:`GRID_FRACTION_OF_DISTANCE` of the median candidate–charge distance."""
+    site = problem.site
+    cand = site.candidate_grid(spacing_m, target=target)
+    if spacing_m is not None or cand.spacing_m <= 0:
+        return cand
+    centres = np.array([s.center_m for s in problem.scene.sources])
+    dist = np.linalg.norm(cand.positions_m[:, None, :] - centres[None, :, :], axis=-1).min(axis=1)
+    floor = GRID_FRACTION_OF_DISTANCE * float(np.median(dist))
+    if cand.spacing_m < floor:
+        cand = site.candidate_grid(floor, target=target)
+    return cand
 
 
 def _feasible_subset(site, layout: np.ndarray) -> np.ndarray:

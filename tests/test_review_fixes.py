@@ -120,3 +120,38 @@ def test_a_warm_start_that_breaks_spacing_is_thinned_first():
     for b in outcome.info.baselines:
         assert problem.site.spacing_ok(b.positions_m[None])[0], b.name
     assert problem.site.spacing_ok(outcome.positions_m[None])[0]
+
+
+def test_the_automatic_grid_is_not_finer_than_the_field_changes():
+    # An 18 m rail 3-7 m from a charge: the count target alone gave 1.2 cm spacing.
+    from probeplan.search import GRID_FRACTION_OF_DISTANCE, _candidates
+
+    text = """
+seed = 1
+[ground]
+z_m = 0.0
+[probes]
+count = 3
+component = "vector"
+noise_v_per_m = 50.0
+[[region]]
+kind = "segment"
+start_m = [-9.0, 5.0, 2.5]
+end_m = [9.0, 5.0, 2.5]
+[[source]]
+kind = "point"
+charge_c = 2e-6
+center_m = [0.0, 0.0, 3.0]
+estimate = ["charge", "x", "y", "z"]
+[design]
+scenarios = 2
+"""
+    problem = build_problem(parse_config(text, "rail.toml"))
+    cand = _candidates(problem, None, 1500)
+    dist = np.linalg.norm(cand.positions_m - [0.0, 0.0, 3.0], axis=1)
+    # A segment is split into equal steps, so the spacing may come out a little under the
+    # floor asked for (here 18 m / 134 steps against 0.136 m).
+    assert cand.spacing_m >= 0.95 * GRID_FRACTION_OF_DISTANCE * np.median(dist)
+    assert cand.positions_m.shape[0] < 1500
+    # A spacing the config sets is kept as it is.
+    assert _candidates(problem, 0.05, 1500).spacing_m == 0.05
