@@ -170,7 +170,37 @@ class Criterion:
     def unit(self) -> str:
         return {"d": "log det, SI", "location": "m", "charge": "fraction"}[self.name]
 
-    def per_scenario(self, fisher: np.ndarray, theta_est: np.ndarray) -> np.ndarray:
+    @property
+    def error_indices(self) -> tuple[int, ...]:
+        """Columns whose variances an error criterion adds: (x, y) or (charge,); () for d."""
+        if self.name == "location":
+            return (self.x_index, self.y_index)
+        if self.name == "charge":
+            return (self.charge_index,)
+        return ()
+
+    def error_from_variance(self, var: np.ndarray, theta_est: np.ndarray) -> np.ndarray:
+        """An error criterion from the summed variance of :attr:`error_indices`.
+
+        Parameters
+        ----------
+        var : (n_scenarios, ...) float
+            Σ C_ii over the error indices, per scenario (leading axis).
+        theta_est : (n_scenarios, n_params) float
+
+        Returns
+        -------
+        same shape as ``var``: sqrt(var) in m (location) or sqrt(var)/|q| (charge).
+        """
+        err = np.sqrt(np.maximum(var, 0.0))
+        if self.name == "charge":
+            q = np.abs(theta_est[:, self.charge_index])
+            err = err / q.reshape(q.shape + (1,) * (err.ndim - 1))
+        return err
+
+    def per_scenario(
+        self, fisher: np.ndarray, theta_est: np.ndarray, *, threshold: bool = True
+    ) -> np.ndarray:
         """Criterion value of each scenario.
 
         Parameters
@@ -178,19 +208,24 @@ class Criterion:
         fisher : (..., n_scenarios, n_params, n_params) float
         theta_est : (n_scenarios, n_params) float
             Estimated parameters of each scenario (the charge for ``charge``).
+        threshold : bool
+            Apply the singularity rule (the contract's −inf / +inf). The search turns it off for
+            matrices made positive definite by its tiny prior, whose first picks must still be
+            told apart by how much they add.
 
         Returns
         -------
         (..., n_scenarios) float
         """
         if self.name == "d":
-            return log_det(fisher)
-        cov, _ = covariance(fisher)
-        if self.name == "location":
-            var = cov[..., self.x_index, self.x_index] + cov[..., self.y_index, self.y_index]
-            return np.sqrt(var)
-        q = np.abs(theta_est[:, self.charge_index])
-        return np.sqrt(cov[..., self.charge_index, self.charge_index]) / q
+            if threshold:
+                return log_det(fisher)
+            sign, ld = np.linalg.slogdet(fisher)
+            return np.where(sign > 0, ld, -np.inf)
+        cov = covariance(fisher)[0] if threshold else np.linalg.inv(fisher)
+        var = sum(cov[..., i, i] for i in self.error_indices)
+        # Scenarios last in `var`; error_from_variance wants them first.
+        return np.moveaxis(self.error_from_variance(np.moveaxis(var, -1, 0), theta_est), 0, -1)
 
 
 def parse_aggregate(text: str) -> tuple[str, float]:

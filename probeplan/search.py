@@ -134,16 +134,7 @@ class GridObjective:
         they add although the layout cannot resolve everything yet.
         """
         p = self.problem
-        if p.criterion.name == "d":
-            sign, ld = np.linalg.slogdet(m)
-            per = np.where(sign > 0, ld, -np.inf)
-        else:
-            cov = np.linalg.inv(m)
-            c = p.criterion
-            idx = [c.x_index, c.y_index] if c.name == "location" else [c.charge_index]
-            per = np.sqrt(np.maximum(sum(cov[..., i, i] for i in idx), 0.0))
-            if c.name == "charge":
-                per = per / np.abs(p.theta_est[:, c.charge_index])
+        per = p.criterion.per_scenario(m, p.theta_est, threshold=False)
         return aggregate(per, p.aggregate, p.criterion.maximise)
 
     def value(self, chosen: np.ndarray) -> float:
@@ -184,18 +175,11 @@ class GridObjective:
             per = np.where(sign_c > 0, ld0[:, None] + ld, -np.inf)  # (S, C)
         else:
             k = np.linalg.inv(small)  # (S, C, a, a)
-            idx = (
-                [p.criterion.x_index, p.criterion.y_index]
-                if p.criterion.name == "location"
-                else [p.criterion.charge_index]
-            )
             var = np.zeros(u.shape[:2])
-            for i in idx:
+            for i in p.criterion.error_indices:
                 ui = u[:, :, i, :]  # (S, C, a)
                 var += minv[:, i, i][:, None] - np.einsum("sca,scab,scb->sc", ui, k, ui)
-            per = np.sqrt(np.maximum(var, 0.0))
-            if p.criterion.name == "charge":
-                per = per / np.abs(p.theta_est[:, p.criterion.charge_index])[:, None]
+            per = p.criterion.error_from_variance(var, p.theta_est)
         return aggregate(per.T, p.aggregate, p.criterion.maximise)
 
 
