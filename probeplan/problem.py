@@ -273,10 +273,9 @@ class Problem:
         (n_installed + n_probes,) float
             Entry i: the criterion with probe i (installed first) out of service.
         """
-        info = self.probe_information(positions_m, gain)  # (S, n, p, p)
-        total = info.sum(axis=1)
-        without = total[None] - np.moveaxis(info, 1, 0)  # (n, S, p, p)
-        return self.values(without)
+        pos = np.asarray(positions_m, dtype=float).reshape(1, -1, 3)
+        g = None if gain is None else np.asarray(gain, dtype=float).reshape(1, -1)
+        return self._loss_values(pos, g)[0]
 
     def robust_layout_values(
         self, layouts_m: np.ndarray, gains: np.ndarray | None = None
@@ -292,19 +291,25 @@ class Problem:
         -------
         (n_layouts,) float
         """
+        vals = self._loss_values(layouts_m, gains)  # (L, n_all)
+        return vals.min(axis=1) if self.criterion.maximise else vals.max(axis=1)
+
+    def _loss_values(self, layouts_m: np.ndarray, gains: np.ndarray | None) -> np.ndarray:
+        """Criterion of each layout with each one probe lost, ``(n_layouts, n_all)``.
+
+        Probes are numbered installed first; J without probe i is the total minus probe i's
+        own information (Fisher information of independent readings adds).
+        """
         n_l, n_p, _ = layouts_m.shape
         g = None if gains is None else np.broadcast_to(gains, (n_l, n_p)).reshape(-1)
         rows, _ = self.rows(layouts_m.reshape(-1, 3), g)
         info = fisher_from_rows(rows).reshape(self.n_scenarios, n_l, n_p, self.n_params, -1)
-        total = info.sum(axis=2) + self.fisher_installed[:, None]  # (S, L, p, p)
-        losses = [total[:, :, None] - info]  # (S, L, n, p, p)
         if self.installed_m.shape[0]:
-            rows_i, _ = self.installed_rows()
-            inst = fisher_from_rows(rows_i)  # (S, k, p, p)
-            losses.append(total[:, :, None] - inst[:, None])
-        lost = np.moveaxis(np.concatenate(losses, axis=2), 0, 2)  # (L, n_all, S, p, p)
-        vals = self.values(lost)  # (L, n_all)
-        return vals.min(axis=1) if self.criterion.maximise else vals.max(axis=1)
+            inst = fisher_from_rows(self.installed_rows()[0])  # (S, k, p, p)
+            inst = np.broadcast_to(inst[:, None], (self.n_scenarios, n_l, *inst.shape[1:]))
+            info = np.concatenate([inst, info], axis=2)  # (S, L, n_all, p, p)
+        lost = info.sum(axis=2, keepdims=True) - info
+        return self.values(np.moveaxis(lost, 0, 2))  # (L, n_all, S, p, p) -> (L, n_all)
 
     def objective(self, layouts_m: np.ndarray, gains: np.ndarray | None = None) -> np.ndarray:
         """What the search optimises: the criterion, or its worst case over single losses
