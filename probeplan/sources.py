@@ -4,9 +4,12 @@ Map of this module (read top to bottom):
 
 1. Constants and the five public source kinds (small frozen dataclasses). Each validates its own
    arguments once, in ``__post_init__``, and can turn itself into a parameter vector and back.
-2. Private vectorised kernels, one per kind, on strict arrays with no checks. A kernel takes the
+2. Private kernels, one per kind, on strict arrays with no checks. A kernel takes the
    parameters of *all sources of its kind in all scenarios* at once and returns the summed field
-   and the per-source parameter Jacobian. Closed forms from the literature are used everywhere:
+   and the per-source parameter Jacobian. Line and grid kernels are vectorised numpy over blocks
+   of points; the radial kinds (point, ball, Gaussian) share one loop compiled by numba, because
+   their Jacobian costs a few flops per number and only a compiled loop writes it at memory
+   speed. Closed forms from the literature are used everywhere:
 
    * point: Coulomb's law;
    * line: the finite uniform segment in its prolate-spheroidal form,
@@ -33,8 +36,9 @@ import math
 from dataclasses import dataclass, field
 from typing import ClassVar
 
+import numba
 import numpy as np
-from scipy import constants, special
+from scipy import constants
 
 #: Coulomb constant k = 1/(4 pi eps0) in N m^2 / C^2, from scipy.constants (CODATA).
 K_COULOMB: float = 1.0 / (4.0 * math.pi * constants.epsilon_0)
@@ -44,9 +48,6 @@ BASE_PARAMS: tuple[str, ...] = ("charge_c", "x_m", "y_m", "z_m")
 
 # Kernels work on blocks of points small enough that their temporaries stay in cache.
 _BLOCK_ELEMENTS = 1 << 15
-# The radial kernels (point, ball, Gaussian) also write their Jacobian block column by column,
-# so that block must stay in cache too: smaller blocks (2**13 measured best for point charges).
-_RADIAL_BLOCK_ELEMENTS = 1 << 13
 
 
 def _vector3(value, name: str) -> tuple[float, float, float]:
@@ -361,156 +362,161 @@ def _blocks(n_points: int, per_point: int, elements: int | None = None):
         yield slice(start, min(start + step, n_points))
 
 
-def _offsets(params: np.ndarray, pts: np.ndarray, centres=None):
-    """Observation point minus source centre, per component: three (S, m, N) arrays.
-
-    ``centres`` : optional three contiguous (S, 1, N) arrays of the centre coordinates (see
-    :func:`_centres`); a strided view of ``params`` makes every subtraction ~2× slower.
-    """
-    if centres is None:
-        centres = [params[:, None, :, 1 + k] for k in range(3)]
-    return tuple(np.subtract(pts[None, :, None, k], centres[k]) for k in range(3))
+def _offsets(params: np.ndarray, pts: np.ndarray):
+    """Observation point minus source centre, per component: three (S, m, N) arrays."""
+    return tuple(np.subtract(pts[None, :, None, k], params[:, None, :, 1 + k]) for k in range(3))
 
 
-def _centres(params: np.ndarray):
-    """The centre coordinates as three contiguous (S, 1, N) arrays, made once per call."""
-    return [np.ascontiguousarray(params[:, None, :, 1 + k]) for k in range(3)]
+# ---- radial kinds (point, ball, Gaussian): one compiled loop ---------------------------------
+#
+# Their field is E = k q a(r) R with R = x − c, so the whole Jacobian follows from three radial
+# functions: ∂E/∂q = k a R, ∂E/∂c = −k q (a I + b R Rᵀ) with b = a′(r)/r, and the size parameter's
+# column ∂E/∂θ₄ = k q e R. The work per output number is a few flops, so the kernel is bound by
+# writing the (S, M, 3, N, P) Jacobian; a compiled loop writes each output row once, in order,
+# which numpy's whole-array passes cannot (their ~40 passes over strided columns ran at a fifth
+# of the memory bandwidth; see benchmarks/forward.py).
 
+_RADIAL_POINT, _RADIAL_BALL, _RADIAL_GAUSSIAN = 0, 1, 2
 
-def _point_kernel(params, pts, geom, want_jac, out=None):
-    S, N, P = params.shape
-    M = pts.shape[0]
-    E = np.zeros((S, M, 3))
-    jac = _jac_buffer((S, M, 3, N, P), want_jac, out)
-    kq = K_COULOMB * params[:, None, :, 0]  # (S, 1, N)
-    kq3 = 3.0 * kq
-    centres = _centres(params)
-    for blk in _blocks(M, S * N, _RADIAL_BLOCK_ELEMENTS):
-        R = _offsets(params, pts[blk], centres)
-        r2 = R[0] * R[0]
-        t = R[1] * R[1]
-        r2 += t
-        np.multiply(R[2], R[2], out=t)
-        r2 += t
-        if r2.min() == 0.0:  # one cheap pass; the mask only on the rare error path
-            _check_not_on_charge(r2 == 0.0, pts[blk], blk, "point charge")
-        inv_r2 = np.divide(1.0, r2, out=r2)
-        a = np.sqrt(inv_r2)
-        a *= inv_r2  # 1/r³
-        kqa = np.multiply(kq, a)
-        # −k q b with b = −3/r⁵ = −3 a/r²
-        nkqb = np.multiply(a, inv_r2, out=inv_r2)
-        nkqb *= kq3
-        _write_radial_terms(E, jac, blk, R, a, kqa, nkqb)
-    return E, jac
-
-
-def _write_radial(E, jac, blk, R, q, a, b, extra=None):
-    """Field E = k q a R; gradient k q (a I + b R Rᵀ); optional extra column k q c R.
-
-    R : three (S, m, N) arrays; q : (S, 1, N); a, b, extra : (S, m, N).
-    """
-    kq = K_COULOMB * q
-    kqa = kq * a
-    nkqb = np.multiply(kq, b)
-    np.negative(nkqb, out=nkqb)
-    _write_radial_terms(E, jac, blk, R, a, kqa, nkqb, extra)
-
-
-def _write_radial_terms(E, jac, blk, R, a, kqa, nkqb, extra=None):
-    """Write E and the Jacobian block of radial kernels, straight into ``E`` and ``jac``.
-
-    E_i += Σ_n k q a R_i; ∂E_i/∂q = k a R_i; ∂E_i/∂c_j = −(k q a δ_ij + k q b R_i R_j);
-    ∂E_i/∂θ₄ = k q a c R_i for ``extra`` = c. kqa = k q a and nkqb = −k q b, all (S, m, N).
-
-    Speed: every Jacobian column of the (S, M, 3, N, P) output is a strided slice, and a ufunc
-    writing to a strided output is ~2× slower than to a contiguous one, so each product is
-    formed once in a small contiguous scratch array (it stays in cache) and then copied; the
-    symmetric off-diagonal pair shares one product. ``a`` may be overwritten.
-    """
-    for i in range(3):
-        E[:, blk, i] += np.einsum("smn,smn->sm", kqa, R[i])
-    if jac is None:
-        return
-    jb = jac[:, blk]
-    ka = np.multiply(a, K_COULOMB, out=a)
-    for i in range(3):
-        np.multiply(ka, R[i], out=jb[:, :, i, :, 0])
-    t = np.empty_like(kqa)
-    g = np.empty_like(kqa)
-    for i in range(3):
-        np.multiply(nkqb, R[i], out=t)
-        for j in range(i, 3):
-            np.multiply(t, R[j], out=g)
-            if i == j:
-                g -= kqa
-            jb[:, :, i, :, 1 + j] = g
-            if j != i:
-                jb[:, :, j, :, 1 + i] = g
-    if extra is not None:
-        np.multiply(kqa, extra, out=t)
-        for i in range(3):
-            np.multiply(t, R[i], out=jb[:, :, i, :, 4])
-
-
-def _sphere_kernel(params, pts, geom, want_jac, out=None):
-    S, N, P = params.shape
-    M = pts.shape[0]
-    E = np.zeros((S, M, 3))
-    jac = _jac_buffer((S, M, 3, N, P), want_jac, out)
-    q = params[:, None, :, 0]
-    radius = params[:, None, :, 4]
-    for blk in _blocks(M, S * N, _RADIAL_BLOCK_ELEMENTS):
-        R = _offsets(params, pts[blk])
-        r2 = R[0] * R[0] + R[1] * R[1] + R[2] * R[2]
-        inside = r2 < radius * radius
-        with np.errstate(divide="ignore", invalid="ignore"):
-            inv_r = 1.0 / np.sqrt(r2)
-        inv_a3 = 1.0 / radius**3
-        a = np.where(inside, inv_a3, inv_r**3)
-        b = np.where(inside, 0.0, -3.0 * inv_r**5)
-        # dE/d(radius) = -3 k q R / radius^4 inside, 0 outside; written as k q c R with c/a.
-        extra = np.where(inside, -3.0 / radius, 0.0)
-        _write_radial(E, jac, blk, R, q, a, b, extra)
-    return E, jac
-
-
-# Series coefficients of (phi - 3h) in z = r^2 / (2 sigma^2), see _gaussian_kernel.
-_GAUSS_SERIES = np.array([2 / 5, 4 / 35, 8 / 315, 16 / 3465, 32 / 45045])
+# Series of (φ − 3h)/(−3 h(0) e^{−z}) in z = r²/(2σ²) for the Gaussian near its centre, where the
+# closed form is 0/0: from the series of P(3/2, z) (Abramowitz & Stegun 6.5.29).
+_GAUSS_SERIES = (2 / 5, 4 / 35, 8 / 315, 16 / 3465, 32 / 45045)
 _GAUSS_SERIES_Z = 0.05
+_TWO_OVER_SQRT_PI = 2.0 / math.sqrt(math.pi)
+_GAUSS_AMP = 2.0 / (3.0 * math.sqrt(2.0 * math.pi))
 
 
-def _gaussian_kernel(params, pts, geom, want_jac, out=None):
-    """Isotropic Gaussian: E = k q h(r) R with h = F(r)/r^3, F = P(3/2, z), z = r^2/2s^2.
+def _jit(fn):
+    """Compile ``fn`` once per machine (cached beside the module, or in the user's cache when
+    that is read-only); without any writable cache, compile once per process instead."""
+    options = {"nogil": True, "error_model": "numpy", "boundscheck": False}
+    try:
+        return numba.njit(cache=True, **options)(fn)
+    except RuntimeError:  # numba: "cannot cache function ...: no locator available"
+        return numba.njit(**options)(fn)
 
-    phi = F'(r)/r^2 = 4 pi rho_1(r) (rho_1 the unit-charge density); the gradient is
-    k q (h I + (phi - 3h)/r^2 R Rᵀ) and dE/ds = -k q phi R / s. Near r = 0 both h and
-    (phi - 3h)/r^2 come from the series of P(3/2, z), which avoids 0/0 and cancellation.
+
+@_jit
+def _radial_profile(kind, r2, size):
+    """(a, b, e) of one radial source at squared distance r2 (m²); ``size`` radius or σ (m)."""
+    if kind == _RADIAL_BALL and r2 < size * size:
+        # Inside a uniform ball (Gauss's law): E = k q R / ρ³; ∂E/∂ρ = −3 k q R / ρ⁴.
+        a = 1.0 / (size * size * size)
+        return a, 0.0, -3.0 * a / size
+    if kind == _RADIAL_GAUSSIAN:
+        # h = P(3/2, z)/r³, φ = 4π ρ₁(r) = 3 h(0) e^{−z}; gradient coefficient (φ − 3h)/r²;
+        # ∂E/∂σ = −k q φ R / σ.
+        s2 = size * size
+        z = r2 / (2.0 * s2)
+        ez = math.exp(-z)
+        amp = _GAUSS_AMP / (s2 * size)  # h(0)
+        phi = 3.0 * amp * ez
+        if z < _GAUSS_SERIES_Z:
+            poly = 0.0
+            for c in _GAUSS_SERIES[::-1]:
+                poly = poly * z + c
+            return amp * ez * (1.0 + z * poly), -3.0 * amp * ez * poly / (2.0 * s2), -phi / size
+        sz = math.sqrt(z)
+        # P(3/2, z) = erf(√z) − 2 √(z/π) e^{−z} (Abramowitz & Stegun 6.5.22 with 7.1.1)
+        h = (math.erf(sz) - _TWO_OVER_SQRT_PI * sz * ez) / (r2 * math.sqrt(r2))
+        return h, (phi - 3.0 * h) / r2, -phi / size
+    # Coulomb: point charges, and balls seen from outside.
+    inv_r2 = 1.0 / r2
+    a = math.sqrt(inv_r2) * inv_r2
+    return a, -3.0 * a * inv_r2, 0.0
+
+
+@_jit
+def _radial_loop(kind, params, pts, E, jac, want_jac):
+    """Add the field of every source to ``E`` (S, M, 3) and write ``jac`` (S, M, 3, N, P).
+
+    Returns the flat index s·M + m of the first (scenario, point) on a point charge, else −1.
     """
     S, N, P = params.shape
     M = pts.shape[0]
-    E = np.zeros((S, M, 3))
-    jac = _jac_buffer((S, M, 3, N, P), want_jac, out)
-    q = params[:, None, :, 0]
-    sigma = params[:, None, :, 4]
-    amp = 2.0 / (3.0 * math.sqrt(2.0 * math.pi) * sigma**3)  # h(0) = phi(0)/3
-    for blk in _blocks(M, S * N, _RADIAL_BLOCK_ELEMENTS):
-        R = _offsets(params, pts[blk])
-        r2 = R[0] * R[0] + R[1] * R[1] + R[2] * R[2]
-        z = r2 / (2.0 * sigma * sigma)
-        ez = np.exp(-z)
-        phi = 3.0 * amp * ez
-        small = z < _GAUSS_SERIES_Z
-        zs = np.where(small, z, 0.0)
-        poly = np.polynomial.polynomial.polyval(zs, _GAUSS_SERIES)  # (1 - M(z)) / (-z)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            h_direct = special.gammainc(1.5, z) / (r2 * np.sqrt(r2))
-            b_direct = (phi - 3.0 * h_direct) / r2
-        h = np.where(small, amp * ez * (1.0 + zs * poly), h_direct)
-        b = np.where(small, -3.0 * amp * ez * poly / (2.0 * sigma * sigma), b_direct)
-        extra = -phi / (sigma * h)  # dE/ds = k q (extra * h) R
-        _write_radial(E, jac, blk, R, q, h, b, extra)
-    return E, jac
+    singular = -1
+    for s in range(S):
+        for m in range(M):
+            px, py, pz = pts[m, 0], pts[m, 1], pts[m, 2]
+            ex = 0.0
+            ey = 0.0
+            ez = 0.0
+            for n in range(N):
+                q = params[s, n, 0]
+                dx = px - params[s, n, 1]
+                dy = py - params[s, n, 2]
+                dz = pz - params[s, n, 3]
+                r2 = dx * dx + dy * dy + dz * dz
+                if r2 == 0.0 and kind == _RADIAL_POINT:
+                    if singular < 0:
+                        singular = s * M + m
+                    continue
+                a, b, e = _radial_profile(kind, r2, params[s, n, 4] if P > 4 else 0.0)
+                ka = K_COULOMB * a
+                kqa = q * ka
+                ex += kqa * dx
+                ey += kqa * dy
+                ez += kqa * dz
+                if not want_jac:
+                    continue
+                jac[s, m, 0, n, 0] = ka * dx
+                jac[s, m, 1, n, 0] = ka * dy
+                jac[s, m, 2, n, 0] = ka * dz
+                nkqb = -K_COULOMB * q * b
+                gxy = nkqb * dx * dy
+                gxz = nkqb * dx * dz
+                gyz = nkqb * dy * dz
+                jac[s, m, 0, n, 1] = nkqb * dx * dx - kqa
+                jac[s, m, 0, n, 2] = gxy
+                jac[s, m, 0, n, 3] = gxz
+                jac[s, m, 1, n, 1] = gxy
+                jac[s, m, 1, n, 2] = nkqb * dy * dy - kqa
+                jac[s, m, 1, n, 3] = gyz
+                jac[s, m, 2, n, 1] = gxz
+                jac[s, m, 2, n, 2] = gyz
+                jac[s, m, 2, n, 3] = nkqb * dz * dz - kqa
+                if P > 4:
+                    kqe = K_COULOMB * q * e
+                    jac[s, m, 0, n, 4] = kqe * dx
+                    jac[s, m, 1, n, 4] = kqe * dy
+                    jac[s, m, 2, n, 4] = kqe * dz
+            E[s, m, 0] += ex
+            E[s, m, 1] += ey
+            E[s, m, 2] += ez
+    return singular
+
+
+_NO_JAC = np.empty((1, 1, 1, 1, 1))
+
+
+def _radial_kernel(kind: int, name: str, what: str = ""):
+    """The kernel of one radial kind, around the compiled loop: strict C-ordered float arrays
+    (one compiled version serves every call), ``out`` reused when it is C-ordered."""
+
+    def kernel(params, pts, geom, want_jac, out=None):
+        S, N, P = params.shape
+        M = pts.shape[0]
+        E = np.zeros((S, M, 3))
+        jac = _jac_buffer((S, M, 3, N, P), want_jac, out)
+        target = jac
+        if jac is not None and not jac.flags.c_contiguous:
+            target = np.empty(jac.shape)
+        params = np.ascontiguousarray(params, dtype=float)
+        pts = np.ascontiguousarray(pts, dtype=float)
+        singular = _radial_loop(kind, params, pts, E, _NO_JAC if jac is None else target, want_jac)
+        if singular >= 0:
+            _raise_on_charge(singular % M, pts[singular % M], what)
+        if target is not jac:
+            jac[...] = target
+        return E, jac
+
+    kernel.__name__ = kernel.__qualname__ = name
+    return kernel
+
+
+_point_kernel = _radial_kernel(_RADIAL_POINT, "_point_kernel", "point charge")
+_sphere_kernel = _radial_kernel(_RADIAL_BALL, "_sphere_kernel")
+_gaussian_kernel = _radial_kernel(_RADIAL_GAUSSIAN, "_gaussian_kernel")
 
 
 def _line_kernel(params, pts, half_vectors, want_jac, out=None):
@@ -587,14 +593,17 @@ def _jac_buffer(shape, want_jac: bool, out: np.ndarray | None, zero: bool = Fals
 
 
 def _check_not_on_charge(mask: np.ndarray, pts_block: np.ndarray, blk: slice, what: str) -> None:
-    """Raise naming the first point (global index) that sits on a singular charge."""
+    """Raise naming the first point (global index) where ``mask`` (S, m, N) is true."""
     if np.any(mask):
         m = int(np.nonzero(np.any(mask, axis=(0, 2)))[0][0])
-        p = pts_block[m]
-        raise ValueError(
-            f"point {blk.start + m} at ({p[0]:g}, {p[1]:g}, {p[2]:g}) m lies on a {what}, where "
-            "the field is infinite; move the point or use a finite-size source (sphere, gaussian)."
-        )
+        _raise_on_charge(blk.start + m, pts_block[m], what)
+
+
+def _raise_on_charge(index: int, point: np.ndarray, what: str) -> None:
+    raise ValueError(
+        f"point {index} at ({point[0]:g}, {point[1]:g}, {point[2]:g}) m lies on a {what}, where "
+        "the field is infinite; move the point or use a finite-size source (sphere, gaussian)."
+    )
 
 
 # ---- density grid: sums over the corners of uniformly charged boxes ---------------------------

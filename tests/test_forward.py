@@ -593,3 +593,31 @@ def test_evaluate_writes_into_a_reused_output(ground):
     np.testing.assert_array_equal(e2, e)
     with pytest.raises(ValueError, match="could not broadcast|must have shape"):
         scene.evaluate(theta, pts, out=np.empty((2, 3, 3, 7)))
+
+
+@pytest.mark.parametrize("ground", [None, 0.0])
+def test_evaluate_into_a_strided_output_and_without_jacobian(ground):
+    # numpy's `out=` convention again, for an output that is a strided view (the compiled
+    # radial loop writes C-ordered arrays only), and for every radial kind; the field computed
+    # without a Jacobian is the same field.
+    scene = pp.Scene(
+        (
+            pp.PointCharge(-3.0, (10.0, -5.0, 400.0)),
+            pp.SphereCharge(2.0, (-30.0, 20.0, 650.0), 40.0),
+            pp.GaussianCharge(1.5, (5.0, 5.0, 300.0), 25.0),
+        ),
+        ground,
+    )
+    theta = np.stack([scene.nominal(), scene.nominal() * 1.01])
+    pts = np.array([[0.0, 0.0, 0.0], [100.0, 50.0, 5.0], [-30.0, 20.0, 640.0], [5.0, 5.0, 301.0]])
+    e, jac = scene.evaluate(theta, pts)
+    wide = np.full(jac.shape[:-1] + (2 * jac.shape[-1],), np.nan)
+    view = wide[..., ::2]
+    e2, jac2 = scene.evaluate(theta, pts, out=view)
+    assert np.shares_memory(jac2, wide)
+    np.testing.assert_array_equal(view, jac)
+    assert np.isnan(wide[..., 1::2]).all()
+    np.testing.assert_array_equal(e2, e)
+    e3, none = scene.evaluate(theta, pts, jacobian=False)
+    assert none is None
+    np.testing.assert_array_equal(e3, e)
