@@ -10,6 +10,7 @@ from __future__ import annotations
 import itertools
 import math
 
+import numba
 import numpy as np
 import pytest
 from scipy import constants, integrate, special
@@ -506,3 +507,17 @@ def test_every_corner_of_a_cell_is_finite():
     assert np.all(np.isfinite(e))
     # By the box's symmetry the corner fields are mirror images of each other.
     np.testing.assert_allclose(np.abs(e), np.abs(e[:1]).repeat(8, axis=0), rtol=1e-12)
+
+
+def test_compiled_kernels_work_without_a_writable_cache(monkeypatch):
+    # numba (its caching module): with no folder to cache in, decorating with cache=True raises
+    # RuntimeError at once; the kernels must then compile per process instead of failing the import.
+    from numba.core import caching
+
+    from probeplan import sources
+
+    monkeypatch.setattr(caching.CacheImpl, "_locator_classes", [])
+    with pytest.raises(RuntimeError, match="no locator"):
+        numba.njit(cache=True)(lambda x: x)
+    twice = sources._jit(lambda x: 2.0 * x)
+    assert twice(1.5) == 3.0
