@@ -66,11 +66,12 @@ class _Parser(argparse.ArgumentParser):
 
 _LAYOUT_HELP = (
     "CSV file of the NEW probes to score, one probe a row, with a header row naming at least "
-    "x_m,y_m,z_m (metres, any order). Optional columns: name; component (x, y, z, vector or a "
-    "unit vector as three numbers separated by spaces; must match [probes] component, "
-    "per-probe components are not supported in this version); grade (a [[grade]] name of the "
-    "config, the same on every row); gain (calibration factor > 0, e.g. for a meter on a mast). "
-    "Installed probes come from the config's [[probes.installed]] and are added in front."
+    "x_m,y_m,z_m (metres, any order). Optional columns, each per probe, an empty cell taking "
+    "the config's setting: name; component (what the meter reads: x, y, z, vector or a unit "
+    "vector as three numbers separated by spaces; default [probes] component); grade (a "
+    "[[grade]] name of the config; default the noise and range of [probes]); gain (calibration "
+    "factor > 0, e.g. for a meter on a mast). Installed probes come from the config's "
+    "[[probes.installed]] and are added in front."
 )
 
 
@@ -535,21 +536,23 @@ def _cmd_score(args: argparse.Namespace) -> int:
     from .store import check_writable, read_layout_csv, write_result
 
     config = _load_config(args.config)
-    old = layout = grade = None
+    old = layout = None
     if args.from_file:
         old = _read_old(args.from_file)
         positions, gain = _new_probes(old), _new_gains(old)
+        axes, grades = old.score.new_meters()
+        where, names = f"{args.from_file}", None
     else:
         layout = read_layout_csv(args.layout)
-        positions = layout.positions_m
-        _check_components(config, layout)
-        grade = _layout_grade(config, layout)
+        positions, names = layout.positions_m, layout.names
+        axes, grades = _csv_axes(config, layout), layout.grades
+        where = f"{layout.path}"
+    _check_grades(config, where, grades, names)
     if args.out:
         check_writable(args.out, force=args.force)
-    problem = _build_problem(config, count=positions.shape[0], grade=grade)
+    problem = _build_problem(config, count=positions.shape[0], layout_axes=axes)
     if layout is not None:
         gain = _csv_gains(problem, layout)
-    where = f"{args.from_file}" if old is not None else f"{layout.path}"
     g = config.ground_z_m
     if g is not None and positions.size and positions[:, 2].min() < g:
         i = int(np.argmin(positions[:, 2]))
@@ -558,7 +561,7 @@ def _cmd_score(args: argparse.Namespace) -> int:
             f"z = {g:g} m of {config.path}; a meter reads the field on or above the ground."
         )
     with _as_input_error():  # e.g. a probe placed on a point charge: the layout's fault
-        score = problem.score(positions, gain=gain)
+        score = problem.score(positions, gain, axes, _grade_names(grades))
     # Scoring a layout that breaks the mounting rules is allowed (it may be what is installed
     # today), but the summary says which rules it breaks.
     notes = tuple(
@@ -596,55 +599,32 @@ def _csv_gains(problem, layout) -> np.ndarray | None:
     return np.array([default[k] if g is None else g for k, g in enumerate(layout.gains)])
 
 
-def _check_components(config, layout) -> None:
-    """Per-probe components are not supported: a CSV component must equal the config's."""
-    if layout.components is None:
+def _csv_axes(config, layout) -> np.ndarray | None:
+    """(n_probes, n_axes, 3) float: each CSV probe's axes, an empty cell taking ``[probes]``'."""
+    if layout.components is None or all(c is None for c in layout.components):
+        return None
+    from .probes import axes_table
+
+    return axes_table([config.probes.component if c is None else c for c in layout.components])
+
+
+def _check_grades(config, where: str, grades, names) -> None:
+    """Every grade a layout names must be a [[grade]] of the config (None or "": [probes])."""
+    if grades is None:
         return
-    from .probes import component_axes
-
-    want = component_axes(config.probes.component)
-    for k, comp in enumerate(layout.components):
-        if comp is None:
-            continue
-        got = component_axes(comp)
-        if got.shape != want.shape or not np.allclose(got, want, atol=1e-9):
-            raise InputError(
-                f"{layout.path}: probe {layout.names[k]!r} (row {k + 1}) has component "
-                f"{_show_component(comp)} but [probes] component is "
-                f"{_show_component(config.probes.component)} in {config.path}; a component per "
-                "probe is not supported in this version: leave the column empty or make it "
-                "match."
-            )
-
-
-def _show_component(comp) -> str:
-    if isinstance(comp, str):
-        return repr(comp)
-    return "[" + ", ".join(f"{a:g}" for a in comp) + "]"
-
-
-def _layout_grade(config, layout):
-    """The one [[grade]] the CSV names (same on every row), or None."""
-    if layout.grades is None:
-        return None
-    named = {g for g in layout.grades if g is not None}
-    if not named:
-        return None
-    offered = {g.name: g for g in config.grades}
+    offered = [g.name for g in config.grades]
     listed = ", ".join(offered) or "none: the config has no [[grade]] table"
-    for k, g in enumerate(layout.grades):
-        if g is not None and g not in offered:
+    for k, g in enumerate(grades):
+        if g and g not in offered:
+            who = f"probe {names[k]!r} (row {k + 1})" if names else f"new probe {k}"
             raise InputError(
-                f"{layout.path}: probe {layout.names[k]!r} (row {k + 1}) names grade {g!r}; "
-                f"the grades of {config.path} are: {listed}."
+                f"{where}: {who} names grade {g!r}; the grades of {config.path} are: {listed}."
             )
-    if len(named) > 1 or None in layout.grades:
-        shown = ", ".join(sorted(named)) + (" and empty cells" if None in layout.grades else "")
-        raise InputError(
-            f"{layout.path}: the grade column holds {shown}; a grade per probe is not "
-            "supported in this version: give the same grade on every row."
-        )
-    return offered[named.pop()]
+
+
+def _grade_names(grades) -> tuple[str, ...] | None:
+    """Grade names as :meth:`Problem.meters` takes them: "" (not None) for ``[probes]``."""
+    return None if grades is None else tuple(g or "" for g in grades)
 
 
 def _cmd_budget(args: argparse.Namespace) -> int:
@@ -757,9 +737,11 @@ def _changes(old, old_path: str, mode: str, config, score):
     old_new = _new_probes(old)
     rescored = float("nan")
     if old_new.shape[0]:
-        problem = _build_problem(config, count=old_new.shape[0])
+        axes, grades = old.score.new_meters()
+        _check_grades(config, str(old_path), grades, None)
+        problem = _build_problem(config, count=old_new.shape[0], layout_axes=axes)
         with _as_input_error():
-            rescored = float(problem.score(old_new, gain=_new_gains(old)).value)
+            rescored = float(problem.score(old_new, _new_gains(old), axes, grades).value)
     radius = max(float(config.probes.min_spacing_m), 0.05 * _site_extent(config.site()))
     parts = compare_layouts(old.score.positions_m, score.positions_m, radius)
     return Changes(
@@ -786,8 +768,9 @@ def _cmd_show(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-def _stored_problem(result):
-    """The config and problem of a stored result, with the count and grade of its layout."""
+def _stored_problem(result, where: str):
+    """The config and problem of a stored result, and its new probes: positions, gains and
+    each one's axes and grade (None in files written before these were stored)."""
     config = _parse_config_text(result.config_text, result.config_path)
     new = ~np.asarray(result.score.installed, dtype=bool)
     grade = None
@@ -795,8 +778,11 @@ def _stored_problem(result):
         row = int(result.extra.get("budget_row_scored", -1))
         if row >= 0:
             grade = next((g for g in config.grades if g.name == result.budget.grade[row]), None)
-    problem = _build_problem(config, count=int(new.sum()), grade=grade)
-    return config, problem, result.score.positions_m[new], result.score.gain[new]
+    axes, grades = result.score.new_meters()
+    _check_grades(config, where, grades, None)
+    problem = _build_problem(config, count=int(new.sum()), grade=grade, layout_axes=axes)
+    meters = (result.score.positions_m[new], result.score.gain[new], axes, grades)
+    return config, problem, meters
 
 
 def _cmd_simulate(args: argparse.Namespace) -> int:
@@ -808,11 +794,17 @@ def _cmd_simulate(args: argparse.Namespace) -> int:
     if args.trials < 2:
         raise InputError(f"--trials must be a whole number >= 2; got {args.trials}.")
     result = read_result(args.file)
-    config, problem, positions, gain = _stored_problem(result)
+    config, problem, (positions, gain, axes, grades) = _stored_problem(result, args.file)
     seed = config.seed if args.seed is None else args.seed
     with _as_input_error():
         sim = simulate(
-            problem, positions, gain, trials=args.trials, rng=np.random.default_rng(seed)
+            problem,
+            positions,
+            gain,
+            axes=axes,
+            grades=grades,
+            trials=args.trials,
+            rng=np.random.default_rng(seed),
         )
     result = replace(result, simulation=sim)
     report.print_result(result)
@@ -826,7 +818,7 @@ def _cmd_plot(args: argparse.Namespace) -> int:
     from .store import read_result
 
     result = read_result(args.file)
-    config, problem, _, _ = _stored_problem(result)
+    config, problem, _ = _stored_problem(result, args.file)
     src = Path(args.file)
     folder = Path(args.folder) if args.folder else src.with_name(src.stem + "_plots")
     if folder.exists() and not folder.is_dir():

@@ -35,7 +35,6 @@ from matplotlib.ticker import FuncFormatter, NullFormatter
 from .fisher import CRITERIA, covariance, fisher_from_rows
 from .probes import whitened_rows
 from .problem import draw_scenarios
-from .simulate import layout_meters
 
 #: Output formats.
 FORMATS: tuple[str, ...] = ("png", "svg")
@@ -99,7 +98,9 @@ class Coverage:
     charge_c: float
 
 
-def coverage_grid(problem, positions_m, gain=None, resolution: int = 40) -> Coverage:
+def coverage_grid(
+    problem, positions_m, gain=None, resolution: int = 40, *, axes=None, grades=None
+) -> Coverage:
     """1-sigma horizontal location error of source 0 at every point of a grid over the site.
 
     Every other parameter keeps its nominal value (scenario 0): height, charge, size of source
@@ -116,6 +117,9 @@ def coverage_grid(problem, positions_m, gain=None, resolution: int = 40) -> Cove
         Default: ``problem.gain_at(positions_m)``.
     resolution : int
         Grid points along each axis, 2 to 400.
+    axes : (n_new, n_axes, 3) float or None
+    grades : sequence of n_new str or None
+        Each new meter's own axes and grade (see :meth:`Problem.meters`).
 
     Returns
     -------
@@ -133,7 +137,7 @@ def coverage_grid(problem, positions_m, gain=None, resolution: int = 40) -> Cove
         or not 2 <= resolution <= 400
     ):
         raise ValueError(f"`resolution` must be an integer from 2 to 400; got {resolution!r}.")
-    meters = layout_meters(problem, positions_m, gain)
+    meters = problem.meters(positions_m, gain, axes, grades)
     scene = problem.scene
     base = problem.theta[0]
     cx, cy = (scene.param_names.index(n) for n in ("s0.x_m", "s0.y_m"))
@@ -151,7 +155,7 @@ def coverage_grid(problem, positions_m, gain=None, resolution: int = 40) -> Cove
         sl = slice(start, min(start + _COVERAGE_BATCH, gx.size))
         with np.errstate(all="ignore"):
             e, jac = scene.evaluate(theta[sl], meters.positions_m, columns=problem.est_cols)
-            rows, _ = whitened_rows(e, jac, meters.axes, meters.gain, problem.noise)
+            rows, _ = whitened_rows(e, jac, meters.axes, meters.gain, meters)
             info = fisher_from_rows(rows.reshape(rows.shape[0], -1, p))
             bad = ~np.all(np.isfinite(info), axis=(-2, -1))
             info[bad] = 0.0
@@ -227,7 +231,9 @@ def site_map(config, result_or_score, path) -> Path:
     return _save(fig, path, fmt)
 
 
-def coverage_map(problem, positions_m, gain, path, resolution: int = 40) -> Path:
+def coverage_map(
+    problem, positions_m, gain, path, resolution: int = 40, *, axes=None, grades=None
+) -> Path:
     """Draw the 1-sigma horizontal location error of source 0 over the site.
 
     Parameters
@@ -242,14 +248,16 @@ def coverage_map(problem, positions_m, gain, path, resolution: int = 40) -> Path
         Output file, ``.png`` or ``.svg``.
     resolution : int
         Grid points along each axis (see :func:`coverage_grid`).
+    axes, grades
+        As in :func:`coverage_grid`.
 
     Returns
     -------
     Path
     """
     path, fmt = _check_path(path)
-    cov = coverage_grid(problem, positions_m, gain, resolution)
-    meters = layout_meters(problem, positions_m, gain)
+    cov = coverage_grid(problem, positions_m, gain, resolution, axes=axes, grades=grades)
+    meters = problem.meters(positions_m, gain, axes, grades)
     config = problem.config
     scale, unit = _scale(cov.x_m[0], cov.y_m[0], cov.x_m[-1], cov.y_m[-1])
 
@@ -425,9 +433,15 @@ def plot_all(result, config, problem, folder, fmt: str = "png") -> list[Path]:
     new = ~np.asarray(score.installed, dtype=bool)
     out = [site_map(config, result, folder / f"site_map.{fmt}")]
     if "s0.x_m" in problem.names and "s0.y_m" in problem.names:
+        axes, grades = score.new_meters()
         out.append(
             coverage_map(
-                problem, score.positions_m[new], score.gain[new], folder / f"coverage_map.{fmt}"
+                problem,
+                score.positions_m[new],
+                score.gain[new],
+                folder / f"coverage_map.{fmt}",
+                axes=axes,
+                grades=grades,
             )
         )
     if result.budget is not None:

@@ -66,10 +66,15 @@ def axes_table(components) -> np.ndarray:
         n_axes is 3 if any probe is a 3-axis meter, else 1; unused axes are zero rows, which
         give zero readings and zero information.
     """
-    per = [component_axes(c) for c in components]
-    width = max((a.shape[0] for a in per), default=1)
-    out = np.zeros((len(per), width, 3))
-    for i, a in enumerate(per):
+    return pad_axes([component_axes(c) for c in components])
+
+
+def pad_axes(axes) -> np.ndarray:
+    """Stack per-probe axes ``(n_axes_i, 3)`` into one ``(n_probes, n_axes, 3)`` table, padding
+    the narrower meters with zero rows (zero readings, zero information)."""
+    width = max((a.shape[0] for a in axes), default=1)
+    out = np.zeros((len(axes), width, 3))
+    for i, a in enumerate(axes):  # once per layout, a handful of meters
         out[i, : a.shape[0]] = a
     return out
 
@@ -107,6 +112,112 @@ class Noise:
         return np.hypot(self.noise_v_per_m, self.relative_noise * readings_v_per_m)
 
 
+@dataclass(frozen=True, eq=False)
+class Meters:
+    """Every meter of a layout, installed ones first, each with its own axes, gain and grade.
+
+    It stands wherever a :class:`Noise` does (``sigma``, ``range_v_per_m``), per meter: its noise
+    columns broadcast against readings ``(..., n_probes, n_axes)``.
+
+    Attributes
+    ----------
+    positions_m : (n_probes, 3) float
+    axes : (n_probes, n_axes, 3) float
+        Unit measurement axes; zero rows for the unused axes of narrower meters.
+    gain : (n_probes,) float
+    installed : (n_probes,) bool
+    noise_v_per_m, relative_noise, range_v_per_m : (n_probes, 1) float
+        Each meter's grade.
+    grade : tuple of n_probes str
+        The grade's name; "" for the noise of the ``[probes]`` table itself.
+    """
+
+    positions_m: np.ndarray
+    axes: np.ndarray
+    gain: np.ndarray
+    installed: np.ndarray
+    noise_v_per_m: np.ndarray
+    relative_noise: np.ndarray
+    range_v_per_m: np.ndarray
+    grade: tuple[str, ...]
+
+    @property
+    def used(self) -> np.ndarray:
+        """(n_probes, n_axes) bool: which axes are real readings."""
+        return np.linalg.norm(self.axes, axis=-1) > 0.0
+
+    def sigma(self, readings_v_per_m: np.ndarray) -> np.ndarray:
+        """1-sigma noise of readings ``(..., n_probes, n_axes)``, V/m."""
+        return np.hypot(self.noise_v_per_m, self.relative_noise * readings_v_per_m)
+
+    def take(self, index) -> Meters:
+        """The meters at ``index`` (a boolean mask or integer indices, repeats allowed)."""
+        idx = np.arange(self.gain.shape[0])[index]
+        return Meters(
+            positions_m=self.positions_m[idx],
+            axes=self.axes[idx],
+            gain=self.gain[idx],
+            installed=self.installed[idx],
+            noise_v_per_m=self.noise_v_per_m[idx],
+            relative_noise=self.relative_noise[idx],
+            range_v_per_m=self.range_v_per_m[idx],
+            grade=tuple(self.grade[i] for i in idx),
+        )
+
+
+def stack_meters(
+    positions_m: np.ndarray,
+    axes,
+    gain: np.ndarray,
+    installed: np.ndarray,
+    grades: list[tuple[str, Noise]],
+) -> Meters:
+    """Assemble :class:`Meters` from per-meter parts.
+
+    Parameters
+    ----------
+    positions_m : (n_probes, 3) float
+    axes : sequence of n_probes (n_axes_i, 3) float
+        Each meter's axes (see :func:`pad_axes`).
+    gain : (n_probes,) float
+    installed : (n_probes,) bool
+    grades : list of n_probes (name, Noise)
+    """
+
+    def column(attr: str) -> np.ndarray:
+        return np.array([getattr(g, attr) for _, g in grades], dtype=float).reshape(-1, 1)
+
+    return Meters(
+        positions_m=np.asarray(positions_m, dtype=float).reshape(-1, 3),
+        axes=pad_axes(axes),
+        gain=np.asarray(gain, dtype=float).reshape(-1),
+        installed=np.asarray(installed, dtype=bool).reshape(-1),
+        noise_v_per_m=column("noise_v_per_m"),
+        relative_noise=column("relative_noise"),
+        range_v_per_m=column("range_v_per_m"),
+        grade=tuple(name for name, _ in grades),
+    )
+
+
+def axes_label(axes: np.ndarray) -> str:
+    """What one meter reads, in words: ``"x"``, ``"y"``, ``"z"``, ``"vector"`` or its axis.
+
+    Parameters
+    ----------
+    axes : (n_axes, 3) float
+        One meter's axes (zero rows ignored).
+    """
+    rows = axes[np.linalg.norm(axes, axis=-1) > 0.0]
+    if rows.shape[0] == 3 and np.allclose(np.abs(rows), np.eye(3), atol=1e-12):
+        return "vector"
+    if rows.shape[0] == 1:
+        for k, name in enumerate("xyz"):
+            if np.allclose(rows[0], np.eye(3)[k], atol=1e-12):
+                return name
+        return "[" + ", ".join(f"{a:.4g}" for a in rows[0]) + "]"
+    return "; ".join("[" + ", ".join(f"{a:.4g}" for a in r) + "]" for r in rows)
+
+
 def readings(field_v_per_m: np.ndarray, axes: np.ndarray, gain: np.ndarray) -> np.ndarray:
     """Noise-free readings of meters.
 
@@ -132,7 +243,7 @@ def whitened_rows(
     jacobian: np.ndarray,
     axes: np.ndarray,
     gain: np.ndarray,
-    noise: Noise,
+    noise: Noise | Meters,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Gradients of every reading divided by its noise, zero where saturated.
 
@@ -144,7 +255,8 @@ def whitened_rows(
         ∂E/∂θ at each probe.
     axes : (n_probes, n_axes, 3) float
     gain : (n_probes,) or (..., n_probes) float
-    noise : Noise
+    noise : Noise or Meters
+        One grade for every probe, or each probe's own (:class:`Meters` of these probes).
 
     Returns
     -------

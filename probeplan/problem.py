@@ -24,7 +24,7 @@ from .fisher import (
     unresolved_directions,
 )
 from .forward import BACKGROUND_PARAMS, Scene
-from .probes import Noise, axes_table, component_axes, whitened_rows
+from .probes import Meters, Noise, axes_table, component_axes, stack_meters, whitened_rows
 
 #: Jacobian bytes per chunk of layouts scored together (measured best near 1 MB: a chunk's
 #: arrays stay in the 2 MB per-core cache from the forward model to the criterion).
@@ -90,6 +90,11 @@ class Score:
     failure_values : (n_probes,) float or None
         The criterion with each single probe lost (installed first); the worst entry is the
         layout's value under a single failure, and its index the probe that matters most.
+    axes : (n_probes, n_axes, 3) float or None
+        What each meter reads (zero rows pad the narrower meters); None in results stored
+        before meters were recorded one by one.
+    grade : tuple of n_probes str or None
+        Each meter's grade ("" for the noise of ``[probes]`` itself); None as for ``axes``.
     """
 
     positions_m: np.ndarray
@@ -108,6 +113,16 @@ class Score:
     unresolved: list[Direction] = field(default_factory=list)
     unresolved_scenario: int = 0
     failure_values: np.ndarray | None = None
+    axes: np.ndarray | None = None
+    grade: tuple[str, ...] | None = None
+
+    def new_meters(self) -> tuple[np.ndarray | None, tuple[str, ...] | None]:
+        """``(axes, grades)`` of the new probes, as :meth:`Problem.meters` takes them, to score,
+        simulate or draw this layout again; ``(None, None)`` where they were not recorded."""
+        new = ~np.asarray(self.installed, dtype=bool)
+        axes = None if self.axes is None else self.axes[new]
+        grades = None if self.grade is None else tuple(np.asarray(self.grade, dtype=object)[new])
+        return axes, grades
 
 
 @dataclass(frozen=True, eq=False)
@@ -134,6 +149,8 @@ class Problem:
     installed_noise: Noise  # the installed meters keep [probes]' grade whatever is bought
     site: object
     fisher_installed: np.ndarray  # (n_scenarios, n_params, n_params)
+    grades: dict = field(default_factory=dict)  # grade name -> Noise; "" is [probes]' own
+    new_grade: str = ""  # the name of ``noise`` in ``grades``
 
     @property
     def n_params(self) -> int:
@@ -155,7 +172,7 @@ class Problem:
         positions_m: np.ndarray,
         gain: np.ndarray | None = None,
         axes: np.ndarray | None = None,
-        noise: Noise | None = None,
+        noise: Noise | Meters | None = None,
     ) -> tuple[np.ndarray, np.ndarray]:
         """Whitened reading gradients of probes at many positions.
 
@@ -166,8 +183,8 @@ class Problem:
             Calibration factors (default: the new probes' gain).
         axes : (n_points, n_axes, 3) float or None
             Measurement axes (default: the new probes' component).
-        noise : Noise or None
-            The meters' grade (default: the new probes' grade).
+        noise : Noise, Meters or None
+            The meters' grade, or each one's (default: the new probes' grade).
 
         Returns
         -------
@@ -259,7 +276,12 @@ class Problem:
             parts.insert(0, fisher_from_rows(rows_i))
         return np.concatenate(parts, axis=1)
 
-    def failure_values(self, positions_m: np.ndarray, gain: np.ndarray | None = None) -> np.ndarray:
+    def failure_values(
+        self,
+        positions_m: np.ndarray,
+        gain: np.ndarray | None = None,
+        meters: Meters | None = None,
+    ) -> np.ndarray:
         """Criterion of the layout with each single probe lost.
 
         Parameters
@@ -267,6 +289,8 @@ class Problem:
         positions_m : (n_probes, 3) float
             New probes (installed ones are counted and may fail too).
         gain : (n_probes,) float or None
+        meters : Meters or None
+            The new probes' own axes and grades (default: the new probes' component and grade).
 
         Returns
         -------
@@ -275,7 +299,7 @@ class Problem:
         """
         pos = np.asarray(positions_m, dtype=float).reshape(1, -1, 3)
         g = None if gain is None else np.asarray(gain, dtype=float).reshape(1, -1)
-        return self._loss_values(pos, g)[0]
+        return self._loss_values(pos, g, meters)[0]
 
     def robust_layout_values(
         self, layouts_m: np.ndarray, gains: np.ndarray | None = None
@@ -294,15 +318,22 @@ class Problem:
         vals = self._loss_values(layouts_m, gains)  # (L, n_all)
         return vals.min(axis=1) if self.criterion.maximise else vals.max(axis=1)
 
-    def _loss_values(self, layouts_m: np.ndarray, gains: np.ndarray | None) -> np.ndarray:
+    def _loss_values(
+        self, layouts_m: np.ndarray, gains: np.ndarray | None, meters: Meters | None = None
+    ) -> np.ndarray:
         """Criterion of each layout with each one probe lost, ``(n_layouts, n_all)``.
 
         Probes are numbered installed first; J without probe i is the total minus probe i's
-        own information (Fisher information of independent readings adds).
+        own information (Fisher information of independent readings adds). ``meters``: the
+        new probes' own axes and grades, the same in every layout.
         """
         n_l, n_p, _ = layouts_m.shape
         g = None if gains is None else np.broadcast_to(gains, (n_l, n_p)).reshape(-1)
-        rows, _ = self.rows(layouts_m.reshape(-1, 3), g)
+        axes = noise = None
+        if meters is not None:
+            noise = meters.take(np.tile(np.arange(n_p), n_l))
+            axes = noise.axes
+        rows, _ = self.rows(layouts_m.reshape(-1, 3), g, axes, noise)
         info = fisher_from_rows(rows).reshape(self.n_scenarios, n_l, n_p, self.n_params, -1)
         if self.installed_m.shape[0]:
             inst = fisher_from_rows(self.installed_rows()[0])  # (S, k, p, p)
@@ -362,7 +393,76 @@ class Problem:
 
     # -- one layout -----------------------------------------------------------------------------
 
-    def score(self, positions_m: np.ndarray, gain: np.ndarray | None = None) -> Score:
+    def meters(
+        self,
+        positions_m: np.ndarray,
+        gain: np.ndarray | None = None,
+        axes: np.ndarray | None = None,
+        grades=None,
+    ) -> Meters:
+        """The installed meters followed by new ones at ``positions_m``.
+
+        Parameters
+        ----------
+        positions_m : (n_new, 3) float
+            New probes, m.
+        gain : (n_new,) float or None
+            Their calibration factors (default: :meth:`gain_at`).
+        axes : (n_new, n_axes, 3) float or None
+            Each new meter's axes, zero rows for unused ones (default: ``[probes] component``).
+        grades : sequence of n_new str or None
+            Each new meter's grade by name, "" for the noise of ``[probes]`` itself (default:
+            the grade this problem plans with).
+
+        Returns
+        -------
+        Meters
+        """
+        pos = np.asarray(positions_m, dtype=float)
+        if pos.ndim != 2 or pos.shape[1] != 3 or not np.all(np.isfinite(pos)):
+            raise ValueError(
+                f"`positions_m` must be a finite array of shape (n_probes, 3) in metres; "
+                f"got shape {pos.shape}."
+            )
+        n_new = pos.shape[0]
+        g_new = self.gain_at(pos) if gain is None else np.asarray(gain, dtype=float).reshape(-1)
+        if g_new.shape != (n_new,) or not np.all(np.isfinite(g_new) & (g_new > 0)):
+            raise ValueError(
+                f"`gain` must hold {n_new} finite numbers > 0 (one per new probe); got "
+                f"{np.asarray(gain).tolist()}."
+            )
+        if axes is None:
+            axes = np.broadcast_to(self.new_axes, (n_new, *self.new_axes.shape))
+        axes = np.asarray(axes, dtype=float)
+        if axes.ndim != 3 or axes.shape[0] != n_new or axes.shape[2] != 3:
+            raise ValueError(
+                f"`axes` must have shape ({n_new}, n_axes, 3), one table per new probe; "
+                f"got {axes.shape}."
+            )
+        names = (self.new_grade,) * n_new if grades is None else tuple(grades)
+        unknown = [g for g in names if g not in self.grades]
+        if len(names) != n_new or unknown:
+            listed = ", ".join(repr(g) for g in self.grades if g) or "none"
+            raise ValueError(
+                f"`grades` must name {n_new} grades, one per new probe, each '' (the [probes] "
+                f"table) or one of: {listed}; got {list(names)}."
+            )
+        n_inst = self.installed_m.shape[0]
+        return stack_meters(
+            np.concatenate([self.installed_m, pos]),
+            [*self.installed_axes, *axes],
+            np.concatenate([self.installed_gain, g_new]),
+            np.arange(n_inst + n_new) < n_inst,
+            [("", self.installed_noise)] * n_inst + [(g, self.grades[g]) for g in names],
+        )
+
+    def score(
+        self,
+        positions_m: np.ndarray,
+        gain: np.ndarray | None = None,
+        axes: np.ndarray | None = None,
+        grades=None,
+    ) -> Score:
         """Score one layout of new probes (installed probes are added in front).
 
         Parameters
@@ -371,6 +471,9 @@ class Problem:
             New probes only.
         gain : (n_probes,) float or None
             Default: :meth:`gain_at`.
+        axes, grades
+            Each new probe's own axes and grade, as in :meth:`meters` (default: those of
+            ``[probes]`` and of the grade this problem plans with).
 
         Returns
         -------
@@ -378,7 +481,9 @@ class Problem:
         """
         pos = np.asarray(positions_m, dtype=float).reshape(-1, 3)
         gain = self.gain_at(pos) if gain is None else np.asarray(gain, dtype=float)
-        rows_new, sat_new = self.rows(pos, gain)
+        meters = self.meters(pos, gain, axes, grades)
+        new = meters.take(~meters.installed)
+        rows_new, sat_new = self.rows(pos, gain, new.axes, new)
         n_inst = self.installed_m.shape[0]
         if n_inst:
             rows_inst, sat_inst = self.installed_rows()
@@ -413,7 +518,11 @@ class Problem:
             saturated=sat.mean(axis=0),
             unresolved=unresolved,
             unresolved_scenario=worst,
-            failure_values=self.failure_values(pos, gain) if pos.shape[0] + n_inst > 1 else None,
+            failure_values=(
+                self.failure_values(pos, gain, new) if pos.shape[0] + n_inst > 1 else None
+            ),
+            axes=meters.axes,
+            grade=meters.grade,
         )
 
 
@@ -421,7 +530,9 @@ def _any_axis(sat: np.ndarray) -> np.ndarray:
     return np.any(sat, axis=-1)
 
 
-def build_problem(config, *, count: int | None = None, grade=None) -> Problem:
+def build_problem(
+    config, *, count: int | None = None, grade=None, layout_axes: np.ndarray | None = None
+) -> Problem:
     """Assemble the planning problem of a config.
 
     Parameters
@@ -432,6 +543,9 @@ def build_problem(config, *, count: int | None = None, grade=None) -> Problem:
     grade : probeplan.config.Grade or None
         Meter grade whose noise and range replace those of ``[probes]`` for the new meters (for
         budgets); installed meters keep the grade of ``[probes]``.
+    layout_axes : (n_new, n_axes, 3) float or None
+        The new meters' own axes, when a given layout says what each one reads (scoring): they
+        decide, with the installed meters' axes, which background components are estimated.
 
     Returns
     -------
@@ -450,16 +564,17 @@ def build_problem(config, *, count: int | None = None, grade=None) -> Problem:
     inst = config.installed
     installed_axes = axes_table([p.component or pr.component for p in inst])
     if config.background is not None and config.background.estimate:
-        seen_axes = np.concatenate([component_axes(pr.component), installed_axes.reshape(-1, 3)])
+        new_axes = component_axes(pr.component) if layout_axes is None else layout_axes
+        seen_axes = np.concatenate([new_axes.reshape(-1, 3), installed_axes.reshape(-1, 3)])
         seen = _seen_background(seen_axes)
         est += [n for n, k in zip(BACKGROUND_PARAMS, seen, strict=True) if k]
     est_cols = np.array([names_all.index(n) for n in est], dtype=int)
     criterion = _bind_criterion(config, tuple(est))
-    noise = Noise(
-        grade.noise_v_per_m if grade else pr.noise_v_per_m,
-        grade.relative_noise if grade else pr.relative_noise,
-        grade.range_v_per_m if grade else pr.range_v_per_m,
-    )
+    grades = {"": Noise(pr.noise_v_per_m, pr.relative_noise, pr.range_v_per_m)}
+    grades |= {
+        g.name: Noise(g.noise_v_per_m, g.relative_noise, g.range_v_per_m) for g in config.grades
+    }
+    new_grade = grade.name if grade else ""
     installed_m = np.array([p.position_m for p in inst], dtype=float).reshape(-1, 3)
     installed_gain = np.array([p.gain for p in inst], dtype=float)
     problem = Problem(
@@ -470,16 +585,18 @@ def build_problem(config, *, count: int | None = None, grade=None) -> Problem:
         names=tuple(est),
         criterion=criterion,
         aggregate=config.design.aggregate,
-        noise=noise,
+        noise=grades[new_grade],
         count=pr.count if count is None else int(count),
         new_axes=component_axes(pr.component),
         new_gain=float(pr.gain),
         installed_m=installed_m,
         installed_axes=installed_axes,
         installed_gain=installed_gain,
-        installed_noise=Noise(pr.noise_v_per_m, pr.relative_noise, pr.range_v_per_m),
+        installed_noise=grades[""],
         site=config.site(),
         fisher_installed=np.zeros((theta.shape[0], len(est), len(est))),
+        grades=grades,
+        new_grade=new_grade,
     )
     if installed_m.shape[0]:
         rows, _ = problem.installed_rows()

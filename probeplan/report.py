@@ -21,6 +21,7 @@ from rich.panel import Panel
 from rich.table import Table
 from rich.text import Text
 
+from .probes import axes_label
 from .result import Result
 from .store import param_unit, probe_names
 
@@ -162,7 +163,12 @@ def summary_parts(result: Result) -> list:
     parts: list = [_header(result), blank]
     if result.notes:
         parts += [_notes_text(result), blank]
-    parts += [_layout_table(result), _bounds_table(result)]
+    meters = _meters_table(result)
+    parts += [
+        _layout_table(result),
+        *([meters] if meters is not None else []),
+        _bounds_table(result),
+    ]
     parts += [_criterion_text(result), blank]
     failure = _failure_text(result)
     if failure is not None:
@@ -237,6 +243,26 @@ def _layout_table(result: Result) -> Table:
             f"{float(s.gain[k]):.3g}",
             f"{100.0 * sat:.0f} %" if math.isfinite(sat) else "n/a",
         )
+    return table
+
+
+def _meters_table(result: Result) -> Table | None:
+    """What each meter reads and its grade, when they differ from meter to meter (else the
+    config's ``[probes]`` says it for all, and the table is left out)."""
+    s = result.score
+    if s.axes is None or s.grade is None:
+        return None
+    reads = [axes_label(a) for a in s.axes]
+    if len(set(reads)) == 1 and not any(s.grade):
+        return None
+    table = Table(title="Meters", title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False)
+    table.add_column("#", justify="right")
+    table.add_column("name", overflow="fold", max_width=16)
+    table.add_column("reads", overflow="fold")
+    table.add_column("grade", overflow="fold")
+    for k, name in enumerate(probe_names(result)):
+        grade = s.grade[k] or "as [probes]"
+        table.add_row(str(k), Text(name), reads[k], Text(grade))
     return table
 
 

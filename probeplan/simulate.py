@@ -41,7 +41,7 @@ import numpy as np
 from scipy.optimize import least_squares
 
 from .fisher import covariance
-from .probes import readings
+from .probes import Meters, readings
 
 #: Scenarios simulated by default: scenario 0 (nominal) and up to this many in all.
 DEFAULT_SCENARIOS = 8
@@ -51,89 +51,6 @@ MIN_TRIALS = 2
 
 #: Reweighting passes of the fit when the noise is proportional to the reading.
 IRLS_PASSES = 3
-
-
-@dataclass(frozen=True, eq=False)
-class Meters:
-    """Every meter of a layout, installed ones first, on one padded axis table.
-
-    Attributes
-    ----------
-    positions_m : (n_probes, 3) float
-    axes : (n_probes, n_axes, 3) float
-        Unit measurement axes; zero rows for the unused axes of narrower meters.
-    gain : (n_probes,) float
-    used : (n_probes, n_axes) bool
-        Which axes are real readings.
-    installed : (n_probes,) bool
-    noise_v_per_m, relative_noise, range_v_per_m : (n_probes, 1) float
-        Each meter's grade (installed meters keep theirs when a budget grade is planned).
-    """
-
-    positions_m: np.ndarray
-    axes: np.ndarray
-    gain: np.ndarray
-    used: np.ndarray
-    installed: np.ndarray
-    noise_v_per_m: np.ndarray
-    relative_noise: np.ndarray
-    range_v_per_m: np.ndarray
-
-    def sigma(self, readings_v_per_m: np.ndarray) -> np.ndarray:
-        """1-sigma noise of readings ``(..., n_probes, n_axes)``, V/m."""
-        return np.hypot(self.noise_v_per_m, self.relative_noise * readings_v_per_m)
-
-
-def layout_meters(problem, positions_m, gain=None) -> Meters:
-    """The installed meters of a problem followed by new ones at ``positions_m``.
-
-    Parameters
-    ----------
-    problem : probeplan.problem.Problem
-    positions_m : (n_new, 3) float
-        New probes, m.
-    gain : (n_new,) float or None
-        Their calibration factors (default: ``problem.gain_at(positions_m)``).
-
-    Returns
-    -------
-    Meters
-    """
-    pos = np.asarray(positions_m, dtype=float)
-    if pos.ndim != 2 or pos.shape[1] != 3 or not np.all(np.isfinite(pos)):
-        raise ValueError(
-            f"`positions_m` must be a finite array of shape (n_probes, 3) in metres; "
-            f"got shape {pos.shape}."
-        )
-    n_new = pos.shape[0]
-    g_new = problem.gain_at(pos) if gain is None else np.asarray(gain, dtype=float).reshape(-1)
-    if g_new.shape != (n_new,) or not np.all(np.isfinite(g_new) & (g_new > 0)):
-        raise ValueError(
-            f"`gain` must hold {n_new} finite numbers > 0 (one per new probe); got "
-            f"{np.asarray(gain).tolist()}."
-        )
-    inst_axes = problem.installed_axes
-    width = max(problem.new_axes.shape[0], inst_axes.shape[1] if inst_axes.size else 1)
-    n_inst = problem.installed_m.shape[0]
-    axes = np.zeros((n_inst + n_new, width, 3))
-    if n_inst:
-        axes[:n_inst, : inst_axes.shape[1]] = inst_axes
-    axes[n_inst:, : problem.new_axes.shape[0]] = problem.new_axes
-    grades = [problem.installed_noise] * n_inst + [problem.noise] * n_new
-
-    def column(attr: str) -> np.ndarray:
-        return np.array([getattr(g, attr) for g in grades], dtype=float).reshape(-1, 1)
-
-    return Meters(
-        positions_m=np.concatenate([problem.installed_m, pos]),
-        axes=axes,
-        gain=np.concatenate([problem.installed_gain, g_new]),
-        used=np.linalg.norm(axes, axis=-1) > 0.0,
-        installed=np.arange(n_inst + n_new) < n_inst,
-        noise_v_per_m=column("noise_v_per_m"),
-        relative_noise=column("relative_noise"),
-        range_v_per_m=column("range_v_per_m"),
-    )
 
 
 @dataclass(frozen=True, eq=False)
@@ -208,6 +125,8 @@ def simulate(
     positions_m,
     gain=None,
     *,
+    axes=None,
+    grades=None,
     trials: int = 200,
     scenarios=None,
     rng,
@@ -222,6 +141,9 @@ def simulate(
         The new probes of the layout, m.
     gain : (n_new,) float or None
         Their calibration factors (default: ``problem.gain_at(positions_m)``).
+    axes : (n_new, n_axes, 3) float or None
+    grades : sequence of n_new str or None
+        Each new meter's own axes and grade (see :meth:`Problem.meters`).
     trials : int
         Noisy draws (and fits) per scenario, >= 2.
     scenarios : sequence of int or None
@@ -243,9 +165,9 @@ def simulate(
         raise ValueError(f"`trials` must be an integer >= {MIN_TRIALS}; got {trials!r}.")
     trials = int(trials)
     sel = _check_scenarios(scenarios, problem.n_scenarios)
-    meters = layout_meters(problem, positions_m, gain)
+    meters = problem.meters(positions_m, gain, axes, grades)
     new = ~meters.installed
-    score = problem.score(meters.positions_m[new], meters.gain[new])
+    score = problem.score(meters.positions_m[new], meters.gain[new], meters.axes[new], grades)
     cov, singular = covariance(score.fisher[sel])
     crb = score.crb_std[sel]
     names = problem.names

@@ -18,6 +18,8 @@ File layout (beyond the contract's paths)::
     /layout/positions_m    (n_probes, 3)  m        all probes, installed first
     /layout/installed      (n_probes,)    bool
     /layout/names          (n_probes,)    str      installed names from the config, then new-k
+    /layout/axes           (n_probes, n_axes, 3) 1 what each meter reads (zero rows: unused)
+    /layout/grade          (n_probes,)    str      each meter's grade; "" = the [probes] noise
     /scenarios/params      (n_scenarios, n_params) attrs names, units (one per parameter)
     /score/fisher          (n_scenarios, n_params, n_params)
     /score/crb_std         (n_scenarios, n_params) attrs units (one per parameter)
@@ -246,6 +248,10 @@ def _write(f: h5py.File, result: Result) -> None:
     _dataset(layout, "positions_m", np.asarray(score.positions_m, dtype=float), "m")
     _dataset(layout, "installed", np.asarray(score.installed, dtype=bool))
     _strings(layout, "names", probe_names(result))
+    if score.axes is not None:
+        _dataset(layout, "axes", np.asarray(score.axes, dtype=float), "1")
+    if score.grade is not None:
+        _strings(layout, "grade", score.grade)
 
     scen = f.create_group("scenarios")
     params = _dataset(scen, "params", np.asarray(score.theta, dtype=float), units)
@@ -457,6 +463,30 @@ def read_result(path: str | os.PathLike) -> Result:
         return _read(_Reader(f, name))
 
 
+def _layout_axes(r: _Reader, n_probes: int) -> np.ndarray | None:
+    if not r.has("layout/axes"):
+        return None  # written before each meter's axes were stored
+    axes = r.array("layout/axes", ndim=3)
+    if axes.shape[0] != n_probes or axes.shape[2] != 3 or not np.all(np.isfinite(axes)):
+        raise InputError(
+            f"{r.name}: /layout/axes must be finite with shape ({n_probes}, n_axes, 3), one "
+            f"table per probe; found shape {axes.shape}. The file is inconsistent."
+        )
+    return axes
+
+
+def _layout_grade(r: _Reader, n_probes: int) -> tuple[str, ...] | None:
+    if not r.has("layout/grade"):
+        return None
+    grade = r.strings("layout/grade")
+    if len(grade) != n_probes:
+        raise InputError(
+            f"{r.name}: /layout/grade holds {len(grade)} names for {n_probes} probes; the file "
+            "is inconsistent."
+        )
+    return grade
+
+
 def _read(r: _Reader) -> Result:
     names = r.attr("scenarios/params", "names", _str_list)
     n_params = len(names)
@@ -495,6 +525,8 @@ def _read(r: _Reader) -> Result:
         failure_values=(
             r.array("score/failure_values", ndim=1) if r.has("score/failure_values") else None
         ),
+        axes=_layout_axes(r, positions.shape[0]),
+        grade=_layout_grade(r, positions.shape[0]),
     )
     search = _read_search(r) if r.has("search") else None
     budget = _read_budget(r) if r.has("budget") else None

@@ -181,18 +181,49 @@ def test_score_gain_and_grade_columns(site, capsys):
     assert gain.tolist() == [1.0, 2.5, 1.0, 1.0]
 
 
+MIXED = """name,x_m,y_m,z_m,component,grade
+north,100,1500,0,x,fine
+east,1500,-200,0,vector,
+south,-200,-1600,0,,standard
+west,-1700,300,0,0.6 0 0.8,fine
+"""
+
+
+def test_score_mixed_meters_flow_to_the_file_show_and_simulate(site, capsys):
+    # Each CSV row its own component and grade (contract: optional columns of a layout). The
+    # stored file keeps them, `show` lists them, and `simulate` and `score --from` use them:
+    # the bound a simulation quotes is the bound of the scored layout, the rescore the same.
+    (site / "mixed.csv").write_text(MIXED)
+    code, out, err = run(capsys, "score", site / "tiny.toml", "--layout", site / "mixed.csv",
+                         "--out", site / "m.h5")  # fmt: skip
+    assert code == 0, err
+    stored = read_result(site / "m.h5").score
+    assert stored.grade == ("", "fine", "", "standard", "fine")
+    assert stored.axes.shape == (5, 3, 3)
+    np.testing.assert_allclose(stored.axes[4, 0], [0.6, 0.0, 0.8])
+    np.testing.assert_array_equal(stored.axes[2], np.eye(3))
+    code, shown, _ = run(capsys, "show", site / "m.h5")
+    assert code == 0
+    assert re.search(r"north .* x .* fine", shown) and re.search(r"east .* vector", shown)
+    assert re.search(r"gatehouse .* z .* as \[probes\]", shown)
+    # Rescoring from the file: the same meters, the same value.
+    code, out, err = run(capsys, "score", site / "tiny.toml", "--from", site / "m.h5")
+    assert code == 0, err
+    assert CRITERION.search(out).group(2) == f"{stored.value:.6g}"
+    code, _, err = run(capsys, "simulate", site / "m.h5", "--trials", "3")
+    assert code == 0, err
+    sim = read_result(site / "m.h5").simulation
+    s0 = int(np.flatnonzero(sim.scenarios == 0)[0])
+    np.testing.assert_allclose(sim.crb_std[s0], stored.crb_std[0], rtol=1e-12)
+
+
 @pytest.mark.parametrize(
     ("csv_text", "message"),
     [
         ("x_m,y_m,z_m\n1,2,0\n4,oops,0\n", r"layout\.csv: line 3, column y_m: expected a number"),
         ("x_m,z_m\n1,0\n", r"layout\.csv: line 1: missing column `y_m`"),
-        (
-            "x_m,y_m,z_m,component\n1,2,0,x\n",
-            r"component 'x' but \[probes\] component is 'z'.*"
-            r"not supported in this version",
-        ),  # fmt: skip
         ("x_m,y_m,z_m,grade\n1,2,0,gold\n", r"names grade 'gold'; the grades of .* standard, fine"),
-        ("x_m,y_m,z_m,grade\n1,2,0,fine\n3,4,0,standard\n", r"a grade per probe is not supported"),
+        ("x_m,y_m,z_m,component\n1,2,0,w\n", r"line 2, column component: expected one of x, y"),
     ],
 )
 def test_score_bad_layout_exits_2(site, capsys, csv_text, message):

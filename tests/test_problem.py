@@ -20,7 +20,7 @@ from hypothesis.extra.numpy import arrays
 from scipy.optimize import least_squares
 
 from probeplan.config import parse_config
-from probeplan.probes import component_axes, draw_readings, readings
+from probeplan.probes import axes_table, component_axes, draw_readings, readings
 from probeplan.problem import build_problem, draw_scenarios
 
 # --------------------------------------------------------------------------------------------
@@ -133,14 +133,18 @@ def _step(name: str, value: float) -> float:
     return 1e-6 * max(abs(value), floor)
 
 
-def _meters(problem, pos_new, gain_new):
-    """Every meter as (position (3,), axes (n_axes, 3), gain): installed first, then new."""
+def _meters(problem, pos_new, gain_new, components=None, noises=None):
+    """Every meter as (position (3,), axes (n_axes, 3), gain, Noise): installed first, then new
+    (``components`` and ``noises``: the new meters' own, one each; default the config's)."""
     out = []
+    pr = problem.config.probes
     for k, p in enumerate(problem.installed_m):
-        comp = problem.config.installed[k].component or problem.config.probes.component
-        out.append((p, component_axes(comp), problem.installed_gain[k]))
-    for p, g in zip(pos_new, gain_new, strict=True):
-        out.append((p, component_axes(problem.config.probes.component), g))
+        comp = problem.config.installed[k].component or pr.component
+        out.append((p, component_axes(comp), problem.installed_gain[k], problem.installed_noise))
+    components = components or [pr.component] * len(pos_new)
+    noises = noises or [problem.noise] * len(pos_new)
+    for p, g, c, n in zip(pos_new, gain_new, components, noises, strict=True):
+        out.append((p, component_axes(c), g, n))
     return out
 
 
@@ -148,18 +152,22 @@ def _hand_readings(problem, theta_full, meters):
     """Noise-free readings gain × (axis · E), all meters and axes, from the field alone."""
     pos = np.array([m[0] for m in meters])
     e, _ = problem.scene.evaluate(theta_full[None], pos, jacobian=False)
-    return np.concatenate([g * (ax @ e[0, k]) for k, (_, ax, g) in enumerate(meters)])
+    return np.concatenate([m[2] * (m[1] @ e[0, k]) for k, m in enumerate(meters)])
 
 
-def fisher_by_differences(problem, pos_new, gain_new):
+def fisher_by_differences(problem, pos_new, gain_new, components=None, noises=None):
     """J_s = G_sᵀ Σ_s⁻¹ G_s with G by central differences; Σ at the scenario's own readings.
 
     Source: the Gaussian Fisher information with parameter-independent covariance (Kay,
     Fundamentals of Statistical Signal Processing, vol. 1, §3.9, eq. 3.31), with Σ fixed at
     the scenario's readings as the contract states; a saturated reading is dropped (contract).
+    Each reading has the noise of its own meter's grade.
     """
-    meters = _meters(problem, pos_new, gain_new)
-    noise = problem.noise
+    meters = _meters(problem, pos_new, gain_new, components, noises)
+    per_reading = [m[3] for m in meters for _ in range(m[1].shape[0])]
+    add = np.array([n.noise_v_per_m for n in per_reading])
+    rel = np.array([n.relative_noise for n in per_reading])
+    top = np.array([n.range_v_per_m for n in per_reading])
     out = np.empty((problem.n_scenarios, problem.n_params, problem.n_params))
     for s, theta in enumerate(problem.theta):
         m0 = _hand_readings(problem, theta, meters)
@@ -172,8 +180,8 @@ def fisher_by_differences(problem, pos_new, gain_new):
             grad[:, j] = (
                 _hand_readings(problem, up, meters) - _hand_readings(problem, down, meters)
             ) / (2 * h)
-        sigma = np.hypot(noise.noise_v_per_m, noise.relative_noise * m0)
-        keep = np.abs(m0) <= noise.range_v_per_m
+        sigma = np.hypot(add, rel * m0)
+        keep = np.abs(m0) <= top
         g = grad[keep] / sigma[keep, None]
         out[s] = g.T @ g
     return out
@@ -256,6 +264,60 @@ def test_fisher_matches_finite_differences(case, criterion):
     # 1-sigma bound: sqrt(diag(J⁻¹)) (Cramér–Rao, Kay vol. 1, §3.7).
     crb = np.sqrt(np.diagonal(np.linalg.inv(expected), axis1=-2, axis2=-1))
     np.testing.assert_allclose(score.crb_std, crb, rtol=1e-5)
+
+
+GRADES = """
+[[grade]]
+name = "coarse"
+noise_v_per_m = 80.0
+relative_noise = 0.05
+cost = 1.0
+
+[[grade]]
+name = "fine"
+noise_v_per_m = 5.0
+range_v_per_m = 2000.0
+cost = 3.0
+"""
+
+
+def test_each_probe_reads_its_own_axes_with_its_own_grade():
+    # A mixed layout as one would score an existing installation: each meter its own component
+    # and grade. Reference: the same finite-difference Fisher information (Kay, §3.9), each
+    # reading with the noise of its own meter.
+    base = make_config(scenarios=3, ranges=True, background=BACKGROUND)
+    cfg = parse_config(base.text + GRADES, "test.toml")
+    comps = ["x", "vector", "z", (0.6, 0.0, 0.8), "y"]
+    grades = ["coarse", "", "fine", "fine", "coarse"]
+    axes = axes_table(comps)
+    problem = build_problem(cfg, layout_axes=axes)
+    # The x and y readings make the horizontal background observable: it is estimated too.
+    assert {"bg.x_v_per_m", "bg.y_v_per_m", "bg.z_v_per_m"} <= set(problem.names)
+    score = problem.score(LAYOUT5, None, axes, grades)
+    gain = np.full(len(LAYOUT5), cfg.probes.gain)
+    noises = [problem.grades[g] for g in grades]
+    assert noises[2].noise_v_per_m == 5.0 and noises[1].noise_v_per_m == 20.0
+    expected = fisher_by_differences(problem, LAYOUT5, gain, comps, noises)
+    assert_fisher_close(score.fisher, expected)
+    assert score.grade == tuple(grades)
+    np.testing.assert_array_equal(score.axes, axes)
+    # Losing one meter removes exactly its own readings (information of independent readings
+    # adds): compare with the reference Fisher information of the four others.
+    for k in (1, 2):
+        keep = [i for i in range(len(LAYOUT5)) if i != k]
+        without = fisher_by_differences(
+            problem, LAYOUT5[keep], gain[keep], [comps[i] for i in keep], [noises[i] for i in keep]
+        )
+        per = np.linalg.slogdet(without)[1]
+        assert score.failure_values[k] == pytest.approx(per.mean(), rel=1e-6)
+
+
+def test_unknown_grade_or_wrong_axes_is_a_clear_error():
+    problem = build_problem(make_config())
+    with pytest.raises(ValueError, match=r"`grades` must name 5 grades.*got \['gold'"):
+        problem.score(LAYOUT5, grades=["gold"] * 5)
+    with pytest.raises(ValueError, match=r"`axes` must have shape \(5, n_axes, 3\)"):
+        problem.score(LAYOUT5, axes=np.zeros((4, 1, 3)))
 
 
 def test_score_lists_installed_probes_first():
