@@ -116,7 +116,8 @@ def run_meta(quick: bool) -> dict:
     """Provenance of a run: UTC time, mode, commit, CPU count and load (figures are noisy)."""
     try:
         commit = subprocess.run(
-            ["git", "rev-parse", "--short", "HEAD"],
+            # "-dirty" when the measured code had uncommitted changes
+            ["git", "describe", "--always", "--dirty"],
             cwd=HERE,
             capture_output=True,
             text=True,

@@ -380,7 +380,16 @@ _RADIAL_POINT, _RADIAL_BALL, _RADIAL_GAUSSIAN = 0, 1, 2
 
 # Series of (φ − 3h)/(−3 h(0) e^{−z}) in z = r²/(2σ²) for the Gaussian near its centre, where the
 # closed form is 0/0: from the series of P(3/2, z) (Abramowitz & Stegun 6.5.29).
-_GAUSS_SERIES = (2 / 5, 4 / 35, 8 / 315, 16 / 3465, 32 / 45045)
+_GAUSS_SERIES = (
+    2 / 5,
+    4 / 35,
+    8 / 315,
+    16 / 3465,
+    32 / 45045,
+    64 / 675675,
+    128 / 11486475,
+    256 / 218243025,
+)
 _GAUSS_SERIES_Z = 0.05
 _TWO_OVER_SQRT_PI = 2.0 / math.sqrt(math.pi)
 _GAUSS_AMP = 2.0 / (3.0 * math.sqrt(2.0 * math.pi))
@@ -427,9 +436,11 @@ def _radial_profile(kind, r2, size):
 
 
 @_jit
-def _radial_loop(kind, params, pts, E, jac, want_jac):
+def _radial_loop(kind, k_coulomb, params, pts, E, jac, want_jac):
     """Add the field of every source to ``E`` (S, M, 3) and write ``jac`` (S, M, 3, N, P).
 
+    ``k_coulomb`` is an argument, not the global: numba would freeze a global into the machine
+    code it caches, and keep it when scipy's CODATA constants change.
     Returns the flat index s·M + m of the first (scenario, point) on a point charge, else −1.
     """
     S, N, P = params.shape
@@ -452,7 +463,7 @@ def _radial_loop(kind, params, pts, E, jac, want_jac):
                         singular = s * M + m
                     continue
                 a, b, e = _radial_profile(kind, r2, params[s, n, 4] if P > 4 else 0.0)
-                ka = K_COULOMB * a
+                ka = k_coulomb * a
                 kqa = q * ka
                 ex += kqa * dx
                 ey += kqa * dy
@@ -462,7 +473,7 @@ def _radial_loop(kind, params, pts, E, jac, want_jac):
                 jac[s, m, 0, n, 0] = ka * dx
                 jac[s, m, 1, n, 0] = ka * dy
                 jac[s, m, 2, n, 0] = ka * dz
-                nkqb = -K_COULOMB * q * b
+                nkqb = -k_coulomb * q * b
                 gxy = nkqb * dx * dy
                 gxz = nkqb * dx * dz
                 gyz = nkqb * dy * dz
@@ -476,7 +487,7 @@ def _radial_loop(kind, params, pts, E, jac, want_jac):
                 jac[s, m, 2, n, 2] = gyz
                 jac[s, m, 2, n, 3] = nkqb * dz * dz - kqa
                 if P > 4:
-                    kqe = K_COULOMB * q * e
+                    kqe = k_coulomb * q * e
                     jac[s, m, 0, n, 4] = kqe * dx
                     jac[s, m, 1, n, 4] = kqe * dy
                     jac[s, m, 2, n, 4] = kqe * dz
@@ -489,9 +500,16 @@ def _radial_loop(kind, params, pts, E, jac, want_jac):
 _NO_JAC = np.empty((1, 1, 1, 1, 1))
 
 
+def _plain(a: np.ndarray) -> bool:
+    """A writable C-ordered float64 array: the one layout the compiled loop takes."""
+    return a.dtype == np.float64 and a.flags.c_contiguous and a.flags.writeable
+
+
 def _radial_kernel(kind: int, name: str, what: str = ""):
-    """The kernel of one radial kind, around the compiled loop: strict C-ordered float arrays
-    (one compiled version serves every call), ``out`` reused when it is C-ordered."""
+    """The kernel of one radial kind, around the compiled loop. The loop sees only writable
+    C-ordered float64 arrays and Python scalars, so one compiled version serves every call (a
+    read-only, strided or float32 array would each cost a compilation of its own); an ``out``
+    of another layout gets the result through a temporary array."""
 
     def kernel(params, pts, geom, want_jac, out=None):
         S, N, P = params.shape
@@ -499,11 +517,19 @@ def _radial_kernel(kind: int, name: str, what: str = ""):
         E = np.zeros((S, M, 3))
         jac = _jac_buffer((S, M, 3, N, P), want_jac, out)
         target = jac
-        if jac is not None and not jac.flags.c_contiguous:
+        if jac is not None and not _plain(jac):
             target = np.empty(jac.shape)
-        params = np.ascontiguousarray(params, dtype=float)
-        pts = np.ascontiguousarray(pts, dtype=float)
-        singular = _radial_loop(kind, params, pts, E, _NO_JAC if jac is None else target, want_jac)
+        params = np.require(params, float, ["C", "W"])
+        pts = np.require(pts, float, ["C", "W"])
+        singular = _radial_loop(
+            int(kind),
+            K_COULOMB,
+            params,
+            pts,
+            E,
+            _NO_JAC if jac is None else target,
+            bool(want_jac),
+        )
         if singular >= 0:
             _raise_on_charge(singular % M, pts[singular % M], what)
         if target is not jac:

@@ -595,6 +595,41 @@ def test_evaluate_writes_into_a_reused_output(ground):
         scene.evaluate(theta, pts, out=np.empty((2, 3, 3, 7)))
 
 
+@pytest.mark.parametrize(
+    "source",
+    [
+        pp.PointCharge(-3.0, (10.0, -5.0, 400.0)),
+        pp.SphereCharge(2.0, (-30.0, 20.0, 650.0), 40.0),
+        pp.GaussianCharge(1.5, (5.0, 5.0, 300.0), 25.0),
+    ],
+)
+def test_one_kind_writes_any_output_layout_with_one_compiled_version(source):
+    # One kind in free space: the kernel writes straight into `out=`. Outputs that are strided
+    # or Fortran-ordered, read-only points, float32 points and a truthy int for `jacobian` give
+    # the same numbers as the plain call, and the compiled loop is not compiled again for them
+    # (numba compiles once per argument type; see probeplan.sources._radial_kernel).
+    from probeplan.sources import _radial_loop
+
+    scene = pp.Scene((source,))
+    theta = np.stack([scene.nominal(), scene.nominal() * 1.01])
+    pts = np.array([[0.0, 0.0, 0.0], [100.0, 50.0, 5.0], [-30.0, 20.0, 640.0], [5.0, 5.0, 301.0]])
+    e, jac = scene.evaluate(theta, pts)
+    n_versions = len(_radial_loop.signatures)
+    wide = np.full(jac.shape[:-1] + (2 * jac.shape[-1],), np.nan)
+    fortran = np.asfortranarray(np.full(jac.shape, np.nan))
+    frozen = pts.copy()
+    frozen.setflags(write=False)
+    for out in (wide[..., ::2], fortran):
+        e2, jac2 = scene.evaluate(theta, frozen, out=out)
+        assert jac2 is out
+        np.testing.assert_array_equal(out, jac)
+        np.testing.assert_array_equal(e2, e)
+    assert np.isnan(wide[..., 1::2]).all()
+    e32, jac32 = scene.evaluate(theta, pts.astype(np.float32), jacobian=1)
+    np.testing.assert_array_equal(jac32, jac)  # these points are exact in float32
+    assert len(_radial_loop.signatures) == n_versions
+
+
 @pytest.mark.parametrize("ground", [None, 0.0])
 def test_evaluate_into_a_strided_output_and_without_jacobian(ground):
     # numpy's `out=` convention again, for an output that is a strided view (the compiled

@@ -180,14 +180,17 @@ def test_uniform_ball_inside_and_outside():
 
 
 def _gauss_enclosed_fraction(x):
-    """Q_enc/Q of an isotropic 3-D normal law inside r = x σ, in the erf form."""
-    return special.erf(x / math.sqrt(2.0)) - math.sqrt(2.0 / math.pi) * x * np.exp(-0.5 * x * x)
+    """Q_enc/Q of an isotropic 3-D normal law inside r = x σ: the chi distribution's CDF with 3
+    degrees of freedom, P(3/2, x²/2), from scipy's regularised incomplete gamma function (an
+    independent route: the code uses the erf form of the same function)."""
+    return special.gammainc(1.5, 0.5 * x * x)
 
 
 def test_gaussian_cloud_erf_form():
     # Source: Gauss's law with the enclosed charge of an isotropic Gaussian (the Maxwell
-    # distribution's CDF), E = kQ/r² [erf(r/(√2σ)) − √(2/π)(r/σ) e^(−r²/2σ²)], radial.
-    # Radii straddle r/σ = √0.1, where the code switches from a series to the direct form.
+    # distribution's CDF), E = kQ/r² P(3/2, r²/2σ²) = kQ/r² [erf(r/(√2σ)) − √(2/π)(r/σ)
+    # e^(−r²/2σ²)], radial. Radii straddle r/σ = √0.1, where the code switches from a series
+    # to the direct form: both sides must be as exact as double precision allows.
     q, c, sigma = 3.0e-6, np.array([0.0, 5.0, 6.0]), 0.8
     cloud = pp.GaussianCharge(q, c, sigma)
     x = np.array([0.05, 0.2, 0.3, 0.3162, 0.3163, 0.33, 0.7, 1.0, 2.0, 3.5, 8.0, 40.0])
@@ -195,7 +198,7 @@ def test_gaussian_cloud_erf_form():
     r = x * sigma
     got = pp.field(cloud, c + r[:, None] * u)
     mag = K_REF * q * _gauss_enclosed_fraction(x) / r**2
-    np.testing.assert_allclose(got, mag[:, None] * u, rtol=1e-10)
+    np.testing.assert_allclose(got, mag[:, None] * u, rtol=1e-13)
 
 
 def test_gaussian_cloud_near_centre_series():
@@ -516,6 +519,8 @@ def test_compiled_kernels_work_without_a_writable_cache(monkeypatch):
 
     from probeplan import sources
 
+    if not hasattr(caching.CacheImpl, "_locator_classes"):
+        pytest.skip("numba's cache internals changed; this test needs updating to them")
     monkeypatch.setattr(caching.CacheImpl, "_locator_classes", [])
     with pytest.raises(RuntimeError, match="no locator"):
         numba.njit(cache=True)(lambda x: x)
