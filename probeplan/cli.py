@@ -429,13 +429,15 @@ def _prepare_run(args: argparse.Namespace, command: str, suffix: str) -> _Run:
         config = _demo_config()
     else:
         raise _UsageError(f"{command} needs a CONFIG (or --resume FILE.h5)")
+    if stored is not None:
+        config = _with_old_installed(config, stored, args.resume, resumed=True)
     base_config, old = config, None
     if args.from_file:
         if stored is not None:
             raise InputError(_RESUME_OR_FROM)
         old = _read_old(args.from_file)
         if args.from_as == "installed":
-            config = _with_old_installed(config, old)
+            config = _with_old_installed(config, old, args.from_file)
     resume_path = Path(args.resume) if args.resume else None
     if args.out:
         out = Path(args.out)
@@ -706,19 +708,36 @@ def _new_probes(old) -> np.ndarray:
     return old.score.positions_m[~np.asarray(old.score.installed, dtype=bool)]
 
 
-def _with_old_installed(config, old):
-    """The config with every probe of ``old`` added as installed (those already there kept)."""
+def _with_old_installed(config, old, old_path: str, resumed: bool = False):
+    """The config with every probe of ``old`` added as installed (those already there kept),
+    each reading what it read there, with its grade, when the file says so. ``resumed``: only
+    the probes ``old`` had installed, under their stored names (a run started with
+    ``--from-as installed`` keeps its extra installed meters when resumed)."""
     from dataclasses import replace
 
     from .config import InstalledProbe
+    from .probes import component_of
+    from .store import probe_names
 
     have = config.installed_m
+    axes, grades = old.score.axes, old.score.grade
+    _check_grades(config, str(old_path), grades, None)
+    names = probe_names(old)
     extra = []
     for k, pos in enumerate(old.score.positions_m):
+        if resumed and not old.score.installed[k]:
+            continue
         if have.shape[0] and np.min(np.linalg.norm(have - pos, axis=1)) < 1e-6:
             continue
-        gain = float(old.score.gain[k])
-        extra.append(InstalledProbe(tuple(float(v) for v in pos), f"kept-{k}", None, gain))
+        extra.append(
+            InstalledProbe(
+                position_m=tuple(float(v) for v in pos),
+                name=names[k] if resumed else f"kept-{k}",
+                component=None if axes is None else component_of(axes[k]),
+                gain=float(old.score.gain[k]),
+                grade=(grades[k] or None) if grades is not None else None,
+            )
+        )
     return replace(config, installed=tuple(config.installed) + tuple(extra))
 
 

@@ -89,7 +89,7 @@ _PROBE_KEYS = (
     "gain",
     "installed",
 )
-_INSTALLED_KEYS = ("position_m", "name", "component", "gain")
+_INSTALLED_KEYS = ("position_m", "name", "component", "gain", "grade")
 _REGION_KIND_KEYS = {
     "rectangle": ("min_m", "max_m", "z_m"),
     "polygon": ("vertices_m", "z_m"),
@@ -211,12 +211,15 @@ class InstalledProbe:
         ``None``: the same as ``[probes] component``.
     gain : float
         Calibration factor, > 0.
+    grade : str or None
+        The name of its ``[[grade]]``; ``None``: the noise and range of ``[probes]``.
     """
 
     position_m: tuple[float, float, float]
     name: str
     component: str | tuple[float, float, float] | None = None
     gain: float = 1.0
+    grade: str | None = None
 
 
 @dataclass(frozen=True)
@@ -436,6 +439,7 @@ def parse_config(text: str, path: str = "<config>") -> Config:
     design = _parse_design(root)
     _check_estimates(ck, sources, background, design)
     grades = _parse_grades(root, probes)
+    _check_installed_grades(ck, installed, grades)
     budget = _parse_budget(root, grades, design)
 
     heuristic = ground_z_m is not None and any(
@@ -517,6 +521,7 @@ def _parse_installed(probes: _Table, ground_z_m: float | None) -> tuple[Installe
                 name=name,
                 component=t.component("component", default=None),
                 gain=t.number("gain", default=1.0, gt=0.0),
+                grade=t.string("grade", default=None, nonempty=True, what="a [[grade]] name"),
             )
         )
     return tuple(out)
@@ -831,6 +836,18 @@ def _check_estimates(
             '`design.criterion` = "charge" is the bound relative to |q|, and source 0 has '
             'q = 0 C; give source 0 a nonzero charge or choose criterion "d".'
         )
+
+
+def _check_installed_grades(ck, installed, grades) -> None:
+    """An installed meter's ``grade`` must name one of the ``[[grade]]`` tables."""
+    names = [g.name for g in grades]
+    for k, p in enumerate(installed):
+        if p.grade is not None and p.grade not in names:
+            listed = ", ".join(names) or "none: the config has no [[grade]] table"
+            ck.fail(
+                f"`probes.installed[{k}].grade` = {_show(p.grade)} names no [[grade]]; the grades "
+                f"are: {listed}."
+            )
 
 
 def _parse_grades(root: _Table, probes: ProbeSpec) -> tuple[Grade, ...]:

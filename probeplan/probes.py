@@ -199,6 +199,26 @@ def stack_meters(
     )
 
 
+def component_of(axes: np.ndarray):
+    """The component spec (as a config writes it) of one meter's axes: ``"x"``, ``"y"``,
+    ``"z"``, ``"vector"`` or its unit axis as a (3,) tuple; inverse of :func:`component_axes`.
+
+    Parameters
+    ----------
+    axes : (n_axes, 3) float
+        One meter's axes (zero rows ignored): three coordinate axes or a single unit axis.
+    """
+    rows = axes[np.linalg.norm(axes, axis=-1) > 0.0]
+    if rows.shape[0] == 3 and np.allclose(np.abs(rows), np.eye(3), atol=1e-12):
+        return "vector"
+    if rows.shape[0] != 1:
+        raise ValueError(f"a meter reads one axis or all three; got axes {rows.tolist()}.")
+    for k, name in enumerate("xyz"):
+        if np.allclose(rows[0], np.eye(3)[k], atol=1e-12):
+            return name
+    return tuple(float(a) for a in rows[0])
+
+
 def axes_label(axes: np.ndarray) -> str:
     """What one meter reads, in words: ``"x"``, ``"y"``, ``"z"``, ``"vector"`` or its axis.
 
@@ -207,15 +227,8 @@ def axes_label(axes: np.ndarray) -> str:
     axes : (n_axes, 3) float
         One meter's axes (zero rows ignored).
     """
-    rows = axes[np.linalg.norm(axes, axis=-1) > 0.0]
-    if rows.shape[0] == 3 and np.allclose(np.abs(rows), np.eye(3), atol=1e-12):
-        return "vector"
-    if rows.shape[0] == 1:
-        for k, name in enumerate("xyz"):
-            if np.allclose(rows[0], np.eye(3)[k], atol=1e-12):
-                return name
-        return "[" + ", ".join(f"{a:.4g}" for a in rows[0]) + "]"
-    return "; ".join("[" + ", ".join(f"{a:.4g}" for a in r) + "]" for r in rows)
+    comp = component_of(axes)
+    return comp if isinstance(comp, str) else "[" + ", ".join(f"{a:.4g}" for a in comp) + "]"
 
 
 def readings(field_v_per_m: np.ndarray, axes: np.ndarray, gain: np.ndarray) -> np.ndarray:

@@ -146,7 +146,7 @@ class Problem:
     installed_m: np.ndarray  # (n_installed, 3)
     installed_axes: np.ndarray  # (n_installed, n_axes_i, 3)
     installed_gain: np.ndarray  # (n_installed,)
-    installed_noise: Noise  # the installed meters keep [probes]' grade whatever is bought
+    installed_grade: tuple[str, ...]  # each installed meter's grade, kept whatever is bought
     site: object
     fisher_installed: np.ndarray  # (n_scenarios, n_params, n_params)
     grades: dict = field(default_factory=dict)  # grade name -> Noise; "" is [probes]' own
@@ -200,9 +200,17 @@ class Problem:
         return whitened_rows(e, jac, axes, gain, self.noise if noise is None else noise)
 
     def installed_rows(self) -> tuple[np.ndarray, np.ndarray]:
-        """:meth:`rows` of the installed meters, with their own axes, gains and grade."""
-        return self.rows(
-            self.installed_m, self.installed_gain, self.installed_axes, self.installed_noise
+        """:meth:`rows` of the installed meters, with their own axes, gains and grades."""
+        inst = self._installed_meters()
+        return self.rows(inst.positions_m, inst.gain, inst.axes, inst)
+
+    def _installed_meters(self) -> Meters:
+        return stack_meters(
+            self.installed_m,
+            list(self.installed_axes),
+            self.installed_gain,
+            np.ones(self.installed_m.shape[0], dtype=bool),
+            [(g, self.grades[g]) for g in self.installed_grade],
         )
 
     def point_information(
@@ -453,7 +461,7 @@ class Problem:
             [*self.installed_axes, *axes],
             np.concatenate([self.installed_gain, g_new]),
             np.arange(n_inst + n_new) < n_inst,
-            [("", self.installed_noise)] * n_inst + [(g, self.grades[g]) for g in names],
+            [(g, self.grades[g]) for g in (*self.installed_grade, *names)],
         )
 
     def score(
@@ -542,7 +550,8 @@ def build_problem(
         Number of new probes (default ``config.probes.count``).
     grade : probeplan.config.Grade or None
         Meter grade whose noise and range replace those of ``[probes]`` for the new meters (for
-        budgets); installed meters keep the grade of ``[probes]``.
+        budgets); installed meters keep their own (``[[probes.installed]] grade``, by default
+        that of ``[probes]``).
     layout_axes : (n_new, n_axes, 3) float or None
         The new meters' own axes, when a given layout says what each one reads (scoring): they
         decide, with the installed meters' axes, which background components are estimated.
@@ -592,7 +601,7 @@ def build_problem(
         installed_m=installed_m,
         installed_axes=installed_axes,
         installed_gain=installed_gain,
-        installed_noise=grades[""],
+        installed_grade=tuple(p.grade or "" for p in inst),
         site=config.site(),
         fisher_installed=np.zeros((theta.shape[0], len(est), len(est))),
         grades=grades,

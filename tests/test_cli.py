@@ -215,6 +215,14 @@ def test_score_mixed_meters_flow_to_the_file_show_and_simulate(site, capsys):
     sim = read_result(site / "m.h5").simulation
     s0 = int(np.flatnonzero(sim.scenarios == 0)[0])
     np.testing.assert_allclose(sim.crb_std[s0], stored.crb_std[0], rtol=1e-12)
+    # Planning more meters around them: each old one stays installed with its axes and grade.
+    code, _, err = run(capsys, "plan", site / "tiny.toml", "--from", site / "m.h5",
+                       "--from-as", "installed", "--out", site / "p.h5", "--quiet")  # fmt: skip
+    assert code == 0, err
+    again = read_result(site / "p.h5").score
+    assert again.grade[:5] == stored.grade
+    np.testing.assert_allclose(again.axes[:5], stored.axes, atol=1e-15)
+    np.testing.assert_array_equal(again.positions_m[:5], stored.positions_m)
 
 
 @pytest.mark.parametrize(

@@ -125,6 +125,19 @@ def test_rerun_with_old_probes_installed_keeps_them_fixed(planned):
     assert new.score.value >= planned.score.value
 
 
+def test_resuming_a_rerun_keeps_the_meters_it_installed(planned):
+    # A run started with --from-as installed holds more installed meters than its config text
+    # lists; resuming it must keep them (it once fell back to the config's one installed meter).
+    args = ["plan", "site2.toml", "--from", "old.h5", "--from-as", "installed"]
+    assert main([*args, "--out", "new.h5", "--quiet"]) == 0
+    assert main(["plan", "--resume", "new.h5", "--out", "again.h5", "--quiet"]) == 0
+    new, again = read_result("new.h5").score, read_result("again.h5").score
+    np.testing.assert_array_equal(again.installed, new.installed)
+    kept = new.positions_m[new.installed]
+    np.testing.assert_array_equal(again.positions_m[again.installed], kept)
+    assert again.value >= new.value  # the resumed search starts from the stored layout
+
+
 def test_rerun_from_old_start_reports_changes(planned):
     assert main(["plan", "site2.toml", "--from", "old.h5", "--out", "new.h5", "--quiet"]) == 0
     new = read_result("new.h5")

@@ -54,6 +54,7 @@ position_m = [10.0, 20.0, 3.0]
 name = "gatehouse"
 component = "vector"
 gain = 2.0
+grade = "budget"
 
 [[probes.installed]]
 position_m = [-40.0, 5.0, 2.0]
@@ -239,7 +240,7 @@ def test_full_round_trip_top_level_and_probes(full_config, tmp_path):
         gain=1.5,
     )
     assert cfg.installed == (
-        InstalledProbe((10.0, 20.0, 3.0), "gatehouse", "vector", 2.0),
+        InstalledProbe((10.0, 20.0, 3.0), "gatehouse", "vector", 2.0, "budget"),
         InstalledProbe((-40.0, 5.0, 2.0), "installed-1", None, 1.0),
     )
     assert cfg.installed_m.shape == (2, 3)
@@ -727,6 +728,22 @@ BAD = {
             '[[probes.installed]]\nposition_m = [5, 0, 1]\nname = "a"',
         ),
         ['`probes.installed[1].name` = "a" is already the name of probes.installed[0]'],
+    ),
+    "installed grade unknown": (
+        (
+            EST,
+            EST + '\n\n[[probes.installed]]\nposition_m = [0, 0, 1]\ngrade = "gold"\n'
+            '[[grade]]\nname = "std"\ncost = 1.0',
+        ),
+        ['`probes.installed[0].grade` = "gold" names no [[grade]]; the grades are: std.'],
+    ),
+    "installed grade without grades": (
+        (EST, EST + '\n\n[[probes.installed]]\nposition_m = [0, 0, 1]\ngrade = "std"'),
+        ["names no [[grade]]; the grades are: none: the config has no [[grade]] table"],
+    ),
+    "installed grade empty": (
+        (EST, EST + '\n\n[[probes.installed]]\nposition_m = [0, 0, 1]\ngrade = ""'),
+        ["`probes.installed[0].grade` must not be empty; give a [[grade]] name."],
     ),
     # grades and budget
     "budget without grade": (

@@ -61,6 +61,7 @@ def make_config(
     seed: int = 3,
     half_width_m: float = 6000.0,
     region_gain: float = 1.0,
+    tail: str = "",
 ):
     """A one-region storm-watch style config (fictional numbers) as a checked Config."""
     rng_line = f"range_v_per_m = {range_v_per_m}" if range_v_per_m is not None else ""
@@ -100,7 +101,7 @@ criterion = "{criterion}"
 aggregate = "{aggregate}"
 scenarios = {scenarios}
 """
-    return parse_config(text, "test.toml")
+    return parse_config(text + tail, "test.toml")
 
 
 BACKGROUND = """
@@ -140,12 +141,19 @@ def _meters(problem, pos_new, gain_new, components=None, noises=None):
     pr = problem.config.probes
     for k, p in enumerate(problem.installed_m):
         comp = problem.config.installed[k].component or pr.component
-        out.append((p, component_axes(comp), problem.installed_gain[k], problem.installed_noise))
+        grade = _grade(problem.config, problem.config.installed[k].grade)
+        out.append((p, component_axes(comp), problem.installed_gain[k], grade))
     components = components or [pr.component] * len(pos_new)
     noises = noises or [problem.noise] * len(pos_new)
     for p, g, c, n in zip(pos_new, gain_new, components, noises, strict=True):
         out.append((p, component_axes(c), g, n))
     return out
+
+
+def _grade(config, name):
+    """The config's own table of a grade (noise_v_per_m, relative_noise, range_v_per_m): the
+    named [[grade]], or [probes] for none."""
+    return next(g for g in config.grades if g.name == name) if name else config.probes
 
 
 def _hand_readings(problem, theta_full, meters):
@@ -283,33 +291,53 @@ cost = 3.0
 
 def test_each_probe_reads_its_own_axes_with_its_own_grade():
     # A mixed layout as one would score an existing installation: each meter its own component
-    # and grade. Reference: the same finite-difference Fisher information (Kay, §3.9), each
-    # reading with the noise of its own meter.
-    base = make_config(scenarios=3, ranges=True, background=BACKGROUND)
-    cfg = parse_config(base.text + GRADES, "test.toml")
-    comps = ["x", "vector", "z", (0.6, 0.0, 0.8), "y"]
+    # and grade, an installed x meter of the fine grade among them. Reference: the same
+    # finite-difference Fisher information (Kay, §3.9), each reading with its own meter's noise.
+    # Free space, so that horizontal readings see the charge too (over a grounded plane its
+    # field is vertical at the ground) and the layout resolves every parameter.
+    installed = '[[probes.installed]]\nposition_m = [2500.0, 1000.0, 0.0]\ncomponent = "x"\n'
+    cfg = make_config(
+        ground=False,
+        scenarios=3,
+        ranges=True,
+        background=BACKGROUND,
+        extra=installed + 'grade = "fine"\n',
+        tail=GRADES,
+    )
+    assert cfg.installed[0].grade == "fine"
+    comps = ["vector", "x", "vector", (0.6, 0.0, 0.8), "vector"]
     grades = ["coarse", "", "fine", "fine", "coarse"]
     axes = axes_table(comps)
     problem = build_problem(cfg, layout_axes=axes)
-    # The x and y readings make the horizontal background observable: it is estimated too.
+    # The horizontal readings make the horizontal background observable: it is estimated too.
     assert {"bg.x_v_per_m", "bg.y_v_per_m", "bg.z_v_per_m"} <= set(problem.names)
     score = problem.score(LAYOUT5, None, axes, grades)
     gain = np.full(len(LAYOUT5), cfg.probes.gain)
-    noises = [problem.grades[g] for g in grades]
+    noises = [_grade(cfg, g) for g in grades]
     assert noises[2].noise_v_per_m == 5.0 and noises[1].noise_v_per_m == 20.0
+    assert np.isfinite(score.value)
     expected = fisher_by_differences(problem, LAYOUT5, gain, comps, noises)
     assert_fisher_close(score.fisher, expected)
-    assert score.grade == tuple(grades)
-    np.testing.assert_array_equal(score.axes, axes)
+    assert score.grade == ("fine", *grades)
+    np.testing.assert_array_equal(score.axes[1:], axes)
+    np.testing.assert_array_equal(score.axes[0], [[1.0, 0.0, 0.0], [0, 0, 0], [0, 0, 0]])
     # Losing one meter removes exactly its own readings (information of independent readings
-    # adds): compare with the reference Fisher information of the four others.
-    for k in (1, 2):
+    # adds): compare with the reference of the others. Meters are numbered installed first.
+    finite = 0
+    for k in range(len(LAYOUT5)):
         keep = [i for i in range(len(LAYOUT5)) if i != k]
         without = fisher_by_differences(
             problem, LAYOUT5[keep], gain[keep], [comps[i] for i in keep], [noises[i] for i in keep]
         )
-        per = np.linalg.slogdet(without)[1]
-        assert score.failure_values[k] == pytest.approx(per.mean(), rel=1e-6)
+        sign, logdet = np.linalg.slogdet(without)
+        got = score.failure_values[1 + k]
+        if np.isfinite(got):
+            finite += 1
+            assert np.all(sign > 0) and got == pytest.approx(logdet.mean(), rel=1e-6)
+        else:  # a vector meter is the only one seeing some combination: singular without it
+            eig = np.linalg.eigvalsh(without)
+            assert np.min(eig / eig[..., -1:]) < 1e-9
+    assert finite >= 2
 
 
 def test_unknown_grade_or_wrong_axes_is_a_clear_error():

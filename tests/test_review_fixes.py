@@ -109,7 +109,7 @@ cost = 1.0"""
     coarse = build_problem(cfg, grade=cfg.grades[0])
     np.testing.assert_array_equal(plain.fisher_installed, coarse.fisher_installed)
     assert coarse.noise.noise_v_per_m == 200.0
-    assert coarse.installed_noise.noise_v_per_m == 20.0
+    assert coarse.grades[coarse.installed_grade[0]].noise_v_per_m == 20.0
 
 
 def test_a_warm_start_that_breaks_spacing_is_thinned_first():
