@@ -1,5 +1,5 @@
 """``python -m probeplan``: the same as the ``probeplan`` command."""
 
-from .cli import main
+from ._entry import main
 
 raise SystemExit(main())

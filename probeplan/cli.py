@@ -36,12 +36,12 @@ from typing import NamedTuple
 import numpy as np
 
 from . import report
+from ._entry import EXIT_INTERRUPTED
 from .errors import InputError
 
 EXIT_OK = 0
 EXIT_INTERNAL = 1
 EXIT_INPUT = 2
-EXIT_INTERRUPTED = 130
 
 _DEMO = "demo.toml"
 FROM_MODES = ("start", "installed")
@@ -256,10 +256,9 @@ def main(argv: list[str] | None = None) -> int:
     int
         Exit status: 0 done, 2 bad input, 130 interrupted, 1 internal error.
     """
-    parser = build_parser()
     try:
         try:
-            args = parser.parse_args(argv)
+            args = build_parser().parse_args(argv)
         except SystemExit as exc:  # --help and --version
             return int(exc.code or 0)
         if args.command is None:

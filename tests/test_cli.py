@@ -13,6 +13,7 @@ import re
 import signal
 import subprocess
 import sys
+import time
 
 import h5py
 import numpy as np
@@ -22,6 +23,7 @@ from rich.console import Console
 
 import probeplan.store
 from probeplan import cli, report
+from probeplan._entry import EXIT_INTERRUPTED
 from probeplan.cli import main
 from probeplan.result import Result
 from probeplan.store import read_result, write_result
@@ -444,6 +446,49 @@ def test_signals_set_the_stop_flag_and_handlers_are_restored():
         with pytest.raises(KeyboardInterrupt):
             signal.raise_signal(signal.SIGINT)
     assert (signal.getsignal(signal.SIGINT), signal.getsignal(signal.SIGTERM)) == before
+
+
+def _loaded(pid: int, library: str) -> bool:
+    """Whether process ``pid`` has mapped a shared library whose path contains ``library``."""
+    try:
+        with open(f"/proc/{pid}/maps") as maps:
+            return library in maps.read()
+    except OSError:
+        return False
+
+
+@pytest.mark.skipif(not os.path.exists("/proc/self/maps"), reason="needs Linux /proc")
+@pytest.mark.parametrize("moment", ["loading", "running"])
+def test_ctrl_c_while_loading_or_running_gives_no_traceback(site, moment):
+    # Common practice for command-line tools: Ctrl-C ends the run with status 130 and one
+    # line, whether it comes while the program is still loading its libraries or while it
+    # works. "loading": the signal is sent as soon as numpy's core is mapped, i.e. in the
+    # middle of the imports (numba, scipy … follow); "running": 0.6 s later, when the run is
+    # under way or, on a fast machine, done.
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "probeplan", "plan", "tiny.toml", "--out", "p.h5"],
+        cwd=site,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+        env={**os.environ, "PROBEPLAN_DEBUG": ""},
+    )
+    deadline = time.monotonic() + 60.0
+    while not _loaded(proc.pid, "_multiarray_umath") and time.monotonic() < deadline:
+        time.sleep(0.001)
+    if moment == "running":
+        time.sleep(0.6)
+    proc.send_signal(signal.SIGINT)
+    out, err = proc.communicate(timeout=120)
+    assert "Traceback" not in err, err
+    allowed = [EXIT_INTERRUPTED]
+    if moment == "running" and "Result written" in out:
+        # Done before the signal came, or the signal came while Python was exiting after the
+        # run (it then ends with the signal's own status).
+        allowed += [0, -signal.SIGINT]
+    assert proc.returncode in allowed, (proc.returncode, err)
+    if proc.returncode == EXIT_INTERRUPTED:
+        assert "interrupted" in (out + err).lower()
 
 
 def test_python_dash_m(site):

@@ -1,0 +1,23 @@
+"""The ``probeplan`` command's entry point: loads the program with Ctrl-C already covered.
+
+Importing the command line pulls in numpy, scipy, numba and the rest (about a second on a cold
+machine); a Ctrl-C in that time would otherwise end in a Python traceback. The command's own
+handling (:func:`probeplan.cli.main`) takes over once it is loaded.
+"""
+
+from __future__ import annotations
+
+import sys
+
+#: Exit status of an interrupted run (128 + SIGINT, the shell convention).
+EXIT_INTERRUPTED = 130
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Run the ``probeplan`` command line (see :func:`probeplan.cli.main`)."""
+    try:
+        from .cli import main as run
+    except KeyboardInterrupt:
+        sys.stderr.write("probeplan: interrupted while starting; no result file was written.\n")
+        return EXIT_INTERRUPTED
+    return run(argv)
