@@ -32,7 +32,10 @@ Units: SI throughout (C, m, V/m). Sign: physics convention, E points away from p
 
 from __future__ import annotations
 
+import contextlib
 import math
+import signal
+import threading
 from dataclasses import dataclass, field
 from typing import ClassVar
 
@@ -273,9 +276,12 @@ class DensityGrid(_SourceBase):
     charge (the density scales with it; undefined for a grid with zero net charge) and the
     centre of the grid's bounding box (the whole grid shifts).
 
-    The closed form sums alternating corner terms that grow with distance, so it loses digits
-    far away: relative error about 1e-10 at 100 cell sizes, 5e-6 at 1,000, 0.6 % at 10,000
-    (measured in tests/test_sources.py). Keep observation points within a few hundred cells.
+    The closed form sums alternating corner terms that grow with distance, so it would lose
+    digits far away (relative error ~1e-8 at 100 cell sizes, 1e-5 at 1,000). Points at least
+    ten cells from the grid's box therefore take Gauss–Legendre quadrature over every charged
+    cell instead, whose error falls as (cell / distance)^(2g) for g nodes per axis: with g = 4,
+    3, 2 beyond 10, 30 and 300 cells, field and gradient stay within ~1e-11 of the exact
+    integral at every distance (measured in tests/test_sources.py).
     """
 
     density_c_per_m3: np.ndarray
@@ -395,14 +401,53 @@ _TWO_OVER_SQRT_PI = 2.0 / math.sqrt(math.pi)
 _GAUSS_AMP = 2.0 / (3.0 * math.sqrt(2.0 * math.pi))
 
 
-def _jit(fn):
+def _jit(fn=None, **extra):
     """Compile ``fn`` once per machine (cached beside the module, or in the user's cache when
-    that is read-only); without any writable cache, compile once per process instead."""
-    options = {"nogil": True, "error_model": "numpy", "boundscheck": False}
+    that is read-only); without any writable cache, compile once per process instead.
+    ``extra``: more numba options (``@_jit(fastmath=...)``)."""
+    if fn is None:
+        return lambda f: _jit(f, **extra)
+    options = {"nogil": True, "error_model": "numpy", "boundscheck": False, **extra}
     try:
         return numba.njit(cache=True, **options)(fn)
     except RuntimeError:  # numba: "cannot cache function ...: no locator available"
         return numba.njit(**options)(fn)
+
+
+def _call_compiled(fn, *args):
+    """``fn(*args)``; on its first call in this process, with Ctrl-C held until it returns.
+
+    The first call compiles the loop or loads it from numba's cache through callbacks from
+    compiled code, where a KeyboardInterrupt would be printed as an ignored exception and
+    lost; held, it is delivered to the previous handler once the call is done.
+    """
+    if fn.signatures or threading.current_thread() is not threading.main_thread():
+        return fn(*args)  # (only the main thread receives signals)
+    with _sigint_held() as delivered:
+        out = fn(*args)
+    delivered()
+    return out
+
+
+@contextlib.contextmanager
+def _sigint_held():
+    """Hold SIGINT in the block; yields ``deliver`` that passes a held one on to the handler
+    that was in place before (the default one raises KeyboardInterrupt)."""
+    held: list = []
+    previous = signal.signal(signal.SIGINT, lambda *a: held.append(a))
+
+    def deliver() -> None:
+        if not held:
+            return
+        if callable(previous):
+            previous(*held[0])
+        elif previous != signal.SIG_IGN:
+            raise KeyboardInterrupt
+
+    try:
+        yield deliver
+    finally:
+        signal.signal(signal.SIGINT, previous)
 
 
 @_jit
@@ -521,7 +566,8 @@ def _radial_kernel(kind: int, name: str, what: str = ""):
             target = np.empty(jac.shape)
         params = np.require(params, float, ["C", "W"])
         pts = np.require(pts, float, ["C", "W"])
-        singular = _radial_loop(
+        singular = _call_compiled(
+            _radial_loop,
             int(kind),
             K_COULOMB,
             params,
@@ -692,6 +738,80 @@ def _corner_weights(rho: np.ndarray) -> np.ndarray:
     return -np.diff(np.diff(np.diff(p, axis=0), axis=1), axis=2)
 
 
+# Far from the grid, Gauss–Legendre quadrature per cell replaces the corner sums: (distance from
+# the grid's box in largest cell sides, nodes per axis), the first row that applies. Measured
+# error bounds of field and gradient per row: 6e-13/4e-12, 1e-12/5e-12, 2e-12/6e-12.
+_GRID_FAR_RULES = ((300.0, 2), (30.0, 3), (10.0, 4))
+
+
+def _grid_nodes(base: np.ndarray, spacing: np.ndarray, order: int):
+    """Quadrature nodes of every charged cell, offsets from the grid's lower corner ``(3, K)``
+    (by coordinate, for the compiled sums), and their weights ``(K,)`` (charge per node for
+    the unit-scaled density ``base``)."""
+    t, w = np.polynomial.legendre.leggauss(order)
+    cells = np.argwhere(base != 0.0)  # (C, 3)
+    centre = (cells + 0.5) * spacing
+    grid_t = np.stack(np.meshgrid(t, t, t, indexing="ij"), axis=-1).reshape(-1, 3)  # (g³, 3)
+    grid_w = np.einsum("i,j,k->ijk", w, w, w).reshape(-1) / 8.0
+    nodes = (centre[:, None, :] + 0.5 * spacing * grid_t[None, :, :]).reshape(-1, 3)
+    weights = (base[tuple(cells.T)][:, None] * np.prod(spacing) * grid_w[None, :]).reshape(-1)
+    return np.ascontiguousarray(nodes.T), np.ascontiguousarray(weights)
+
+
+# reassoc (with nsz): lets the compiler split each sum over nodes into vector lanes, ~3x
+# faster; the sums then round in another order (~1e-14 relative over 10⁴ nodes), the same on
+# every call. No approximate division or square root (no arcp, afn).
+@_jit(fastmath={"reassoc", "nsz"})
+def _node_sums(k_coulomb, lower, nodes, weights, pts, E, G):
+    """Field E (S, m, 3) and gradient G (S, m, 6: xx, yy, zz, xy, xz, yz) of point charges
+    ``weights`` (K,) at ``lower[s] + nodes``, nodes (3, K) by coordinate; written, not added."""
+    S = lower.shape[0]
+    M = pts.shape[0]
+    K = nodes.shape[1]
+    nx, ny, nz = nodes[0], nodes[1], nodes[2]
+    for s in range(S):
+        for m in range(M):
+            px = pts[m, 0] - lower[s, 0]
+            py = pts[m, 1] - lower[s, 1]
+            pz = pts[m, 2] - lower[s, 2]
+            ex = ey = ez = 0.0
+            gxx = gyy = gzz = gxy = gxz = gyz = 0.0
+            for n in range(K):
+                dx = px - nx[n]
+                dy = py - ny[n]
+                dz = pz - nz[n]
+                inv_r2 = 1.0 / (dx * dx + dy * dy + dz * dz)
+                wa = weights[n] * math.sqrt(inv_r2) * inv_r2
+                wb = -3.0 * wa * inv_r2
+                ex += wa * dx
+                ey += wa * dy
+                ez += wa * dz
+                gxx += wa + wb * dx * dx
+                gyy += wa + wb * dy * dy
+                gzz += wa + wb * dz * dz
+                gxy += wb * dx * dy
+                gxz += wb * dx * dz
+                gyz += wb * dy * dz
+            E[s, m, 0] = k_coulomb * ex
+            E[s, m, 1] = k_coulomb * ey
+            E[s, m, 2] = k_coulomb * ez
+            G[s, m, 0] = k_coulomb * gxx
+            G[s, m, 1] = k_coulomb * gyy
+            G[s, m, 2] = k_coulomb * gzz
+            G[s, m, 3] = k_coulomb * gxy
+            G[s, m, 4] = k_coulomb * gxz
+            G[s, m, 5] = k_coulomb * gyz
+
+
+def _cells_away(pts: np.ndarray, lower: np.ndarray, size: np.ndarray, cell: float) -> np.ndarray:
+    """``(M,)`` distance of each point from the grid's box, nearest over the scenarios, in
+    largest cell sides; ``lower`` (S, 3) is the box's lower corner in each scenario."""
+    below = lower[:, None, :] - pts[None, :, :]
+    above = pts[None, :, :] - (lower + size)[:, None, :]
+    gap = np.maximum(np.maximum(below, above), 0.0)  # (S, M, 3)
+    return np.sqrt(np.sum(gap * gap, axis=-1)).min(axis=0) / cell
+
+
 def _grid_kernel(params, pts, grids, want_jac, out=None):
     """Density grids (a Python loop over grids only: each has its own shape).
 
@@ -709,27 +829,57 @@ def _grid_kernel(params, pts, grids, want_jac, out=None):
         neutral = q0 == 0.0
         base = grid.density_c_per_m3 if neutral else grid.density_c_per_m3 / q0
         mult = np.ones(S) if neutral else params[:, n, 0]  # (S,)
+        spacing = np.asarray(grid.spacing_m)
+        lower = params[:, n, 1:4] - 0.5 * grid.size_m  # (S, 3)
+        away = _cells_away(pts, lower, grid.size_m, float(spacing.max()))
+        near = np.ones(M, dtype=bool)
+        for cells, order in _GRID_FAR_RULES:
+            take = np.flatnonzero(near & (away >= cells))
+            if take.size == 0:
+                continue
+            near[take] = False
+            nodes, weights = _grid_nodes(base, spacing, order)
+            unit = np.empty((S, take.size, 3))
+            grad6 = np.empty((S, take.size, 6))  # a fifth of the work: always computed
+            sub = np.ascontiguousarray(pts[take])
+            args = (K_COULOMB, np.ascontiguousarray(lower), nodes, weights, sub, unit, grad6)
+            _call_compiled(_node_sums, *args)
+            grad = [grad6[..., c] for c in range(6)] if want_jac else None
+            _add_grid_terms(E, jac, n, take, unit, grad, mult, neutral, tensor)
+        if not near.any():
+            continue
         w = _corner_weights(base)
         idx = np.nonzero(w)
         wv = w[idx]
-        spacing = np.asarray(grid.spacing_m)
-        lower = params[:, n, 1:4] - 0.5 * grid.size_m  # (S, 3)
         corner = [lower[:, k : k + 1] + idx[k] * spacing[k] for k in range(3)]  # (S, K) each
-        for blk in _blocks(M, S * wv.size * 8):
-            p = pts[blk]
+        near_idx = np.flatnonzero(near)
+        for blk in _blocks(near_idx.size, S * wv.size * 8):
+            take = near_idx[blk]
+            p = pts[take]
             off = [corner[k][:, None, :] - p[None, :, k, None] for k in range(3)]
             gfield, grad = _grid_corner_terms(*off, want_jac)
             unit = K_COULOMB * np.stack([g @ wv for g in gfield], axis=-1)  # (S, m, 3)
-            E[:, blk, :] += unit * mult[:, None, None]
-            if jac is None:
-                continue
-            if not neutral:
-                jac[:, blk, :, n, 0] = unit
-            gv = [K_COULOMB * (g @ wv) * mult[:, None] for g in grad]
-            for i in range(3):
-                for j in range(3):
-                    jac[:, blk, i, n, 1 + j] = -gv[tensor[i][j]]
+            grad = None if grad is None else [K_COULOMB * (g @ wv) for g in grad]
+            _add_grid_terms(E, jac, n, take, unit, grad, mult, neutral, tensor)
     return E, jac
+
+
+def _add_grid_terms(E, jac, n, take, unit, grad, mult, neutral, tensor) -> None:
+    """Add grid ``n``'s field at points ``take`` to ``E`` and write its Jacobian columns.
+
+    unit : (S, m, 3) field per unit scale; grad : six (S, m) gradient components (xx, yy, zz,
+    xy, xz, yz) per unit scale, or None; mult : (S,) the scenario's scale.
+    """
+    # Views first, then one index array: numpy moves the axes of mixed advanced indices.
+    E[:, take, :] += unit * mult[:, None, None]
+    if jac is None:
+        return
+    if not neutral:
+        jac[:, :, :, n, 0][:, take, :] = unit
+    gv = [g * mult[:, None] for g in grad]
+    for i in range(3):
+        for j in range(3):
+            jac[:, :, i, n, 1 + j][:, take] = -gv[tensor[i][j]]
 
 
 #: kind name -> kernel(params (S, N, P), points (M, 3), geometry, want_jac, out=None)

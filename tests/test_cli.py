@@ -480,12 +480,12 @@ def test_ctrl_c_while_loading_or_running_gives_no_traceback(site, moment):
         time.sleep(0.6)
     proc.send_signal(signal.SIGINT)
     out, err = proc.communicate(timeout=120)
-    assert "Traceback" not in err, err
-    allowed = [EXIT_INTERRUPTED]
+    assert "Traceback" not in err and "Exception ignored" not in err, err
+    # 130, or ended by the signal itself when it came while Python was shutting down (a shell
+    # reports both as 130); 0 when the run was done before the signal came.
+    allowed = [EXIT_INTERRUPTED, -signal.SIGINT]
     if moment == "running" and "Result written" in out:
-        # Done before the signal came, or the signal came while Python was exiting after the
-        # run (it then ends with the signal's own status).
-        allowed += [0, -signal.SIGINT]
+        allowed.append(0)
     assert proc.returncode in allowed, (proc.returncode, err)
     if proc.returncode == EXIT_INTERRUPTED:
         assert "interrupted" in (out + err).lower()
