@@ -5,7 +5,8 @@ Commands (the contract's "Command line"):
 * ``probeplan plan [CONFIG] [--out FILE.h5] [--force] [--resume FILE.h5] [--quiet]``
 * ``probeplan score CONFIG (--layout LAYOUT.csv | --from OLD.h5) [--out FILE.h5] [--force]``
 * ``probeplan budget CONFIG [--out FILE.h5] [--force] [--from OLD.h5 [--from-as MODE]]``
-* ``probeplan show FILE.h5``
+* ``probeplan show FILE.h5 [--layout-csv LAYOUT.csv [--force]]`` — the summary; optionally the
+  new probes as a layout CSV (what ``score --layout`` reads)
 * ``probeplan simulate FILE.h5 [--trials N] [--seed S]`` — fits of simulated readings beside
   the bounds, stored back into FILE.h5
 * ``probeplan plot FILE.h5 [--format png|svg] [--folder DIR]`` — site map, coverage map,
@@ -200,6 +201,13 @@ def build_parser() -> argparse.ArgumentParser:
         description="Print the terminal summary of a result file, from the file alone.",
     )
     w.add_argument("file", metavar="FILE.h5", help="result file written by plan or score")
+    w.add_argument(
+        "--layout-csv",
+        metavar="LAYOUT.csv",
+        help="also write the new probes to this CSV (name, x_m, y_m, z_m, component, grade, "
+        "gain: the file `score --layout` reads), e.g. for the installers",
+    )
+    w.add_argument("--force", action="store_true", help="overwrite an existing --layout-csv file")
 
     m = sub.add_parser(
         "simulate",
@@ -779,10 +787,14 @@ def _site_extent(site) -> float:
 
 
 def _cmd_show(args: argparse.Namespace) -> int:
-    from .store import read_result
+    from .store import check_writable, read_result, write_layout_csv
 
     result = read_result(args.file)
+    if args.layout_csv:
+        check_writable(args.layout_csv, force=args.force, option="--layout-csv", suffix=".csv")
     report.print_result(result)
+    if args.layout_csv:
+        report.print_layout_written(write_layout_csv(result, args.layout_csv, force=args.force))
     return EXIT_OK
 
 

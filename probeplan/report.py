@@ -614,6 +614,11 @@ def print_written(
     con.print(line, soft_wrap=True)
 
 
+def print_layout_written(path, console: Console | None = None) -> None:
+    """One line naming the layout CSV written by ``show --layout-csv``."""
+    _console(console).print(f"Layout written to {os.fspath(path)}", markup=False, highlight=False)
+
+
 def print_plots(paths, console: Console | None = None) -> None:
     """List the image files a ``plot`` command wrote."""
     con = _console(console)

@@ -8,7 +8,7 @@ Map of this module:
    ``units``. A file is written to a temporary name in the target folder and renamed, so a
    reader never sees a half-written file; an existing file is kept unless ``force``.
 2. :func:`free_name`: the default output name of ``plan`` (``demo.h5``, ``demo-2.h5`` …).
-3. :func:`read_layout_csv`: a layout of new probes, one probe a row.
+3. :func:`read_layout_csv` / :func:`write_layout_csv`: a layout of new probes, one probe a row.
 
 File layout (beyond the contract's paths)::
 
@@ -174,8 +174,12 @@ def write_result(result: Result, path: str | os.PathLike, *, force: bool = False
     return target
 
 
-def check_writable(path: str | os.PathLike, *, force: bool = False) -> Path:
+def check_writable(
+    path: str | os.PathLike, *, force: bool = False, option: str = "--out", suffix: str = ".h5"
+) -> Path:
     """Check, before any work is spent, that a result could be written to ``path``.
+
+    ``option`` and ``suffix`` name the command-line option and file type in the messages.
 
     Raises
     ------
@@ -184,19 +188,76 @@ def check_writable(path: str | os.PathLike, *, force: bool = False) -> Path:
     """
     target = Path(os.fspath(path))
     if target.is_dir():
-        raise InputError(f"{target}: is a folder; give a file name ending in .h5 to --out.")
+        raise InputError(f"{target}: is a folder; give a file name ending in {suffix} to {option}.")
     folder = target.parent
     if not folder.is_dir():
         raise InputError(f"{target}: the folder {folder} does not exist; create it first.")
     if target.exists() and not force:
-        raise InputError(f"{target} exists; pass --force to overwrite it, or choose another --out.")
+        raise InputError(
+            f"{target} exists; pass --force to overwrite it, or choose another {option}."
+        )
     try:  # a real probe: permissions alone do not tell (root, read-only or special mounts)
         with tempfile.TemporaryFile(dir=folder):
             pass
     except OSError as exc:
         raise InputError(
-            f"{target}: cannot write in the folder {folder} ({exc.strerror}); choose another --out."
+            f"{target}: cannot write in the folder {folder} ({exc.strerror}); choose another "
+            f"{option}."
         ) from None
+    return target
+
+
+def write_layout_csv(result: Result, path: str | os.PathLike, *, force: bool = False) -> Path:
+    """Write the new probes of a result as a layout CSV, atomically: the file ``score --layout``
+    reads (one probe a row: name, x_m, y_m, z_m, component, grade, gain), to hand to the
+    installers or to rescore later. Installed probes are left out: they come from the config.
+
+    Coordinates and gains are written with every digit (``repr``), so scoring the file gives
+    the stored score exactly. A first comment line says where the layout came from.
+
+    Parameters
+    ----------
+    result : Result
+    path : str or path-like
+    force : bool
+        Replace an existing file.
+
+    Returns
+    -------
+    Path
+    """
+    from .probes import component_of
+
+    target = check_writable(path, force=force, option="--layout-csv", suffix=".csv")
+    s = result.score
+    new = ~np.asarray(s.installed, dtype=bool)
+    names = probe_names(result)
+    rows = []
+    for k in np.flatnonzero(new):
+        comp = "" if s.axes is None else component_of(s.axes[k])
+        if isinstance(comp, tuple):
+            comp = " ".join(repr(a) for a in comp)
+        grade = "" if s.grade is None else s.grade[k]
+        x, y, z = (repr(float(v)) for v in s.positions_m[k])
+        rows.append([names[k], x, y, z, comp, grade, repr(float(s.gain[k]))])
+    title = " ".join(result.title.split()) or "untitled"
+    tmp = target.with_name(f".{target.name}.tmp-{os.getpid()}")
+    try:
+        with open(tmp, "w", encoding="utf-8", newline="") as fh:
+            fh.write(
+                f"# new probes of {result.command} '{title}' ({result.config_path}), written "
+                f"by probeplan {result.version}; installed probes come from the config\n"
+            )
+            writer = csv.writer(fh, lineterminator="\n")
+            writer.writerow(["name", "x_m", "y_m", "z_m", "component", "grade", "gain"])
+            writer.writerows(rows)
+        os.replace(tmp, target)
+    except OSError as exc:
+        _remove_quietly(tmp)
+        raise InputError(f"{target}: cannot write the layout file: {_os_reason(exc)}.") from None
+    except BaseException:
+        _remove_quietly(tmp)
+        raise
     return target
 
 

@@ -95,6 +95,26 @@ def test_score_from_an_old_result_reproduces_its_score(planned, capsys):
     assert "Changes against old.h5" in capsys.readouterr().out
 
 
+def test_planned_layout_exported_as_csv_scores_the_same(planned, capsys):
+    # The hand-over file: `show --layout-csv` writes the new probes in the layout format, with
+    # every digit, so `score --layout` of it reproduces the plan's Fisher information exactly.
+    assert main(["show", "old.h5", "--layout-csv", "layout.csv"]) == 0
+    assert capsys.readouterr().out.strip().endswith("Layout written to layout.csv")
+    text = open("layout.csv", encoding="utf-8").read().splitlines()
+    assert text[0].startswith("# new probes of plan") and text[1] == (
+        "name,x_m,y_m,z_m,component,grade,gain"
+    )
+    assert len(text) == 2 + 4 and text[2].startswith("new-0,")
+    assert main(["score", "site.toml", "--layout", "layout.csv", "--out", "again.h5"]) == 0
+    again = read_result("again.h5").score
+    np.testing.assert_array_equal(again.positions_m, planned.score.positions_m)
+    np.testing.assert_array_equal(again.fisher, planned.score.fisher)
+    # An existing file is kept unless --force (exit 2, one line).
+    assert main(["show", "old.h5", "--layout-csv", "layout.csv"]) == 2
+    assert "--force" in capsys.readouterr().err
+    assert main(["show", "old.h5", "--layout-csv", "layout.csv", "--force"]) == 0
+
+
 def test_rerun_with_old_probes_installed_keeps_them_fixed(planned):
     code = main(
         [
