@@ -650,7 +650,7 @@ def _parse_source(t: _Table, ground_z_m: float | None, base: Path) -> SourceSpec
         if key in t.data:
             ranges.append((extra, *t.pair(key, gt=0.0)))
 
-    if kind == "grid" and src.charge_c == 0.0:
+    if kind == "grid" and src.neutral:
         # A neutral grid has no charge scale to vary (DensityGrid keeps its density as is).
         bad = ["estimate"] if "charge_c" in estimate else []
         bad += ["charge_range_c"] if "charge_range_c" in t.data else []
@@ -831,7 +831,7 @@ def _check_estimates(
             f"`source[0].estimate` lacks {names}; add {'them' if len(missing) > 1 else 'it'} "
             'there or choose criterion "d".'
         )
-    if design.criterion == "charge" and sources[0].source.charge_c == 0.0:
+    if design.criterion == "charge" and sources[0].source.neutral:
         ck.fail(
             '`design.criterion` = "charge" is the bound relative to |q|, and source 0 has '
             'q = 0 C; give source 0 a nonzero charge or choose criterion "d".'

@@ -21,7 +21,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .sources import KERNELS, DensityGrid, Source, _SourceBase
+from .sources import KERNELS, DensityGrid, Source, _SourceBase, grid_entries
 
 BACKGROUND_PARAMS: tuple[str, ...] = ("bg.x_v_per_m", "bg.y_v_per_m", "bg.z_v_per_m")
 
@@ -38,7 +38,7 @@ class _KindGroup:
 
     kind: str
     columns: np.ndarray  # (N, P) int: global θ column of each source parameter
-    geometry: object  # line: (N, 3) half vectors; grid: tuple of DensityGrid; else None
+    geometry: object  # line: (N, 3) half vectors; grid: grid_entries(...); else None
     pair_geometry: object  # the same for the sources followed by their mirror images
     contiguous: bool  # columns == arange: the Jacobian block is a reshape, no scatter
 
@@ -287,14 +287,15 @@ def _geometry(kind: str, members: list) -> tuple[object, object]:
         hv = np.array([m.half_vector_m for m in members])
         return hv, np.concatenate([hv, hv * np.array([1.0, 1.0, -1.0])])
     if kind == "grid":
-        grids = tuple(members)
+        grids = grid_entries(members)
         # The image density is negated here, not only through the charge parameter: a neutral
         # grid has no charge to negate (its kernel keeps the density as given), and without the
         # sign its image doubled the tangential field on the plane instead of cancelling it.
-        # For a charged grid the kernel divides by the image's own (now negated) total charge,
-        # so its result is unchanged.
+        # Its total charge and neutrality are the real grid's, negated, not summed again: a
+        # near-neutral sum in another order could flip between neutral and charged.
         images = tuple(
-            DensityGrid(-m.density_c_per_m3[:, :, ::-1], m.origin_m, m.spacing_m) for m in members
+            (DensityGrid(-g.density_c_per_m3[:, :, ::-1], g.origin_m, g.spacing_m), -q, neutral)
+            for g, q, neutral in grids
         )
         return grids, grids + images
     return None, None

@@ -658,7 +658,7 @@ def _bind_criterion(config, names: tuple[str, ...]) -> Criterion:
                 f'{where} = "charge" needs the charge of source 0 estimated; '
                 'add "charge" to source[0].estimate.'
             )
-        if abs(config.sources[0].source.charge_c) == 0.0:
+        if config.sources[0].source.neutral:
             raise InputError(f'{where} = "charge" is relative to |q| and source 0 has q = 0.')
         return Criterion("charge", charge_index=names.index("s0.charge_c"))
     return Criterion(name)

@@ -46,6 +46,9 @@ from scipy import constants
 #: Coulomb constant k = 1/(4 pi eps0) in N m^2 / C^2, from scipy.constants (CODATA).
 K_COULOMB: float = 1.0 / (4.0 * math.pi * constants.epsilon_0)
 
+#: A density grid is neutral when its net charge is within this fraction of its gross charge.
+NEUTRAL_RTOL: float = 1e-12
+
 #: Parameter names shared by every kind, in the contract's order: charge, then the centre.
 BASE_PARAMS: tuple[str, ...] = ("charge_c", "x_m", "y_m", "z_m")
 
@@ -96,6 +99,11 @@ class _SourceBase:
 
     def _extra_values(self) -> tuple[float, ...]:
         return ()
+
+    @property
+    def neutral(self) -> bool:
+        """No net charge: nothing to scale, and no charge to estimate."""
+        return self.charge_c == 0.0
 
 
 @dataclass(frozen=True)
@@ -277,11 +285,16 @@ class DensityGrid(_SourceBase):
     centre of the grid's bounding box (the whole grid shifts).
 
     The closed form sums alternating corner terms that grow with distance, so it would lose
-    digits far away (relative error ~1e-8 at 100 cell sizes, 1e-5 at 1,000). Points at least
-    ten cells from the grid's box therefore take Gauss–Legendre quadrature over every charged
-    cell instead, whose error falls as (cell / distance)^(2g) for g nodes per axis: with g = 4,
-    3, 2 beyond 10, 30 and 300 cells, field and gradient stay within ~1e-11 of the exact
-    integral at every distance (measured in tests/test_sources.py).
+    digits far away (relative error ~1e-8 at 100 cell sizes, 1e-5 at 1,000). Far from the
+    grid's box (at least ten cell sides, and ten times the smallest gap between the corners
+    that carry weight: one cell for a varying density, the whole box for a uniform one) the
+    field is instead Gauss–Legendre quadrature over every charged cell, whose error falls as
+    (cell / distance)^(2g) for g nodes per axis: with g = 4, 3, 2 beyond 10, 30 and 300 cells,
+    field and gradient stay within ~1e-11 of the exact integral (~3e-10 where a sparse set of
+    corners is kept out to 30 gaps), for each scenario and point on its own (measured in
+    tests/test_sources.py and tests/test_forward.py).
+
+    A density whose net charge is within 1e-12 of its gross charge is :attr:`neutral`.
     """
 
     density_c_per_m3: np.ndarray
@@ -323,6 +336,13 @@ class DensityGrid(_SourceBase):
         return float(self.density_c_per_m3.sum() * self.cell_volume_m3)
 
     @property
+    def neutral(self) -> bool:
+        """No net charge: |Σρ| within 1e-12 of Σ|ρ|, the rounding of summing mixed signs (a
+        net charge that small has no scale to vary; the density is kept as given)."""
+        rho = self.density_c_per_m3
+        return bool(abs(rho.sum()) <= NEUTRAL_RTOL * np.abs(rho).sum())
+
+    @property
     def size_m(self) -> np.ndarray:
         """``(3,) float``: edge lengths of the bounding box."""
         return np.asarray(self.density_c_per_m3.shape) * np.asarray(self.spacing_m)
@@ -335,8 +355,7 @@ class DensityGrid(_SourceBase):
     def with_params(self, values) -> DensityGrid:
         """Copy scaled to total charge ``values[0]`` and shifted to centre ``values[1:4]``."""
         v = np.asarray(values, dtype=float)
-        q0 = self.charge_c
-        scale = 1.0 if q0 == 0.0 else v[0] / q0
+        scale = 1.0 if self.neutral else v[0] / self.charge_c
         origin = v[1:4] - 0.5 * self.size_m
         return DensityGrid(self.density_c_per_m3 * scale, tuple(origin), self.spacing_m)
 
@@ -742,144 +761,177 @@ def _corner_weights(rho: np.ndarray) -> np.ndarray:
 # the grid's box in largest cell sides, nodes per axis), the first row that applies. Measured
 # error bounds of field and gradient per row: 6e-13/4e-12, 1e-12/5e-12, 2e-12/6e-12.
 _GRID_FAR_RULES = ((300.0, 2), (30.0, 3), (10.0, 4))
+# The corner sums lose digits with the distance measured in their own length scale, the smallest
+# gap between the corners that carry weight (one cell for a varying density, the whole box for a
+# uniform one): they are used within this many such gaps (error ~1e-11 there), and within the
+# second number when they are also ten times fewer than the quadrature nodes (error ~3e-10).
+_GRID_CORNER_GAPS = (10.0, 30.0)
 
 
-def _grid_nodes(base: np.ndarray, spacing: np.ndarray, order: int):
-    """Quadrature nodes of every charged cell, offsets from the grid's lower corner ``(3, K)``
-    (by coordinate, for the compiled sums), and their weights ``(K,)`` (charge per node for
-    the unit-scaled density ``base``)."""
-    t, w = np.polynomial.legendre.leggauss(order)
+def _grid_cells(base: np.ndarray, spacing: np.ndarray):
+    """Charged cells: centres as offsets from the grid's lower corner ``(3, C)``, by coordinate
+    for the compiled sums, and each cell's charge ``(C,)`` for the unit-scaled density."""
     cells = np.argwhere(base != 0.0)  # (C, 3)
-    centre = (cells + 0.5) * spacing
-    grid_t = np.stack(np.meshgrid(t, t, t, indexing="ij"), axis=-1).reshape(-1, 3)  # (g³, 3)
-    grid_w = np.einsum("i,j,k->ijk", w, w, w).reshape(-1) / 8.0
-    nodes = (centre[:, None, :] + 0.5 * spacing * grid_t[None, :, :]).reshape(-1, 3)
-    weights = (base[tuple(cells.T)][:, None] * np.prod(spacing) * grid_w[None, :]).reshape(-1)
-    return np.ascontiguousarray(nodes.T), np.ascontiguousarray(weights)
+    centres = np.ascontiguousarray(((cells + 0.5) * spacing).T)
+    return centres, np.ascontiguousarray(base[tuple(cells.T)] * np.prod(spacing))
 
 
-# reassoc (with nsz): lets the compiler split each sum over nodes into vector lanes, ~3x
-# faster; the sums then round in another order (~1e-14 relative over 10⁴ nodes), the same on
-# every call. No approximate division or square root (no arcp, afn).
+def _corner_gap_m(idx: tuple, spacing: np.ndarray) -> float:
+    """Smallest gap between distinct coordinates of the weighted corners along any axis, m."""
+    gaps = [np.diff(np.unique(i)).min() * h for i, h in zip(idx, spacing, strict=True) if i.size]
+    gaps = [g for g in gaps if g > 0]
+    return float(min(gaps)) if gaps else float(np.max(spacing))
+
+
+# reassoc (with nsz): lets the compiler split each sum over cells into vector lanes, ~3x faster;
+# the sums then round in another order (~1e-14 relative over 10⁴ cells), the same on every
+# call. No approximate division or square root (no arcp, afn).
 @_jit(fastmath={"reassoc", "nsz"})
-def _node_sums(k_coulomb, lower, nodes, weights, pts, E, G):
-    """Field E (S, m, 3) and gradient G (S, m, 6: xx, yy, zz, xy, xz, yz) of point charges
-    ``weights`` (K,) at ``lower[s] + nodes``, nodes (3, K) by coordinate; written, not added."""
-    S = lower.shape[0]
-    M = pts.shape[0]
-    K = nodes.shape[1]
-    nx, ny, nz = nodes[0], nodes[1], nodes[2]
-    for s in range(S):
-        for m in range(M):
-            px = pts[m, 0] - lower[s, 0]
-            py = pts[m, 1] - lower[s, 1]
-            pz = pts[m, 2] - lower[s, 2]
-            ex = ey = ez = 0.0
-            gxx = gyy = gzz = gxy = gxz = gyz = 0.0
-            for n in range(K):
-                dx = px - nx[n]
-                dy = py - ny[n]
-                dz = pz - nz[n]
-                inv_r2 = 1.0 / (dx * dx + dy * dy + dz * dz)
-                wa = weights[n] * math.sqrt(inv_r2) * inv_r2
-                wb = -3.0 * wa * inv_r2
-                ex += wa * dx
-                ey += wa * dy
-                ez += wa * dz
-                gxx += wa + wb * dx * dx
-                gyy += wa + wb * dy * dy
-                gzz += wa + wb * dz * dz
-                gxy += wb * dx * dy
-                gxz += wb * dx * dz
-                gyz += wb * dy * dz
-            E[s, m, 0] = k_coulomb * ex
-            E[s, m, 1] = k_coulomb * ey
-            E[s, m, 2] = k_coulomb * ez
-            G[s, m, 0] = k_coulomb * gxx
-            G[s, m, 1] = k_coulomb * gyy
-            G[s, m, 2] = k_coulomb * gzz
-            G[s, m, 3] = k_coulomb * gxy
-            G[s, m, 4] = k_coulomb * gxz
-            G[s, m, 5] = k_coulomb * gyz
+def _cell_quadrature(k_coulomb, lower, pts, centres, charge, half, t, w, E, G):
+    """Field and gradient of charged boxes by Gauss–Legendre quadrature, for pairs p of a grid
+    position and a point: ``lower`` (P, 3) the grid's lower corner, ``pts`` (P, 3) the point;
+    ``centres`` (3, C) cell centres from the lower corner, ``charge`` (C,), ``half`` (3,) half
+    cell sides, ``t``, ``w`` (g,) nodes and weights on [−1, 1]. Writes E (P, 3) and G (P, 6:
+    xx, yy, zz, xy, xz, yz). Nodes are formed on the fly: memory stays ~C numbers.
+    """
+    P = pts.shape[0]
+    C = charge.shape[0]
+    g = t.shape[0]
+    cx, cy, cz = centres[0], centres[1], centres[2]
+    for p in range(P):
+        px = pts[p, 0] - lower[p, 0]
+        py = pts[p, 1] - lower[p, 1]
+        pz = pts[p, 2] - lower[p, 2]
+        ex = ey = ez = 0.0
+        gxx = gyy = gzz = gxy = gxz = gyz = 0.0
+        for a in range(g):
+            for b in range(g):
+                for c in range(g):
+                    qx = px - t[a] * half[0]
+                    qy = py - t[b] * half[1]
+                    qz = pz - t[c] * half[2]
+                    sx = sy = sz = 0.0
+                    sxx = syy = szz = sxy = sxz = syz = 0.0
+                    for n in range(C):  # over cells: the loop the compiler vectorises
+                        dx = qx - cx[n]
+                        dy = qy - cy[n]
+                        dz = qz - cz[n]
+                        inv_r2 = 1.0 / (dx * dx + dy * dy + dz * dz)
+                        wa = charge[n] * math.sqrt(inv_r2) * inv_r2
+                        wb = -3.0 * wa * inv_r2
+                        sx += wa * dx
+                        sy += wa * dy
+                        sz += wa * dz
+                        sxx += wa + wb * dx * dx
+                        syy += wa + wb * dy * dy
+                        szz += wa + wb * dz * dz
+                        sxy += wb * dx * dy
+                        sxz += wb * dx * dz
+                        syz += wb * dy * dz
+                    wabc = 0.125 * w[a] * w[b] * w[c]
+                    ex += wabc * sx
+                    ey += wabc * sy
+                    ez += wabc * sz
+                    gxx += wabc * sxx
+                    gyy += wabc * syy
+                    gzz += wabc * szz
+                    gxy += wabc * sxy
+                    gxz += wabc * sxz
+                    gyz += wabc * syz
+        E[p, 0] = k_coulomb * ex
+        E[p, 1] = k_coulomb * ey
+        E[p, 2] = k_coulomb * ez
+        G[p, 0] = k_coulomb * gxx
+        G[p, 1] = k_coulomb * gyy
+        G[p, 2] = k_coulomb * gzz
+        G[p, 3] = k_coulomb * gxy
+        G[p, 4] = k_coulomb * gxz
+        G[p, 5] = k_coulomb * gyz
 
 
-def _cells_away(pts: np.ndarray, lower: np.ndarray, size: np.ndarray, cell: float) -> np.ndarray:
-    """``(M,)`` distance of each point from the grid's box, nearest over the scenarios, in
-    largest cell sides; ``lower`` (S, 3) is the box's lower corner in each scenario."""
+def _box_distance(pts: np.ndarray, lower: np.ndarray, size: np.ndarray) -> np.ndarray:
+    """``(S, M)`` distance of each point from the grid's box in each scenario, m; ``lower``
+    (S, 3) is the box's lower corner."""
     below = lower[:, None, :] - pts[None, :, :]
     above = pts[None, :, :] - (lower + size)[:, None, :]
-    gap = np.maximum(np.maximum(below, above), 0.0)  # (S, M, 3)
-    return np.sqrt(np.sum(gap * gap, axis=-1)).min(axis=0) / cell
+    gap = np.maximum(np.maximum(below, above), 0.0)
+    return np.sqrt(np.sum(gap * gap, axis=-1))
+
+
+def grid_entries(grids) -> tuple:
+    """The kernel's geometry for density grids: ``(grid, total charge, neutral)`` each, with the
+    charge and the neutrality decided once (see :attr:`DensityGrid.neutral`)."""
+    return tuple((g, g.charge_c, g.neutral) for g in grids)
 
 
 def _grid_kernel(params, pts, grids, want_jac, out=None):
     """Density grids (a Python loop over grids only: each has its own shape).
 
-    params (S, N, 4) = (total charge, centre); grids: sequence of N DensityGrid. The density
-    is the grid's own shape scaled to the scenario's charge; a neutral grid keeps its density
-    and has no charge column.
+    params (S, N, 4) = (total charge, centre); grids: N entries (DensityGrid, its total charge,
+    neutral) from :func:`grid_entries`. The density is the grid's own shape scaled to the
+    scenario's charge; a neutral grid keeps its density and has no charge column.
+
+    Each (scenario, point) pair takes the box closed form summed over the weighted corners when
+    the point is near the grid, and Gauss–Legendre quadrature per cell when it is far, where the
+    corner sums would cancel (see ``_GRID_FAR_RULES`` and ``_GRID_CORNER_GAPS``).
     """
     S, N, P = params.shape
     M = pts.shape[0]
     E = np.zeros((S, M, 3))
     jac = _jac_buffer((S, M, 3, N, P), want_jac, out, zero=True)
     tensor = ((0, 3, 4), (3, 1, 5), (4, 5, 2))  # index into (xx, yy, zz, xy, xz, yz)
-    for n, grid in enumerate(grids):
-        q0 = grid.charge_c
-        neutral = q0 == 0.0
+    for n, (grid, q0, neutral) in enumerate(grids):
         base = grid.density_c_per_m3 if neutral else grid.density_c_per_m3 / q0
         mult = np.ones(S) if neutral else params[:, n, 0]  # (S,)
         spacing = np.asarray(grid.spacing_m)
         lower = params[:, n, 1:4] - 0.5 * grid.size_m  # (S, 3)
-        away = _cells_away(pts, lower, grid.size_m, float(spacing.max()))
-        near = np.ones(M, dtype=bool)
-        for cells, order in _GRID_FAR_RULES:
-            take = np.flatnonzero(near & (away >= cells))
-            if take.size == 0:
-                continue
-            near[take] = False
-            nodes, weights = _grid_nodes(base, spacing, order)
-            unit = np.empty((S, take.size, 3))
-            grad6 = np.empty((S, take.size, 6))  # a fifth of the work: always computed
-            sub = np.ascontiguousarray(pts[take])
-            args = (K_COULOMB, np.ascontiguousarray(lower), nodes, weights, sub, unit, grad6)
-            _call_compiled(_node_sums, *args)
-            grad = [grad6[..., c] for c in range(6)] if want_jac else None
-            _add_grid_terms(E, jac, n, take, unit, grad, mult, neutral, tensor)
-        if not near.any():
-            continue
         w = _corner_weights(base)
         idx = np.nonzero(w)
         wv = w[idx]
+        dist = _box_distance(pts, lower, grid.size_m)  # (S, M)
+        cell = float(spacing.max())
+        sparse = 10 * wv.size < 27 * np.count_nonzero(base)  # corners far cheaper than nodes
+        gaps = _GRID_CORNER_GAPS[1] if sparse else _GRID_CORNER_GAPS[0]
+        far = (dist >= gaps * _corner_gap_m(idx, spacing)) & (dist >= 10.0 * cell)
+        unit = np.zeros((S, M, 3))
+        grad6 = np.zeros((S, M, 6))
+        if far.any():
+            centres, charge = _grid_cells(base, spacing)
+            todo = far.copy()
+            for cells_away, order in _GRID_FAR_RULES:
+                s_i, m_i = np.nonzero(todo & (dist >= cells_away * cell))
+                if s_i.size == 0:
+                    continue
+                todo[s_i, m_i] = False
+                t, wq = np.polynomial.legendre.leggauss(order)
+                e_p, g_p = np.empty((s_i.size, 3)), np.empty((s_i.size, 6))
+                args = (lower[s_i], np.ascontiguousarray(pts[m_i]), centres, charge)
+                args += (0.5 * spacing, t, wq, e_p, g_p)
+                _call_compiled(_cell_quadrature, K_COULOMB, *args)
+                unit[s_i, m_i], grad6[s_i, m_i] = e_p, g_p
+        near_pts = np.flatnonzero(~far.all(axis=0))
         corner = [lower[:, k : k + 1] + idx[k] * spacing[k] for k in range(3)]  # (S, K) each
-        near_idx = np.flatnonzero(near)
-        for blk in _blocks(near_idx.size, S * wv.size * 8):
-            take = near_idx[blk]
+        for blk in _blocks(near_pts.size, S * wv.size * 8):
+            take = near_pts[blk]
             p = pts[take]
             off = [corner[k][:, None, :] - p[None, :, k, None] for k in range(3)]
             gfield, grad = _grid_corner_terms(*off, want_jac)
-            unit = K_COULOMB * np.stack([g @ wv for g in gfield], axis=-1)  # (S, m, 3)
-            grad = None if grad is None else [K_COULOMB * (g @ wv) for g in grad]
-            _add_grid_terms(E, jac, n, take, unit, grad, mult, neutral, tensor)
+            keep = ~far[:, take, None]  # (S, m, 1): the pairs the quadrature did not take
+            u = K_COULOMB * np.stack([g @ wv for g in gfield], axis=-1)  # (S, m, 3)
+            unit[:, take] = np.where(keep, u, unit[:, take])
+            if grad is not None:
+                gr = K_COULOMB * np.stack([g @ wv for g in grad], axis=-1)  # (S, m, 6)
+                grad6[:, take] = np.where(keep, gr, grad6[:, take])
+        E += unit * mult[:, None, None]
+        if jac is None:
+            continue
+        if not neutral:
+            jac[:, :, :, n, 0] = unit
+        gv = grad6 * mult[:, None, None]
+        for i in range(3):
+            for j in range(3):
+                jac[:, :, i, n, 1 + j] = -gv[..., tensor[i][j]]
     return E, jac
-
-
-def _add_grid_terms(E, jac, n, take, unit, grad, mult, neutral, tensor) -> None:
-    """Add grid ``n``'s field at points ``take`` to ``E`` and write its Jacobian columns.
-
-    unit : (S, m, 3) field per unit scale; grad : six (S, m) gradient components (xx, yy, zz,
-    xy, xz, yz) per unit scale, or None; mult : (S,) the scenario's scale.
-    """
-    # Views first, then one index array: numpy moves the axes of mixed advanced indices.
-    E[:, take, :] += unit * mult[:, None, None]
-    if jac is None:
-        return
-    if not neutral:
-        jac[:, :, :, n, 0][:, take, :] = unit
-    gv = [g * mult[:, None] for g in grad]
-    for i in range(3):
-        for j in range(3):
-            jac[:, :, i, n, 1 + j][:, take] = -gv[tensor[i][j]]
 
 
 #: kind name -> kernel(params (S, N, P), points (M, 3), geometry, want_jac, out=None)

@@ -183,6 +183,47 @@ def test_neutral_grid_over_ground_has_no_tangential_field():
     _assert_rows_close(e, free + pp.field(image, pts), rel=1e-12)
 
 
+@pytest.mark.parametrize("seed", range(12))
+def test_nearly_neutral_grid_over_ground_has_no_tangential_field(seed):
+    # Source: method of images (Jackson §2.1), as above, for a density with its mean taken
+    # out: its net charge is rounding noise whose sign and size depend on the order of the sum
+    # (the image sums the flipped array), so the image must take the real grid's neutrality
+    # and charge rather than its own. (It once vanished, or came out with the wrong sign.)
+    rng = np.random.default_rng(seed)
+    rho = rng.uniform(-1e-6, 1e-6, (3, 2, 4))
+    rho -= rho.mean()
+    grid = pp.DensityGrid(rho, (0.0, 0.0, 1.0), 0.5)
+    assert grid.neutral
+    pts = np.array([[0.3, 0.2, 0.0], [-2.0, 1.0, 0.0], [5.0, -4.0, 0.0], [40.0, 3.0, 0.0]])
+    e = pp.field(grid, pts, ground_z_m=0.0)
+    free = pp.field(grid, pts)
+    np.testing.assert_allclose(e[:, :2], 0.0, atol=1e-10 * np.abs(free).max())
+    np.testing.assert_allclose(e[:, 2], 2.0 * free[:, 2], rtol=1e-9)  # E_z doubles at the plane
+
+
+def test_grid_far_in_one_scenario_near_in_another():
+    # Each (scenario, point) pair takes its own method: a scenario that moves the grid 3,000 and
+    # 30,000 cells away gets the far-field precision there (the point-charge limit of a uniform
+    # cube, exact to ~(h/r)⁴ by the multipole expansion), while scenario 0, next to the point,
+    # keeps the closed form; each row equals that scenario evaluated alone.
+    cell = pp.DensityGrid(np.full((1, 1, 1), 1e-6), (-0.5, -0.5, 9.5), 1.0)
+    scene = pp.Scene((cell,))
+    theta = np.tile(scene.nominal(), (3, 1))
+    theta[1, 1] += 3_000.0
+    theta[2, 1] += 30_000.0
+    pts = np.array([[2.0, 0.5, 10.0], [-1.0, 1.0, 8.0]])
+    e, jac = scene.evaluate(theta, pts)
+    for s in range(3):
+        e_s, jac_s = scene.evaluate(theta[s : s + 1], pts)
+        np.testing.assert_allclose(e[s], e_s[0], rtol=1e-13)
+        np.testing.assert_allclose(jac[s], jac_s[0], rtol=1e-13, atol=1e-13 * np.abs(jac_s).max())
+    for s in (1, 2):
+        point = pp.Scene((pp.PointCharge(1e-6, tuple(theta[s, 1:4])),))
+        e_p, jac_p = point.evaluate(point.nominal()[None], pts)
+        np.testing.assert_allclose(e[s], e_p[0], rtol=1e-11)
+        np.testing.assert_allclose(jac[s], jac_p[0], rtol=1e-10, atol=1e-10 * np.abs(jac_p).max())
+
+
 # ----------------------------------------------------------------------------------------------
 # Derivatives against central finite differences, batched over scenarios
 # ----------------------------------------------------------------------------------------------

@@ -348,6 +348,30 @@ def test_density_grid_quadrature_far_away_matches_adaptive_cubature(cells_away):
     )
 
 
+@pytest.mark.parametrize("boxes_away", [9.0, 12.0, 29.0, 31.0])
+def test_uniform_block_far_away_matches_cubature_of_the_box(boxes_away):
+    # Source: scipy.integrate.cubature of the Coulomb kernel over one uniformly charged box.
+    # A uniform 4x2x2 block of cells is that box: its corner sums reduce to the box's own eight
+    # corners, kept out to 30 box widths (cheaper than quadrature), and quadrature beyond.
+    h = np.array([0.5, 0.5, 0.25])
+    shape = (4, 2, 2)
+    origin = np.array([1.0, -2.0, 3.0])
+    grid = pp.DensityGrid(np.full(shape, 3e-6), origin, h)
+    size = np.array(shape) * h
+    x = origin + size * np.array([0.5, 1.0, 0.3]) + np.array([0.0, boxes_away * 0.5, 0.0])
+
+    def f(r):
+        d = x - r
+        r2 = np.sum(d * d, axis=1)
+        return (K_REF * 3e-6) * d / (r2 * np.sqrt(r2))[:, None]
+
+    scale = K_REF * 3e-6 * np.prod(size) / (boxes_away * 0.5) ** 2  # |E| within ~10 %
+    ref = integrate.cubature(f, origin, origin + size, rule="gk21", rtol=1e-12, atol=1e-13 * scale)
+    assert ref.status == "converged"
+    got = pp.field(grid, x[None])[0]
+    np.testing.assert_allclose(got, ref.estimate, rtol=0, atol=1e-10 * np.linalg.norm(ref.estimate))
+
+
 @pytest.mark.parametrize("cells_away", [1_000.0, 10_000.0, 1e6])
 def test_density_grid_cell_very_far_away_keeps_precision(cells_away):
     # Source: multipole expansion as above: a uniform cube has no dipole or quadrupole, so at
