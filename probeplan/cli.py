@@ -617,15 +617,18 @@ def _csv_axes(config, layout) -> np.ndarray | None:
     return axes_table([config.probes.component if c is None else c for c in layout.components])
 
 
-def _check_grades(config, where: str, grades, names) -> None:
-    """Every grade a layout names must be a [[grade]] of the config (None or "": [probes])."""
+def _check_grades(config, where: str, grades, names, rows: bool = True) -> None:
+    """Every grade a layout names must be a [[grade]] of the config (None or "": [probes]).
+
+    ``names``: the probes' names (None: counted as new probes); ``rows``: say the CSV row."""
     if grades is None:
         return
     offered = [g.name for g in config.grades]
     listed = ", ".join(offered) or "none: the config has no [[grade]] table"
     for k, g in enumerate(grades):
         if g and g not in offered:
-            who = f"probe {names[k]!r} (row {k + 1})" if names else f"new probe {k}"
+            who = f"new probe {k}" if not names else f"probe {names[k]!r}"
+            who += f" (row {k + 1})" if names and rows else ""
             raise InputError(
                 f"{where}: {who} names grade {g!r}; the grades of {config.path} are: {listed}."
             )
@@ -728,8 +731,8 @@ def _with_old_installed(config, old, old_path: str, resumed: bool = False):
 
     have = config.installed_m
     axes, grades = old.score.axes, old.score.grade
-    _check_grades(config, str(old_path), grades, None)
     names = probe_names(old)
+    _check_grades(config, str(old_path), grades, names, rows=False)
     extra = []
     for k, pos in enumerate(old.score.positions_m):
         if resumed and not old.score.installed[k]:
@@ -761,13 +764,24 @@ def _changes(old, old_path: str, mode: str, config, score):
     from .result import Changes, compare_layouts
 
     old_new = _new_probes(old)
-    rescored = float("nan")
+    rescored, note = float("nan"), ""
     if old_new.shape[0]:
         axes, grades = old.score.new_meters()
-        _check_grades(config, str(old_path), grades, None)
-        problem = _build_problem(config, count=old_new.shape[0], layout_axes=axes)
-        with _as_input_error():
-            rescored = float(problem.score(old_new, _new_gains(old), axes, grades).value)
+        try:
+            _check_grades(config, str(old_path), grades, None)
+        except InputError as exc:
+            note = f"not rescored: {str(exc).split(': ', 1)[-1]}"
+        if not note:
+            problem = _build_problem(config, count=old_new.shape[0], layout_axes=axes)
+            if problem.names != tuple(score.names):
+                note = (
+                    "not rescored: with the old meters this config would estimate "
+                    f"{', '.join(problem.names)}, not the {', '.join(score.names)} of this run, "
+                    "so the two criteria are not comparable"
+                )
+        if not note:
+            with _as_input_error():
+                rescored = float(problem.score(old_new, _new_gains(old), axes, grades).value)
     radius = max(float(config.probes.min_spacing_m), 0.05 * _site_extent(config.site()))
     parts = compare_layouts(old.score.positions_m, score.positions_m, radius)
     return Changes(
@@ -776,6 +790,7 @@ def _changes(old, old_path: str, mode: str, config, score):
         old_value=float(old.score.value),
         old_rescored=rescored,
         old_criterion=old.score.criterion,
+        rescore_note=note,
         **parts,
     )
 
@@ -802,6 +817,8 @@ def _stored_problem(result, where: str):
     """The config and problem of a stored result, and its new probes: positions, gains and
     each one's axes and grade (None in files written before these were stored)."""
     config = _parse_config_text(result.config_text, result.config_path)
+    # Meters a `--from-as installed` run kept are in the file, not in its config text.
+    config = _with_old_installed(config, result, where, resumed=True)
     new = ~np.asarray(result.score.installed, dtype=bool)
     grade = None
     if result.budget is not None:

@@ -342,7 +342,8 @@ class Problem:
             noise = meters.take(np.tile(np.arange(n_p), n_l))
             axes = noise.axes
         rows, _ = self.rows(layouts_m.reshape(-1, 3), g, axes, noise)
-        info = fisher_from_rows(rows).reshape(self.n_scenarios, n_l, n_p, self.n_params, -1)
+        p = self.n_params  # explicit: with no new probe the size is 0 and -1 is undefined
+        info = fisher_from_rows(rows).reshape(self.n_scenarios, n_l, n_p, p, p)
         if self.installed_m.shape[0]:
             inst = fisher_from_rows(self.installed_rows()[0])  # (S, k, p, p)
             inst = np.broadcast_to(inst[:, None], (self.n_scenarios, n_l, *inst.shape[1:]))

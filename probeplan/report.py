@@ -253,7 +253,7 @@ def _meters_table(result: Result) -> Table | None:
     if s.axes is None or s.grade is None:
         return None
     reads = [axes_label(a) for a in s.axes]
-    if len(set(reads)) == 1 and not any(s.grade):
+    if len(set(reads)) == 1 and len(set(s.grade)) == 1:
         return None
     table = Table(title="Meters", title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False)
     table.add_column("#", justify="right")
@@ -317,6 +317,8 @@ def _ratio(result: Result, value: float, other: float) -> str:
     """How ``value`` compares with ``other``: D-ratio for d, error ratio otherwise."""
     s = result.score
     n = max(len(s.names), 1)
+    if math.isnan(other) or math.isnan(value):
+        return "n/a"
     if not (math.isfinite(other) and math.isfinite(value)):
         if math.isfinite(value) or math.isfinite(other):
             plan_better = math.isfinite(value)
@@ -482,11 +484,15 @@ def _changes_text(result: Result) -> Text:
     text.append("Changes against ", style="bold")
     text.append(f"{c.old_path} ({how}):\n", style="bold")
     text.append(f"  old layout: {old_name} = {_value(c.old_value)} as stored")
-    if c.old_rescored != c.old_value or old_name != s.criterion:
+    if c.rescore_note:
+        text.append(f"; {c.rescore_note}")
+    elif c.old_rescored != c.old_value or old_name != s.criterion:
         text.append(f"; {s.criterion} = {_value(c.old_rescored)} under this config")
     what = "D-ratio" if s.criterion == "d" else "error ratio"
-    text.append(f"\n  new layout: {s.criterion} = {_value(s.value)}; ")
-    text.append(f"{what} new vs old: {_ratio(result, s.value, c.old_rescored)}\n")
+    text.append(f"\n  new layout: {s.criterion} = {_value(s.value)}")
+    if not c.rescore_note:
+        text.append(f"; {what} new vs old: {_ratio(result, s.value, c.old_rescored)}")
+    text.append("\n")
     counts = [
         (len(c.kept_m), "kept"),
         (len(c.moved_to_m), "moved"),

@@ -121,6 +121,10 @@ class Changes:
     moved_from_m, moved_to_m : (n_moved, 3) float
     added_m : (n_added, 3) float
     removed_m : (n_removed, 3) float
+    old_criterion : str
+    rescore_note : str
+        Why ``old_rescored`` is NaN when the old layout cannot be scored comparably under the
+        current config ("" otherwise).
     """
 
     old_path: str
@@ -133,6 +137,7 @@ class Changes:
     added_m: np.ndarray
     removed_m: np.ndarray
     old_criterion: str = ""
+    rescore_note: str = ""
 
 
 def compare_layouts(

@@ -438,35 +438,33 @@ def _call_compiled(fn, *args):
 
     The first call compiles the loop or loads it from numba's cache through callbacks from
     compiled code, where a KeyboardInterrupt would be printed as an ignored exception and
-    lost; held, it is delivered to the previous handler once the call is done.
+    lost; held, each press is handed to the previous handler once the call is done.
     """
-    if fn.signatures or threading.current_thread() is not threading.main_thread():
-        return fn(*args)  # (only the main thread receives signals)
-    with _sigint_held() as delivered:
-        out = fn(*args)
-    delivered()
-    return out
+    if (
+        fn.signatures
+        or threading.current_thread() is not threading.main_thread()  # (signals go to main)
+        or signal.getsignal(signal.SIGINT) is None  # a handler not set from Python: leave it
+    ):
+        return fn(*args)
+    with _sigint_held():
+        return fn(*args)
 
 
 @contextlib.contextmanager
 def _sigint_held():
-    """Hold SIGINT in the block; yields ``deliver`` that passes a held one on to the handler
-    that was in place before (the default one raises KeyboardInterrupt)."""
+    """Hold SIGINT in the block, then hand every press on to the handler that was in place
+    before (the default one raises KeyboardInterrupt), also when the block raised."""
     held: list = []
     previous = signal.signal(signal.SIGINT, lambda *a: held.append(a))
-
-    def deliver() -> None:
-        if not held:
-            return
-        if callable(previous):
-            previous(*held[0])
-        elif previous != signal.SIG_IGN:
-            raise KeyboardInterrupt
-
     try:
-        yield deliver
+        yield
     finally:
         signal.signal(signal.SIGINT, previous)
+        for args in held:
+            if callable(previous):
+                previous(*args)
+            elif previous != signal.SIG_IGN:
+                raise KeyboardInterrupt
 
 
 @_jit

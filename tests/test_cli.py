@@ -227,6 +227,27 @@ def test_score_mixed_meters_flow_to_the_file_show_and_simulate(site, capsys):
     np.testing.assert_array_equal(again.positions_m[:5], stored.positions_m)
 
 
+def test_rerun_from_a_layout_that_estimated_other_parameters_says_so(site, capsys):
+    # With a fair-weather background to estimate, the old layout's x and vector meters made
+    # its horizontal components estimable; the new plan's vertical meters cannot see them. The
+    # two log-determinants are over different parameter sets: the summary must not compare them.
+    text = TINY + "\n[background]\nfield_v_per_m = [0.0, 0.0, -120.0]\nestimate = true\n"
+    (site / "bg.toml").write_text(text)
+    (site / "mixed.csv").write_text(MIXED)
+    code, _, err = run(capsys, "score", site / "bg.toml", "--layout", site / "mixed.csv",
+                       "--out", site / "m.h5")  # fmt: skip
+    assert code == 0, err
+    assert "bg.x_v_per_m" in read_result(site / "m.h5").score.names
+    code, out, err = run(capsys, "plan", site / "bg.toml", "--from", site / "m.h5",
+                         "--out", site / "p.h5")  # fmt: skip
+    assert code == 0, err
+    flat = " ".join(out.split())
+    assert "not rescored" in flat and "not comparable" in flat
+    assert "new vs old" not in flat
+    changes = read_result(site / "p.h5").changes
+    assert np.isnan(changes.old_rescored) and "not comparable" in changes.rescore_note
+
+
 @pytest.mark.parametrize(
     ("csv_text", "message"),
     [

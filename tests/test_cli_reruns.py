@@ -156,6 +156,12 @@ def test_resuming_a_rerun_keeps_the_meters_it_installed(planned):
     kept = new.positions_m[new.installed]
     np.testing.assert_array_equal(again.positions_m[again.installed], kept)
     assert again.value >= new.value  # the resumed search starts from the stored layout
+    # simulate and plot rebuild the problem from the file: with the same installed meters, the
+    # bounds a simulation quotes are the stored ones (they once dropped the kept meters).
+    assert main(["simulate", "new.h5", "--trials", "3"]) == 0
+    sim = read_result("new.h5").simulation
+    s0 = int(np.flatnonzero(sim.scenarios == 0)[0])
+    np.testing.assert_allclose(sim.crb_std[s0], new.crb_std[0], rtol=1e-12)
 
 
 def test_rerun_from_old_start_reports_changes(planned):

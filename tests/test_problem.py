@@ -609,3 +609,19 @@ def test_least_squares_fits_attain_the_cramer_rao_bound():
     p = truth.size
     maha = np.einsum("ni,ij,nj->n", err, fisher, err)
     assert abs(maha.mean() - p) < 4.0 * math.sqrt(2.0 * p / n)
+
+
+def test_installed_meters_alone_are_scored_with_their_single_failures():
+    # count = 0 is allowed when meters are installed (scoring what a site already has); the
+    # single-failure values then drop one installed meter at a time. Reference: the finite-
+    # difference Fisher information (Kay, §3.9) of the meters that remain.
+    installed = "".join(
+        f"[[probes.installed]]\nposition_m = [{x}, {y}, 0.0]\n"
+        for x, y in ((-4000.0, -3500.0), (3500.0, -3000.0), (0.0, 500.0), (-3000.0, 4000.0))
+    )
+    cfg = make_config(count=0, extra=installed, ground=False)
+    problem = build_problem(cfg)
+    score = problem.score(np.empty((0, 3)))
+    assert score.failure_values.shape == (4,)
+    full = fisher_by_differences(problem, np.empty((0, 3)), np.empty(0))
+    assert_fisher_close(score.fisher, full)

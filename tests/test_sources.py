@@ -592,6 +592,23 @@ def test_ctrl_c_during_a_first_compiled_call_is_held_until_it_returns():
         sources._call_compiled(first_call, 21)
     assert done == [21]  # the call ran to its end first
     assert signal.getsignal(signal.SIGINT) is before
+    # Every press reaches the handler in place (the CLI's: the first asks the search to stop,
+    # a second ends the run), in order, after the call.
+    presses = []
+    try:
+        signal.signal(signal.SIGINT, lambda *a: presses.append(len(done)))
+
+        def pressed_twice(x):
+            signal.raise_signal(signal.SIGINT)
+            signal.raise_signal(signal.SIGINT)
+            done.append(x)
+
+        pressed_twice.signatures = []
+        sources._call_compiled(pressed_twice, 5)
+        assert presses == [2, 2]
+    finally:
+        signal.signal(signal.SIGINT, before)
+    done[:] = [21]
     first_call.signatures = ["(int64,)"]  # loaded: no handler is installed around later calls
     with pytest.raises(KeyboardInterrupt):
         sources._call_compiled(first_call, 1)
