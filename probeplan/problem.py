@@ -139,7 +139,6 @@ class Problem:
     names: tuple[str, ...]
     criterion: Criterion
     aggregate: str
-    noise: Noise  # of the new meters (a budget grade replaces it)
     count: int
     new_axes: np.ndarray  # (n_axes, 3)
     new_gain: float
@@ -149,8 +148,13 @@ class Problem:
     installed_grade: tuple[str, ...]  # each installed meter's grade, kept whatever is bought
     site: object
     fisher_installed: np.ndarray  # (n_scenarios, n_params, n_params)
-    grades: dict = field(default_factory=dict)  # grade name -> Noise; "" is [probes]' own
-    new_grade: str = ""  # the name of ``noise`` in ``grades``
+    grades: dict  # grade name -> Noise; "" is [probes]' own
+    new_grade: str  # the new meters' grade in ``grades`` ("" or a budget's grade)
+
+    @property
+    def noise(self) -> Noise:
+        """The grade of the new meters (``[probes]``, or the budget's grade)."""
+        return self.grades[self.new_grade]
 
     @property
     def n_params(self) -> int:
@@ -595,7 +599,6 @@ def build_problem(
         names=tuple(est),
         criterion=criterion,
         aggregate=config.design.aggregate,
-        noise=grades[new_grade],
         count=pr.count if count is None else int(count),
         new_axes=component_axes(pr.component),
         new_gain=float(pr.gain),

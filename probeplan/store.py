@@ -157,16 +157,25 @@ def write_result(result: Result, path: str | os.PathLike, *, force: bool = False
         The file exists (without ``force``), the path is a folder, its folder is missing, or
         the file cannot be created there.
     """
-    target = Path(os.fspath(path))
-    check_writable(target, force=force)
-    tmp = target.with_name(f".{target.name}.tmp-{os.getpid()}")
-    try:
+    target = check_writable(path, force=force)
+
+    def write(tmp: Path) -> None:
         with h5py.File(tmp, "w") as f:
             _write(f, result)
+
+    return _write_atomically(target, write, "the result file")
+
+
+def _write_atomically(target: Path, write: Callable[[Path], None], what: str) -> Path:
+    """``write`` a temporary file beside ``target``, then rename it to ``target``: a reader
+    sees the old file or the whole new one, never half of it."""
+    tmp = target.with_name(f".{target.name}.tmp-{os.getpid()}")
+    try:
+        write(tmp)
         os.replace(tmp, target)
     except OSError as exc:
         _remove_quietly(tmp)
-        raise InputError(f"{target}: cannot write the result file: {_os_reason(exc)}.") from None
+        raise InputError(f"{target}: cannot write {what}: {_os_reason(exc)}.") from None
     except BaseException:
         # Never leave a half-written temporary behind, whatever stopped the write.
         _remove_quietly(tmp)
@@ -241,8 +250,8 @@ def write_layout_csv(result: Result, path: str | os.PathLike, *, force: bool = F
         x, y, z = (repr(float(v)) for v in s.positions_m[k])
         rows.append([names[k], x, y, z, comp, grade, repr(float(s.gain[k]))])
     title = " ".join(result.title.split()) or "untitled"
-    tmp = target.with_name(f".{target.name}.tmp-{os.getpid()}")
-    try:
+
+    def write(tmp: Path) -> None:
         with open(tmp, "w", encoding="utf-8", newline="") as fh:
             fh.write(
                 f"# new probes of {result.command} '{title}' ({result.config_path}), written "
@@ -251,14 +260,8 @@ def write_layout_csv(result: Result, path: str | os.PathLike, *, force: bool = F
             writer = csv.writer(fh, lineterminator="\n")
             writer.writerow(["name", "x_m", "y_m", "z_m", "component", "grade", "gain"])
             writer.writerows(rows)
-        os.replace(tmp, target)
-    except OSError as exc:
-        _remove_quietly(tmp)
-        raise InputError(f"{target}: cannot write the layout file: {_os_reason(exc)}.") from None
-    except BaseException:
-        _remove_quietly(tmp)
-        raise
-    return target
+
+    return _write_atomically(target, write, "the layout file")
 
 
 def _remove_quietly(path: Path) -> None:
