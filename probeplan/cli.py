@@ -496,6 +496,7 @@ def _cmd_plan(args: argparse.Namespace) -> int:
         complete=outcome.complete,
         extra=extra,
         changes=changes,
+        probe_names=_run_names(config, outcome.score),
     )
     return _finish(result, out, force, args.quiet)
 
@@ -639,6 +640,13 @@ def _grade_names(grades) -> tuple[str, ...] | None:
     return None if grades is None else tuple(g or "" for g in grades)
 
 
+def _run_names(config, score) -> tuple[str, ...]:
+    """Names of a run's probes: its config's installed meters (with those a ``--from-as
+    installed`` run kept, which the stored config text does not list), then new-k."""
+    n_new = int(np.count_nonzero(~np.asarray(score.installed, dtype=bool)))
+    return tuple(p.name for p in config.installed) + tuple(f"new-{k}" for k in range(n_new))
+
+
 def _cmd_budget(args: argparse.Namespace) -> int:
     from .budget import chosen_option, run_budget
     from .result import make_result
@@ -682,6 +690,7 @@ def _cmd_budget(args: argparse.Namespace) -> int:
         extra={"budget_row_scored": float(row)},
         changes=changes,
         notes=(note,),
+        probe_names=_run_names(config, score),
     )
     return _finish(result, out, force, args.quiet)
 

@@ -139,6 +139,9 @@ def test_rerun_with_old_probes_installed_keeps_them_fixed(planned):
     assert added.shape == (4, 3)
     # The new probes respect the new keep-out.
     assert not np.any((added[:, 0] >= 0) & (added[:, 1] >= 0))
+    # The kept meters keep the names they were given (the summary and the file agree).
+    names = [n for n, inst in zip(new.probe_names, new.score.installed, strict=True) if inst]
+    assert names[0] == "mast" and names[1:] == [f"kept-{k}" for k in range(1, 5)]
     assert new.changes.mode == "installed"
     assert new.changes.added_m.shape[0] == 4 and new.changes.removed_m.shape[0] == 0
     # More probes, same site: the information can only grow (Loewner order), so does d.
