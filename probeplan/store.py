@@ -597,6 +597,12 @@ def _read(r: _Reader) -> Result:
     extra = {}
     if r.has("extra"):
         extra = {str(k): float(v) for k, v in r.f["extra"].attrs.items()}
+    row = int(extra.get("budget_row_scored", -1))
+    if score.grade is None and budget is not None and 0 <= row < len(budget.grade):
+        # Written before each meter's grade was stored: the new meters of a budget result are
+        # of the scored row's grade, installed ones of [probes]' (the only ones there were).
+        grade = tuple("" if inst else str(budget.grade[row]) for inst in score.installed)
+        score = dataclasses.replace(score, grade=grade)
     ground = r.f.attrs.get("ground_z_m")
     sections = {}
     if r.has("changes"):

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import struct
 
+import h5py
 import numpy as np
 import pytest
 
@@ -208,6 +209,14 @@ def test_budget_writes_the_table(site, capsys):
     row = b.cheapest if b.cheapest >= 0 else int(np.argmax(b.value))
     np.testing.assert_allclose(res.score.positions_m[~res.score.installed], b.layouts[row])
     assert res.score.value == pytest.approx(b.value[row], rel=1e-9)
+    # Rescoring the file gives its value: its new meters are of the row's grade. Also for a
+    # file written before each meter's grade was stored (the grade comes from the budget row).
+    assert res.score.grade[1:] == (b.grade[row],) * int(b.count[row])
+    with h5py.File(site / "site-budget.h5", "r+") as f:
+        del f["layout/grade"]
+    assert read_result(site / "site-budget.h5").score.grade == res.score.grade
+    assert main(["score", "site.toml", "--from", "site-budget.h5", "--out", "re.h5"]) == 0
+    assert read_result("re.h5").score.value == pytest.approx(res.score.value, rel=1e-12)
 
 
 def test_budget_without_grades_is_bad_input(site, capsys):
