@@ -772,25 +772,24 @@ def _changes(old, old_path: str, mode: str, config, score):
     """
     from .result import Changes, compare_layouts
 
-    old_new = _new_probes(old)
+    old_new = _new_probes(old)  # (may be none: a result of installed meters alone)
     rescored, note = float("nan"), ""
-    if old_new.shape[0]:
-        axes, grades = old.score.new_meters()
-        try:
-            _check_grades(config, str(old_path), grades, None)
-        except InputError as exc:
-            note = f"not rescored: {str(exc).split(': ', 1)[-1]}"
-        if not note:
-            problem = _build_problem(config, count=old_new.shape[0], layout_axes=axes)
-            if problem.names != tuple(score.names):
-                note = (
-                    "not rescored: with the old meters this config would estimate "
-                    f"{', '.join(problem.names)}, not the {', '.join(score.names)} of this run, "
-                    "so the two criteria are not comparable"
-                )
-        if not note:
-            with _as_input_error():
-                rescored = float(problem.score(old_new, _new_gains(old), axes, grades).value)
+    axes, grades = old.score.new_meters()
+    try:
+        _check_grades(config, str(old_path), grades, None)
+    except InputError as exc:
+        note = f"not rescored: {str(exc).split(': ', 1)[-1]}"
+    if not note:
+        problem = _build_problem(config, count=old_new.shape[0], layout_axes=axes)
+        if problem.names != tuple(score.names):
+            note = (
+                "not rescored: with the old meters this config would estimate "
+                f"{', '.join(problem.names)}, not the {', '.join(score.names)} of this run, "
+                "so the two criteria are not comparable"
+            )
+    if not note:
+        with _as_input_error():
+            rescored = float(problem.score(old_new, _new_gains(old), axes, grades).value)
     radius = max(float(config.probes.min_spacing_m), 0.05 * _site_extent(config.site()))
     parts = compare_layouts(old.score.positions_m, score.positions_m, radius)
     return Changes(

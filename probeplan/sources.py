@@ -888,7 +888,8 @@ def _grid_kernel(params, pts, grids, want_jac, out=None):
         wv = w[idx]
         dist = _box_distance(pts, lower, grid.size_m)  # (S, M)
         cell = float(spacing.max())
-        sparse = 10 * wv.size < 27 * np.count_nonzero(base)  # corners far cheaper than nodes
+        # corners far cheaper than quadrature nodes (27 a cell at the 3-node rule)
+        sparse = 10 * wv.size < 27 * np.count_nonzero(base)
         gaps = _GRID_CORNER_GAPS[1] if sparse else _GRID_CORNER_GAPS[0]
         far = (dist >= gaps * _corner_gap_m(idx, spacing)) & (dist >= 10.0 * cell)
         unit = np.zeros((S, M, 3))
@@ -919,6 +920,14 @@ def _grid_kernel(params, pts, grids, want_jac, out=None):
             unit[:, take] = np.where(keep, u, unit[:, take])
             if grad is not None:
                 gr = K_COULOMB * np.stack([g @ wv for g in grad], axis=-1)  # (S, m, 6)
+                if not np.isfinite(gr).all():  # one cheap pass; the rest on the error path
+                    m = int(np.flatnonzero(~np.isfinite(gr).all(axis=(0, 2)))[0])
+                    x = p[m]
+                    raise ValueError(
+                        f"point {take[m]} at ({x[0]:g}, {x[1]:g}, {x[2]:g}) m lies on a corner "
+                        "of a charged grid cell, where the field is finite but its gradient (the "
+                        "Jacobian's centre columns) is infinite; move the point off the corner."
+                    )
                 grad6[:, take] = np.where(keep, gr, grad6[:, take])
         E += unit * mult[:, None, None]
         if jac is None:

@@ -149,6 +149,26 @@ def test_rerun_with_old_probes_installed_keeps_them_fixed(planned):
     assert new.score.value >= planned.score.value
 
 
+def test_rerun_from_a_result_of_installed_meters_alone_rescores_it(site):
+    # count = 0 scores what a site already has; a later plan that adds meters --from that
+    # result compares with it like with any other (it once printed "d = nan").
+    extra = "".join(
+        f"\n[[probes.installed]]\nposition_m = [{x}, {y}, 0.0]\n"
+        for x, y in ((1500.0, 1200.0), (-1200.0, 1500.0), (1000.0, -1500.0), (0.0, 100.0))
+    )
+    text = SITE.format(keepout="").replace("count = 4", "count = 0")
+    text = text.replace(
+        "position_m = [-1500.0, -1000.0, 0.0]\n", "position_m = [-1500.0, -1000.0, 0.0]\n" + extra
+    )
+    (site / "none.toml").write_text(text)
+    (site / "more.toml").write_text(text.replace("count = 0", "count = 2"))
+    assert main(["plan", "none.toml", "--out", "none.h5", "--quiet"]) == 0
+    assert main(["plan", "more.toml", "--from", "none.h5", "--out", "new.h5", "--quiet"]) == 0
+    old, changes = read_result("none.h5").score, read_result("new.h5").changes
+    assert changes.rescore_note == ""
+    assert changes.old_rescored == old.value  # the same meters under the same config
+
+
 def test_resuming_a_rerun_keeps_the_meters_it_installed(planned):
     # A run started with --from-as installed holds more installed meters than its config text
     # lists; resuming it must keep them (it once fell back to the config's one installed meter).

@@ -540,6 +540,18 @@ def test_point_on_a_line_charge_is_named(point, where):
         pp.field(src, [[0.0, 3.0, 1.0], [5.0, 0.0, 1.0], point], ground_z_m=0.0)
 
 
+def test_point_on_a_charged_grid_corner_is_named_when_the_jacobian_is_asked():
+    # Source: the field of a uniformly charged box is finite everywhere, but its gradient
+    # diverges at the box's corners (the ln terms of the closed form, Nagy et al. 2000): the
+    # field alone is fine there, the Jacobian's centre columns are not, and the error names
+    # the point (its index among all points) instead of returning inf.
+    grid = pp.DensityGrid(np.full((2, 2, 2), 1e-6), (0.0, 0.0, 0.0), 1.0)
+    pts = np.array([[3.0, 0.0, 0.0], [0.5, 0.5, 2.5], [0.0, 0.0, 0.0]])
+    assert np.all(np.isfinite(pp.field(grid, pts)))
+    with pytest.raises(ValueError, match=r"point 2 at \(0, 0, 0\) m lies on a corner of a charged"):
+        pp.field_jacobian(grid, pts)
+
+
 def test_singular_point_index_is_global_across_blocks_and_scenarios():
     # Source: the contract (the error names the point); points are processed in blocks, so a
     # point far down the list checks the index bookkeeping. Scenario 2 moves charge 7 onto it.
