@@ -380,9 +380,9 @@ KINDS: dict[str, type] = {
 # --------------------------------------------------------------------------------------------
 
 
-def _blocks(n_points: int, per_point: int, elements: int | None = None):
+def _blocks(n_points: int, per_point: int):
     """Yield slices of points so that one block's temporaries hold ~_BLOCK_ELEMENTS numbers."""
-    step = max(1, (elements or _BLOCK_ELEMENTS) // max(per_point, 1))
+    step = max(1, _BLOCK_ELEMENTS // max(per_point, 1))
     for start in range(0, n_points, step):
         yield slice(start, min(start + step, n_points))
 
@@ -688,10 +688,16 @@ def _check_not_on_charge(mask: np.ndarray, pts_block: np.ndarray, blk: slice, wh
         _raise_on_charge(blk.start + m, pts_block[m], what)
 
 
-def _raise_on_charge(index: int, point: np.ndarray, what: str) -> None:
+_INFINITE_FIELD = (
+    "the field is infinite; move the point or use a finite-size source (sphere, gaussian)."
+)
+
+
+def _raise_on_charge(index: int, point: np.ndarray, what: str, why: str = _INFINITE_FIELD) -> None:
+    """One ValueError naming point ``index`` (among all points) and the singular ``what``."""
     raise ValueError(
         f"point {index} at ({point[0]:g}, {point[1]:g}, {point[2]:g}) m lies on a {what}, where "
-        "the field is infinite; move the point or use a finite-size source (sphere, gaussian)."
+        + why
     )
 
 
@@ -922,12 +928,11 @@ def _grid_kernel(params, pts, grids, want_jac, out=None):
                 gr = K_COULOMB * np.stack([g @ wv for g in grad], axis=-1)  # (S, m, 6)
                 if not np.isfinite(gr).all():  # one cheap pass; the rest on the error path
                     m = int(np.flatnonzero(~np.isfinite(gr).all(axis=(0, 2)))[0])
-                    x = p[m]
-                    raise ValueError(
-                        f"point {take[m]} at ({x[0]:g}, {x[1]:g}, {x[2]:g}) m lies on a corner "
-                        "of a charged grid cell, where the field is finite but its gradient (the "
-                        "Jacobian's centre columns) is infinite; move the point off the corner."
+                    why = (
+                        "the field is finite but its gradient (the Jacobian's centre columns) is "
+                        "infinite; move the point off the corner."
                     )
+                    _raise_on_charge(int(take[m]), p[m], "corner of a charged grid cell", why)
                 grad6[:, take] = np.where(keep, gr, grad6[:, take])
         E += unit * mult[:, None, None]
         if jac is None:
