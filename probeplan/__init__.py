@@ -53,12 +53,9 @@ __all__ = [
 
 def __getattr__(name: str):
     if name == "__version__":
-        from importlib.metadata import PackageNotFoundError, version
+        from ._version import package_version
 
-        try:
-            value = version("probeplan")
-        except PackageNotFoundError:  # running from a source tree that was not installed
-            value = "0.0.0+unknown"
+        value = package_version()
     elif name in _EXPORTS:
         value = getattr(import_module(_EXPORTS[name], __name__), name)
     else:

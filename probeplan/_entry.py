@@ -9,8 +9,7 @@ from __future__ import annotations
 
 import sys
 
-#: Exit status of an interrupted run (128 + SIGINT, the shell convention).
-EXIT_INTERRUPTED = 130
+from .errors import EXIT_INTERRUPTED
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -22,7 +22,7 @@ import numpy as np
 from .config import parse_config
 from .errors import InputError
 from .problem import build_problem
-from .result import BudgetTable
+from .resulttypes import BudgetTable
 from .search import plan
 
 

@@ -37,8 +37,7 @@ from typing import NamedTuple
 import numpy as np
 
 from . import report
-from ._entry import EXIT_INTERRUPTED
-from .errors import InputError
+from .errors import EXIT_INTERRUPTED, InputError
 
 EXIT_OK = 0
 EXIT_INTERNAL = 1
@@ -104,7 +103,7 @@ def _add_from(parser: argparse.ArgumentParser) -> None:
 
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of ``probeplan`` (exposed for documentation and tests)."""
-    from . import __version__
+    from ._version import package_version
 
     parser = _Parser(
         prog="probeplan",
@@ -115,7 +114,7 @@ def build_parser() -> argparse.ArgumentParser:
         ),
         epilog="Exit status: 0 done, 2 bad input, 130 interrupted (plan), 1 internal error.",
     )
-    parser.add_argument("--version", action="version", version=f"probeplan {__version__}")
+    parser.add_argument("--version", action="version", version=f"probeplan {package_version()}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
 
     p = sub.add_parser(

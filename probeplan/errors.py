@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+#: Exit status of an interrupted run (128 + SIGINT, the shell convention).
+EXIT_INTERRUPTED = 130
+
 
 class InputError(ValueError):
     """Bad input from a user: a config, a layout file, an argument.

@@ -26,6 +26,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .resulttypes import Direction
+
 CRITERIA: tuple[str, ...] = ("d", "location", "charge")
 AGGREGATE_NAMES: tuple[str, ...] = ("mean", "worst", "quantile:q")
 
@@ -278,28 +280,6 @@ def d_ratio(value_a: float, value_b: float, n_params: int) -> float:
     if not np.isfinite(value_b):
         return float("inf") if np.isfinite(value_a) else float("nan")
     return float(np.exp((value_a - value_b) / n_params))
-
-
-@dataclass(frozen=True)
-class Direction:
-    """A parameter combination a layout resolves poorly or not at all.
-
-    Attributes
-    ----------
-    weights : (n_params,) float
-        Unit eigenvector of the scaled information (dimensionless, relative changes).
-    relative_eigenvalue : float
-        Its eigenvalue over the largest; 0 for a parameter no reading sees.
-    singular : bool
-        True when the layout cannot resolve it at all.
-    text : str
-        The direction in words.
-    """
-
-    weights: np.ndarray
-    relative_eigenvalue: float
-    singular: bool
-    text: str
 
 
 def unresolved_directions(

@@ -10,14 +10,13 @@ builds the one :class:`Score` result for a single layout.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, replace
 
 import numpy as np
 
 from .errors import InputError
 from .fisher import (
     Criterion,
-    Direction,
     aggregate,
     covariance,
     fisher_from_rows,
@@ -25,6 +24,7 @@ from .fisher import (
 )
 from .forward import BACKGROUND_PARAMS, Scene
 from .probes import Meters, Noise, axes_table, component_axes, stack_meters, whitened_rows
+from .resulttypes import Score
 
 #: Jacobian bytes per chunk of layouts scored together (measured best near 1 MB: a chunk's
 #: arrays stay in the 2 MB per-core cache from the forward model to the criterion).
@@ -58,71 +58,6 @@ def draw_scenarios(config, scene: Scene, rng: np.random.Generator) -> np.ndarray
     for name, lo, hi in ranges:
         theta[1:, index[name]] = rng.uniform(lo, hi, size=n_s - 1)
     return theta
-
-
-@dataclass(frozen=True, eq=False)
-class Score:
-    """How well one layout pins down the estimated parameters.
-
-    Attributes
-    ----------
-    positions_m : (n_probes, 3) float
-        All probes, installed ones first.
-    installed : (n_probes,) bool
-    gain : (n_probes,) float
-    names : tuple of n_params str
-    theta : (n_scenarios, n_params) float
-        Estimated parameters of each scenario.
-    fisher : (n_scenarios, n_params, n_params) float
-    crb_std : (n_scenarios, n_params) float
-        1-sigma Cramér–Rao bounds (+inf where singular).
-    per_scenario : (n_scenarios,) float
-        Criterion of each scenario.
-    value : float
-        The aggregated criterion.
-    criterion, aggregate : str
-    singular : (n_scenarios,) bool
-    saturated : (n_probes,) float
-        Fraction of scenarios in which each probe saturates on some axis.
-    unresolved : list of Direction
-        For the scenario that scores worst (nominal if none is worse).
-    unresolved_scenario : int
-    failure_values : (n_probes,) float or None
-        The criterion with each single probe lost (installed first); the worst entry is the
-        layout's value under a single failure, and its index the probe that matters most.
-    axes : (n_probes, n_axes, 3) float or None
-        What each meter reads (zero rows pad the narrower meters); None in results stored
-        before meters were recorded one by one.
-    grade : tuple of n_probes str or None
-        Each meter's grade ("" for the noise of ``[probes]`` itself); None as for ``axes``.
-    """
-
-    positions_m: np.ndarray
-    installed: np.ndarray
-    gain: np.ndarray
-    names: tuple[str, ...]
-    theta: np.ndarray
-    fisher: np.ndarray
-    crb_std: np.ndarray
-    per_scenario: np.ndarray
-    value: float
-    criterion: str
-    aggregate: str
-    singular: np.ndarray
-    saturated: np.ndarray
-    unresolved: list[Direction] = field(default_factory=list)
-    unresolved_scenario: int = 0
-    failure_values: np.ndarray | None = None
-    axes: np.ndarray | None = None
-    grade: tuple[str, ...] | None = None
-
-    def new_meters(self) -> tuple[np.ndarray | None, tuple[str, ...] | None]:
-        """``(axes, grades)`` of the new probes, as :meth:`Problem.meters` takes them, to score,
-        simulate or draw this layout again; ``(None, None)`` where they were not recorded."""
-        new = ~np.asarray(self.installed, dtype=bool)
-        axes = None if self.axes is None else self.axes[new]
-        grades = None if self.grade is None else tuple(np.asarray(self.grade, dtype=object)[new])
-        return axes, grades
 
 
 @dataclass(frozen=True, eq=False)
@@ -439,27 +374,11 @@ class Problem:
             )
         n_new = pos.shape[0]
         g_new = self.gain_at(pos) if gain is None else np.asarray(gain, dtype=float).reshape(-1)
-        if g_new.shape != (n_new,) or not np.all(np.isfinite(g_new) & (g_new > 0)):
-            raise ValueError(
-                f"`gain` must hold {n_new} finite numbers > 0 (one per new probe); got "
-                f"{np.asarray(gain).tolist()}."
-            )
         if axes is None:
             axes = np.broadcast_to(self.new_axes, (n_new, *self.new_axes.shape))
         axes = np.asarray(axes, dtype=float)
-        if axes.ndim != 3 or axes.shape[0] != n_new or axes.shape[2] != 3:
-            raise ValueError(
-                f"`axes` must have shape ({n_new}, n_axes, 3), one table per new probe; "
-                f"got {axes.shape}."
-            )
         names = (self.new_grade,) * n_new if grades is None else tuple(grades)
-        unknown = [g for g in names if g not in self.grades]
-        if len(names) != n_new or unknown:
-            listed = ", ".join(repr(g) for g in self.grades if g) or "none"
-            raise ValueError(
-                f"`grades` must name {n_new} grades, one per new probe, each '' (the [probes] "
-                f"table) or one of: {listed}; got {list(names)}."
-            )
+        _check_new_meters(n_new, g_new, gain, axes, names, self.grades)
         n_inst = self.installed_m.shape[0]
         return stack_meters(
             np.concatenate([self.installed_m, pos]),
@@ -508,12 +427,8 @@ class Problem:
         )
         per = self.criterion.per_scenario(info, self.theta_est)
         value = float(aggregate(per, self.aggregate, self.criterion.maximise))
-        cov, singular = covariance(info)
-        crb = np.sqrt(np.diagonal(cov, axis1=-2, axis2=-1))
-        worst = int(np.argmin(per) if self.criterion.maximise else np.argmax(per))
-        worst = worst if per[worst] != per[0] else 0
-        unresolved = unresolved_directions(
-            info[worst], self.names, ground=self.scene.ground_z_m is not None
+        crb, singular, worst, unresolved = _bounds_and_worst(
+            info, per, self.criterion, self.names, ground=self.scene.ground_z_m is not None
         )
         return Score(
             positions_m=np.concatenate([self.installed_m, pos]),
@@ -541,6 +456,59 @@ class Problem:
 
 def _any_axis(sat: np.ndarray) -> np.ndarray:
     return np.any(sat, axis=-1)
+
+
+def _check_new_meters(
+    n_new: int, gain_new: np.ndarray, gain, axes: np.ndarray, grades: tuple, known: dict
+) -> None:
+    """Raise ``ValueError`` unless the new meters' gains ``(n_new,)``, axes ``(n_new, n_axes,
+    3)`` and grade names (keys of ``known``) fit ``n_new`` probes; ``gain`` is the argument as
+    the caller gave it, for the message."""
+    if gain_new.shape != (n_new,) or not np.all(np.isfinite(gain_new) & (gain_new > 0)):
+        raise ValueError(
+            f"`gain` must hold {n_new} finite numbers > 0 (one per new probe); got "
+            f"{np.asarray(gain).tolist()}."
+        )
+    if axes.ndim != 3 or axes.shape[0] != n_new or axes.shape[2] != 3:
+        raise ValueError(
+            f"`axes` must have shape ({n_new}, n_axes, 3), one table per new probe; "
+            f"got {axes.shape}."
+        )
+    unknown = [g for g in grades if g not in known]
+    if len(grades) != n_new or unknown:
+        listed = ", ".join(repr(g) for g in known if g) or "none"
+        raise ValueError(
+            f"`grades` must name {n_new} grades, one per new probe, each '' (the [probes] "
+            f"table) or one of: {listed}; got {list(grades)}."
+        )
+
+
+def _bounds_and_worst(
+    info: np.ndarray, per: np.ndarray, criterion: Criterion, names: tuple[str, ...], ground: bool
+) -> tuple[np.ndarray, np.ndarray, int, list]:
+    """Cramér–Rao bounds of one layout and what its worst scenario leaves unresolved.
+
+    Parameters
+    ----------
+    info : (n_scenarios, n_params, n_params) float
+        J of the layout in each scenario.
+    per : (n_scenarios,) float
+        The criterion of each scenario.
+
+    Returns
+    -------
+    crb_std : (n_scenarios, n_params) float
+    singular : (n_scenarios,) bool
+    worst : int
+        The scenario that scores worst; 0 (nominal) when none is worse than it.
+    unresolved : list of Direction
+        Of scenario ``worst``.
+    """
+    cov, singular = covariance(info)
+    crb = np.sqrt(np.diagonal(cov, axis1=-2, axis2=-1))
+    worst = int(np.argmin(per) if criterion.maximise else np.argmax(per))
+    worst = worst if per[worst] != per[0] else 0
+    return crb, singular, worst, unresolved_directions(info[worst], names, ground=ground)
 
 
 def build_problem(

@@ -23,7 +23,7 @@ from rich.text import Text
 
 from .probes import axes_label
 from .result import Result
-from .store import param_unit, probe_names
+from .resulttypes import param_unit, probe_names
 
 #: The line every summary carries under its numbers (the contract asks for it wherever a
 #: field value is printed).

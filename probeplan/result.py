@@ -11,133 +11,11 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .problem import Score
-
-
-@dataclass(frozen=True, eq=False)
-class Baseline:
-    """A reference layout scored beside the plan.
-
-    Attributes
-    ----------
-    name : str
-        e.g. "regular", "best of 1000 random", "greedy", "exchange".
-    value : float
-        Its criterion value.
-    positions_m : (n_probes, 3) float
-        New probes only.
-    """
-
-    name: str
-    value: float
-    positions_m: np.ndarray
-
-
-@dataclass(frozen=True, eq=False)
-class SearchInfo:
-    """How the plan was found.
-
-    Attributes
-    ----------
-    history : (n_evaluations,) float
-        Criterion of each evaluated layout that keeps the mounting rules, in order: the greedy
-        and exchange layouts, a warm start, then every refinement proposal (proposals that
-        break the rules are not recorded). ±inf for a layout that cannot resolve everything.
-    bound : float or None
-        Upper bound on the ``d`` value over the candidate grid (convex relaxation), if computed.
-    bound_gap : float or None
-        Duality gap of the relaxation when it stopped (the bound is the relaxed value + gap).
-    grid_spacing_m : float
-        Spacing of the candidate grid.
-    n_candidates : int
-    baselines : tuple of Baseline
-        Reference layouts (greedy, exchange, regular, best random ...).
-    stages : tuple of (str, float)
-        Criterion after each stage of the search ("greedy", "exchange", "refine"), in order.
-    seconds : float
-        Wall time of the search.
-    objective : str
-        What the search optimised: "criterion", or "worst single loss" when the config asks
-        to tolerate one failed probe (the stage and baseline values are then of that).
-    """
-
-    history: np.ndarray
-    bound: float | None
-    bound_gap: float | None
-    grid_spacing_m: float
-    n_candidates: int
-    baselines: tuple[Baseline, ...] = ()
-    stages: tuple[tuple[str, float], ...] = ()
-    seconds: float = 0.0
-    objective: str = "criterion"
-
-
-@dataclass(frozen=True, eq=False)
-class BudgetTable:
-    """One row per (count, grade) option tried.
-
-    Attributes
-    ----------
-    count : (n_options,) int
-    grade : (n_options,) str
-    cost : (n_options,) float
-    value : (n_options,) float
-    meets_target : (n_options,) bool
-    pareto : (n_options,) bool
-        No other option is both cheaper (or equal) and better.
-    cheapest : int
-        Row of the cheapest option meeting the target, −1 if none.
-    target : float or None
-    layouts : tuple of (n_i, 3) float arrays
-    """
-
-    count: np.ndarray
-    grade: np.ndarray
-    cost: np.ndarray
-    value: np.ndarray
-    meets_target: np.ndarray
-    pareto: np.ndarray
-    cheapest: int
-    target: float | None
-    layouts: tuple[np.ndarray, ...]
-
-
-@dataclass(frozen=True, eq=False)
-class Changes:
-    """What changed against an earlier result (``--from OLD.h5``).
-
-    Attributes
-    ----------
-    old_path : str
-    mode : {"installed", "start", "rescore"}
-        The old probes were kept fixed as installed, used as the search's starting layout, or
-        rescored as they are (``score --from``).
-    old_value : float
-        The criterion stored in the old file (under the old config, named ``old_criterion``).
-    old_rescored : float
-        The old layout scored under the current config (equal to ``old_value`` when nothing
-        changed).
-    kept_m : (n_kept, 3) float
-    moved_from_m, moved_to_m : (n_moved, 3) float
-    added_m : (n_added, 3) float
-    removed_m : (n_removed, 3) float
-    old_criterion : str
-    rescore_note : str
-        Why ``old_rescored`` is NaN when the old layout cannot be scored comparably under the
-        current config ("" otherwise).
-    """
-
-    old_path: str
-    mode: str
-    old_value: float
-    old_rescored: float
-    kept_m: np.ndarray
-    moved_from_m: np.ndarray
-    moved_to_m: np.ndarray
-    added_m: np.ndarray
-    removed_m: np.ndarray
-    old_criterion: str = ""
-    rescore_note: str = ""
+# The sections live in the leaf module so that the stages that make them need not import
+# this one; they are importable from here too.
+from ._version import package_version
+from .resulttypes import Baseline as Baseline
+from .resulttypes import BudgetTable, Changes, Score, SearchInfo
 
 
 def compare_layouts(
@@ -249,15 +127,13 @@ def make_result(
     notes: tuple[str, ...] = (),
 ) -> Result:
     """Build the one :class:`Result` of a command from its config and outputs."""
-    from . import __version__
-
     return Result(
         command=command,
         config_text=config.text,
         config_path=str(config.path),
         title=config.title,
         seed=int(config.seed),
-        version=__version__,
+        version=package_version(),
         created_utc=_dt.datetime.now(_dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
         caution=getattr(config, "caution", "none"),
         ground_z_m=config.ground_z_m,

@@ -35,8 +35,8 @@ import numpy as np
 
 from .errors import InputError
 from .fisher import aggregate, d_ratio
-from .problem import Problem, Score
-from .result import Baseline, SearchInfo
+from .problem import Problem
+from .resulttypes import Baseline, Score, SearchInfo
 
 #: Prior information, as a fraction of the mean diagonal of one candidate's information,
 #: that keeps log det finite while the greedy set is still too small to resolve everything.

@@ -53,7 +53,6 @@ import difflib
 import math
 import os
 import tempfile
-import tomllib
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
@@ -61,73 +60,26 @@ from pathlib import Path
 import h5py
 import numpy as np
 
+from ._version import package_version
 from .errors import InputError
-from .fisher import Direction
-from .problem import Score
-from .result import Baseline, BudgetTable, Changes, Result, SearchInfo
+from .result import Result
+from .resulttypes import (
+    Baseline,
+    BudgetTable,
+    Changes,
+    Direction,
+    Score,
+    SearchInfo,
+    param_unit,
+    probe_names,
+    value_unit,
+)
 
 #: The sign convention every stored field value follows (root attr ``sign_convention``).
 SIGN_CONVENTION = "physics: E points away from positive charge"
 
 _STR = h5py.string_dtype()
-_VALUE_UNITS = {"d": "log det, SI", "location": "m", "charge": "1"}
 _FISHER_UNITS = "SI (1/(unit_i unit_j))"
-
-
-# --------------------------------------------------------------------------------------------
-# Units and names
-# --------------------------------------------------------------------------------------------
-
-
-def param_unit(name: str) -> str:
-    """Unit of a parameter from its name's suffix: ``_v_per_m`` → V/m, ``_c`` → C, ``_m`` → m.
-
-    Parameters
-    ----------
-    name : str
-        e.g. ``"s0.charge_c"``, ``"s0.z_m"``, ``"bg.z_v_per_m"``.
-
-    Returns
-    -------
-    str
-        ``"V/m"``, ``"C"``, ``"m"``, or ``"1"`` for a name without a unit suffix.
-    """
-    # `_v_per_m` first: it also ends in `_m`.
-    for suffix, unit in (("_v_per_m", "V/m"), ("_c", "C"), ("_m", "m")):
-        if name.endswith(suffix):
-            return unit
-    return "1"
-
-
-def value_unit(criterion: str) -> str:
-    """Unit of a criterion value: ``"log det, SI"`` (d), ``"m"`` (location), ``"1"`` (charge)."""
-    return _VALUE_UNITS.get(criterion, "1")
-
-
-def probe_names(result: Result) -> tuple[str, ...]:
-    """Names of all probes of a result, installed first.
-
-    Installed probes carry the names their config gives them (``installed-k`` by default); new
-    probes are called ``new-k``, k counting from 0.
-
-    Returns
-    -------
-    tuple of n_probes str
-    """
-    if result.probe_names is not None:
-        return tuple(result.probe_names)
-    installed = np.asarray(result.score.installed, dtype=bool)
-    n_inst = int(installed.sum())
-    names = [f"installed-{k}" for k in range(n_inst)]
-    try:
-        table = tomllib.loads(result.config_text).get("probes", {}).get("installed", [])
-        for k, entry in enumerate(table[:n_inst]):
-            name = entry.get("name") if isinstance(entry, dict) else None
-            if isinstance(name, str) and name:
-                names[k] = name
-    except (tomllib.TOMLDecodeError, AttributeError, TypeError):
-        pass  # the defaults above are the names the config checker would have given
-    return tuple(names) + tuple(f"new-{k}" for k in range(installed.size - n_inst))
 
 
 # --------------------------------------------------------------------------------------------
@@ -287,11 +239,9 @@ def _strings(group: h5py.Group, name: str, values) -> h5py.Dataset:
 
 
 def _write(f: h5py.File, result: Result) -> None:
-    from . import __version__
-
     score = result.score
     f.attrs["probeplan_version"] = result.version
-    f.attrs["written_by_version"] = __version__
+    f.attrs["written_by_version"] = package_version()
     f.attrs["created_utc"] = result.created_utc
     f.attrs["command"] = result.command
     f.attrs["config_toml"] = result.config_text
