@@ -42,11 +42,8 @@ Timings live here only; no test asserts a wall-clock time.
 
 from __future__ import annotations
 
-import sys
-import time
-from pathlib import Path
-
 import numpy as np
+from _common import interleaved, standalone
 
 import probeplan as pp
 from probeplan.sources import K_COULOMB
@@ -103,16 +100,6 @@ def _stream(a: np.ndarray, b: np.ndarray, c: np.ndarray) -> None:
     np.add(a, c, out=c)
 
 
-def _timed(fn) -> float:
-    """Seconds to produce ``fn()``'s result; freeing the result is not counted (it happens when
-    the caller lets go of it, and for a 96 MB array that returns the pages to the system)."""
-    t0 = time.perf_counter()
-    result = fn()
-    elapsed = time.perf_counter() - t0
-    del result
-    return elapsed
-
-
 def run(quick: bool = False) -> dict:
     """Measure the figures; ``quick`` takes fewer repeats of the same case.
 
@@ -142,12 +129,16 @@ def run(quick: bool = False) -> dict:
 
     buf = np.empty((1, N_POINTS, 3, 4 * N_SOURCES))
     scene.evaluate(theta, points, out=buf)  # touch every page once before timing
-    t_stream, t_fwd, t_fresh, t_naive = [], [], [], []
-    for _ in range(repeats):
-        t_stream.append(_timed(lambda: _stream(a, b, c)))
-        t_fwd.append(_timed(lambda: scene.evaluate(theta, points, out=buf)))
-        t_fresh.append(_timed(lambda: scene.evaluate(theta, points)))
-        t_naive.append(_timed(lambda: naive_field_jacobian(charges, centres, points)))
+    times = interleaved(
+        {
+            "stream": lambda: _stream(a, b, c),
+            "forward": lambda: scene.evaluate(theta, points, out=buf),
+            "fresh": lambda: scene.evaluate(theta, points),
+            "naive": lambda: naive_field_jacobian(charges, centres, points),
+        },
+        repeats,
+    )
+    t_stream, t_fwd, t_fresh, t_naive = times.values()
 
     stream_bps = STREAM_BYTES / min(t_stream)
     fwd_bps = out_bytes / min(t_fwd)
@@ -186,7 +177,4 @@ def run(quick: bool = False) -> dict:
 
 
 if __name__ == "__main__":
-    sys.path.insert(0, str(Path(__file__).resolve().parent))
-    from run import standalone
-
     standalone("forward", run)

@@ -34,18 +34,15 @@ scaling_exponent_candidates
 
 from __future__ import annotations
 
-import sys
 import time
-from pathlib import Path
 
 import numpy as np
+from _common import loglog_slope, site_problem, standalone
 
-from probeplan.config import load_config
 from probeplan.fisher import d_ratio
-from probeplan.problem import build_problem
 from probeplan.search import GridObjective, d_efficiency, exchange, greedy, plan
 
-SITE = Path(__file__).resolve().parent / "sites" / "plan10.toml"
+SITE = "plan10.toml"
 CANDIDATE_TARGETS = (500, 1000, 2000, 4000)
 
 
@@ -110,10 +107,7 @@ def _grid_scaling(problem, repeats: int) -> tuple[float, float, str]:
         totals.append(best)
         per_call.append(best / max(calls, 1))
         detail.append(f"{n}: {best:.2f} s/{calls} sweeps")
-    x = np.log(sizes)
-    slope = float(np.polyfit(x, np.log(totals), 1)[0])
-    slope_call = float(np.polyfit(x, np.log(per_call), 1)[0])
-    return slope, slope_call, "; ".join(detail)
+    return loglog_slope(sizes, totals), loglog_slope(sizes, per_call), "; ".join(detail)
 
 
 def run(quick: bool = False) -> dict:
@@ -129,14 +123,9 @@ def run(quick: bool = False) -> dict:
     dict
         Flat figures, plus ``_notes`` (figure → short text) for the table.
     """
-    config = load_config(SITE)
-    problem = build_problem(config)
+    problem = site_problem(SITE, expect=(5, 64, 10))
+    config = problem.config
     n = problem.n_params
-    if (n, problem.n_scenarios, problem.count) != (5, 64, 10):
-        raise RuntimeError(
-            f"{SITE.name} must give 5 parameters, 64 scenarios and 10 probes; got "
-            f"{n}, {problem.n_scenarios}, {problem.count}."
-        )
     runs = [_timed_plan(problem) for _ in range(1 if quick else 3)]
     outcome, _, stages = min(runs, key=lambda r: r[1])
     seconds = min(r[1] for r in runs)
@@ -184,7 +173,4 @@ def run(quick: bool = False) -> dict:
 
 
 if __name__ == "__main__":
-    sys.path.insert(0, str(Path(__file__).resolve().parent))
-    from run import standalone
-
     standalone("plan", run)

@@ -25,26 +25,11 @@ scaling_exponent_scenarios
 
 from __future__ import annotations
 
-import dataclasses
-import sys
-import time
-from pathlib import Path
-
 import numpy as np
+from _common import interleaved, loglog_slope, site_problem, standalone
 
-from probeplan.config import load_config
-from probeplan.problem import build_problem
-
-SITE = Path(__file__).resolve().parent / "sites" / "score8.toml"
+SITE = "score8.toml"
 SCENARIO_COUNTS = (16, 32, 64, 128, 256)
-
-
-def _problem(scenarios: int | None = None):
-    config = load_config(SITE)
-    if scenarios is not None:
-        design = dataclasses.replace(config.design, scenarios=scenarios)
-        config = dataclasses.replace(config, design=design)
-    return build_problem(config)
 
 
 def _reference_values(rows: np.ndarray) -> np.ndarray:
@@ -52,10 +37,6 @@ def _reference_values(rows: np.ndarray) -> np.ndarray:
     info = np.einsum("lsrp,lsrq->lspq", rows, rows)
     sign, logdet = np.linalg.slogdet(info)
     return np.where(sign > 0, logdet, -np.inf).mean(axis=-1)
-
-
-def _best_rate(times: list[float], n: int) -> float:
-    return n / min(times)
 
 
 def run(quick: bool = False) -> dict:
@@ -73,12 +54,7 @@ def run(quick: bool = False) -> dict:
     """
     n_layouts = 2000 if quick else 4000
     repeats = 4 if quick else 9
-    problem = _problem()
-    if (problem.n_params, problem.n_scenarios, problem.count) != (5, 64, 8):
-        raise RuntimeError(
-            f"{SITE.name} must give 5 parameters, 64 scenarios and 8 probes; got "
-            f"{problem.n_params}, {problem.n_scenarios}, {problem.count}."
-        )
+    problem = site_problem(SITE, expect=(5, 64, 8))
     rng = np.random.default_rng(problem.config.seed)
     layouts = problem.site.random_layouts(n_layouts, problem.count, rng)  # (L, 8, 3)
 
@@ -87,33 +63,28 @@ def run(quick: bool = False) -> dict:
     rows = rows.reshape(problem.n_scenarios, n_layouts, -1, problem.n_params)
     rows = np.ascontiguousarray(np.moveaxis(rows, 1, 0))
 
-    ours_t, ref_t = [], []
-    ours = problem.layout_values(layouts[:50])  # warm-up
-    for _ in range(repeats):  # alternate, so that both see the same load
-        t = time.perf_counter()
-        ours = problem.layout_values(layouts)
-        ours_t.append(time.perf_counter() - t)
-        t = time.perf_counter()
-        ref = _reference_values(rows)
-        ref_t.append(time.perf_counter() - t)
+    problem.layout_values(layouts[:50])  # warm-up
+    times = interleaved(
+        {"ours": lambda: problem.layout_values(layouts), "ref": lambda: _reference_values(rows)},
+        repeats,
+    )
+    ours_t, ref_t = times["ours"], times["ref"]
+    ours, ref = problem.layout_values(layouts), _reference_values(rows)
     finite = np.isfinite(ref) & np.isfinite(ours)
     diff = np.abs(ours[finite] - ref[finite]) / np.maximum(np.abs(ref[finite]), 1e-300)
-    rate, ref_rate = _best_rate(ours_t, n_layouts), _best_rate(ref_t, n_layouts)
+    rate, ref_rate = n_layouts / min(ours_t), n_layouts / min(ref_t)
 
     # Scaling with the scenario count: the same layouts, interleaved repeats.
     n_scaling = 400 if quick else 1000
-    problems = {s: _problem(s) for s in SCENARIO_COUNTS}
-    times: dict[int, list[float]] = {s: [] for s in SCENARIO_COUNTS}
+    problems = {s: site_problem(SITE, scenarios=s) for s in SCENARIO_COUNTS}
     sub = layouts[:n_scaling]
     for p in problems.values():
         p.layout_values(sub[:20])  # warm-up
-    for _ in range(3 if quick else 5):
-        for s, p in problems.items():
-            t = time.perf_counter()
-            p.layout_values(sub)
-            times[s].append(time.perf_counter() - t)
+    times = interleaved(
+        {s: (lambda p=p: p.layout_values(sub)) for s, p in problems.items()}, 3 if quick else 5
+    )
     best = np.array([min(times[s]) for s in SCENARIO_COUNTS])
-    slope = float(np.polyfit(np.log(SCENARIO_COUNTS), np.log(best), 1)[0])
+    slope = loglog_slope(SCENARIO_COUNTS, best)
     per_s = ", ".join(
         f"{s}: {n_scaling / b:,.0f}/s" for s, b in zip(SCENARIO_COUNTS, best, strict=True)
     )
@@ -139,7 +110,4 @@ def run(quick: bool = False) -> dict:
 
 
 if __name__ == "__main__":
-    sys.path.insert(0, str(Path(__file__).resolve().parent))
-    from run import standalone
-
     standalone("score", run)
