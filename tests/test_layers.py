@@ -181,3 +181,22 @@ def test_result_types_are_a_light_leaf():
         [sys.executable, "-c", code], capture_output=True, text=True, check=True, cwd=REPO
     )
     assert out.stdout.strip() == ""
+
+
+@pytest.mark.parametrize(
+    ("module", "names"),
+    [
+        ("probeplan.problem", ("Score",)),
+        ("probeplan.fisher", ("Direction",)),
+        ("probeplan.result", ("Baseline", "SearchInfo", "BudgetTable", "Changes", "Score")),
+        ("probeplan.store", ("param_unit", "value_unit", "probe_names")),
+    ],
+)
+def test_result_types_keep_their_old_import_paths(module, names):
+    """Code written before the leaf module existed still finds the same objects."""
+    import importlib
+
+    import probeplan.resulttypes as leaf
+
+    old = importlib.import_module(module)
+    assert [getattr(old, n) is getattr(leaf, n) for n in names] == [True] * len(names)
