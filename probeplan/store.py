@@ -62,6 +62,7 @@ import numpy as np
 
 from ._version import package_version
 from .errors import InputError
+from .probes import COMPONENTS
 from .result import Result
 from .resulttypes import (
     Baseline,
@@ -690,7 +691,6 @@ def free_name(stem: str, folder: str | os.PathLike = ".") -> Path:
 #: Columns a layout CSV may hold; the first three are required.
 LAYOUT_COLUMNS: tuple[str, ...] = ("x_m", "y_m", "z_m", "name", "component", "grade", "gain")
 _REQUIRED = ("x_m", "y_m", "z_m")
-_COMPONENT_NAMES = ("x", "y", "z", "vector")
 
 
 @dataclass(frozen=True, eq=False)
@@ -860,7 +860,7 @@ def _number(name: str, line: int, column: str, text: str, what: str) -> float:
 def _component_cell(name: str, line: int, text: str):
     if not text:
         return None
-    if text in _COMPONENT_NAMES:
+    if text in COMPONENTS:
         return text
     parts = text.replace(";", " ").split()
     try:
