@@ -8,52 +8,23 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from sites import box, make_config, meter_grade, point_source, rectangle
 
 from probeplan.budget import cheapest_meeting, pareto_front, run_budget
-from probeplan.config import parse_config
 from probeplan.errors import InputError
 
 # An invented test site: one point charge over ground, ground meters on a square.
-SITE = """
-title = "budget test site (invented)"
-seed = 3
-[ground]
-z_m = 0.0
-[probes]
-count = 4
-component = "z"
-noise_v_per_m = 20.0
-min_spacing_m = 200.0
-[[region]]
-kind = "rectangle"
-min_m = [-3000.0, -3000.0]
-max_m = [3000.0, 3000.0]
-z_m = 0.0
-[[source]]
-kind = "point"
-charge_c = -20.0
-center_m = [0.0, 0.0, 6000.0]
-estimate = ["charge", "x", "y", "z"]
-center_range_m = [[-1000.0, 1000.0], [-1000.0, 1000.0], [5000.0, 7000.0]]
-[design]
-scenarios = 4
-evaluations = 0
-[[grade]]
-name = "basic"
-noise_v_per_m = 40.0
-cost = 1000.0
-[[grade]]
-name = "fine"
-noise_v_per_m = 10.0
-cost = 3000.0
-[budget]
-counts = [4, 5, 7]
-target = {target}
-"""
+SITE = dict(
+    title="budget test site (invented)",
+    probes={"min_spacing_m": 200.0},
+    region=[rectangle(3000.0)],
+    source=[point_source(center_m=(0.0, 0.0, 6000.0), center_range_m=box(1000.0, 5000.0, 7000.0))],
+    grade=[meter_grade("basic", 40.0, 1000.0), meter_grade("fine", 10.0, 3000.0)],
+)
 
 
 def _config(target: float = -20.0):
-    return parse_config(SITE.format(target=target), "budget-test.toml")
+    return make_config("budget-test.toml", **SITE, budget={"counts": [4, 5, 7], "target": target})
 
 
 @pytest.fixture(scope="module")
@@ -109,8 +80,7 @@ def test_no_option_meets_an_impossible_target():
 
 
 def test_budget_needs_grades_and_a_budget_table():
-    text = SITE.format(target=1.0).split("[[grade]]")[0]
-    cfg = parse_config(text, "nogrades.toml")
+    cfg = make_config("nogrades.toml", **{**SITE, "grade": None})
     with pytest.raises(InputError, match=r"nogrades.toml: `budget` needs a \[budget\] table"):
         run_budget(cfg)
 

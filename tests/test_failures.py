@@ -4,65 +4,44 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from sites import box, make_config, point_source, rectangle
 
-from probeplan.config import parse_config
 from probeplan.problem import build_problem
 from probeplan.search import plan
 
+
 # An invented site: ground meters under a charge at 3 km, one installed meter on a mast.
-SITE = """
-title = "failure test site (invented)"
-seed = 11
-[ground]
-z_m = 0.0
-[probes]
-count = 6
-component = "z"
-noise_v_per_m = 20.0
-relative_noise = 0.02
-min_spacing_m = 200.0
-[[probes.installed]]
-name = "mast"
-position_m = [-1500.0, -1200.0, 10.0]
-component = "{mast_component}"
-gain = 2.0
-[[region]]
-kind = "rectangle"
-min_m = [-3000.0, -3000.0]
-max_m = [3000.0, 3000.0]
-z_m = 0.0
-[[source]]
-kind = "point"
-charge_c = -15.0
-center_m = [200.0, -100.0, 3000.0]
-estimate = ["charge", "x", "y", "z"]
-center_range_m = [[-800.0, 800.0], [-800.0, 800.0], [2500.0, 3500.0]]
-[background]
-field_v_per_m = [0.0, 0.0, -120.0]
-[design]
-criterion = "{criterion}"
-aggregate = "{aggregate}"
-scenarios = 6
-evaluations = {evaluations}
-random_layouts = 20
-tolerate_failures = {tolerate}
-grid_spacing_m = 400.0
-"""
-
-
-def _text(criterion="d", aggregate="mean", tolerate=0, evaluations=0, mast="z"):
-    return SITE.format(
-        criterion=criterion,
-        aggregate=aggregate,
-        tolerate=tolerate,
-        evaluations=evaluations,
-        mast_component=mast,
+def _site(criterion="d", aggregate="mean", tolerate=0, evaluations=0, mast="z") -> dict:
+    mast_meter = {"name": "mast", "position_m": [-1500.0, -1200.0, 10.0], "component": mast}
+    return dict(
+        title="failure test site (invented)",
+        seed=11,
+        probes={
+            "count": 6,
+            "relative_noise": 0.02,
+            "min_spacing_m": 200.0,
+            "installed": [{**mast_meter, "gain": 2.0}],
+        },
+        region=[rectangle(3000.0)],
+        source=[
+            point_source(-15.0, (200.0, -100.0, 3000.0), center_range_m=box(800.0, 2500.0, 3500.0))
+        ],
+        background={"field_v_per_m": [0.0, 0.0, -120.0]},
+        design={
+            "criterion": criterion,
+            "aggregate": aggregate,
+            "scenarios": 6,
+            "evaluations": evaluations,
+            "random_layouts": 20,
+            "tolerate_failures": tolerate,
+            "grid_spacing_m": 400.0,
+        },
     )
 
 
 def _problem(criterion="d", aggregate="mean", tolerate=0, evaluations=0, mast="z"):
-    text = _text(criterion, aggregate, tolerate, evaluations, mast)
-    return build_problem(parse_config(text, "failures.toml"))
+    site = _site(criterion, aggregate, tolerate, evaluations, mast)
+    return build_problem(make_config("failures.toml", **site))
 
 
 LAYOUT = np.array(
@@ -86,9 +65,9 @@ def test_single_failure_scores_match_brute_force(criterion, aggregate):
     assert losses.shape == (1 + len(LAYOUT),)
     # Brute force: rebuild the layout without probe i and score it from scratch. Losing the
     # installed mast is a config without it; losing a new probe is a layout without that row.
-    text = _text(criterion, aggregate)
-    no_mast = text.split("[[probes.installed]]")[0] + "[[region]]" + text.split("[[region]]", 1)[1]
-    bare = build_problem(parse_config(no_mast, "no-mast.toml"))
+    site = _site(criterion, aggregate)
+    del site["probes"]["installed"]
+    bare = build_problem(make_config("no-mast.toml", **site))
     expected = [bare.score(LAYOUT).value]
     for i in range(len(LAYOUT)):
         expected.append(problem.score(np.delete(LAYOUT, i, axis=0)).value)

@@ -3,67 +3,46 @@
 from __future__ import annotations
 
 import numpy as np
+from sites import make_config, meter_grade, point_source, rectangle
 
-from probeplan.config import parse_config
 from probeplan.problem import build_problem
 from probeplan.search import plan
 
-# An invented test site; placeholders are filled per test.
-BASE = """
-seed = 4
-[ground]
-z_m = 0.0
-[probes]
-count = {count}
-component = {component}
-noise_v_per_m = 20.0
-min_spacing_m = {spacing}
-{installed}
-[[region]]
-kind = "rectangle"
-min_m = [-3000.0, -3000.0]
-max_m = [3000.0, 3000.0]
-z_m = 0.0
-[[source]]
-{source}
-{background}
-[design]
-scenarios = 3
-evaluations = 0
-random_layouts = 10
-grid_spacing_m = 500.0
-{grades}
-"""
 
-POINT = """kind = "point"
-charge_c = -20.0
-center_m = [0.0, 0.0, 4000.0]
-estimate = ["charge", "x", "y", "z"]"""
-
-
+# An invented test site; arguments vary it per test.
 def _config(
-    count=4, component='"z"', spacing=0.0, installed="", source=POINT, background="", grades=""
+    count=4, component="z", spacing=0.0, installed=(), source=None, background=None, grades=None
 ):
-    text = BASE.format(
-        count=count,
-        component=component,
-        spacing=spacing,
-        installed=installed,
-        source=source,
+    site = dict(
+        seed=4,
+        title=None,
+        probes={"count": count, "component": component, "min_spacing_m": spacing},
+        region=[rectangle(3000.0)],
+        source=[source or point_source(center_m=(0.0, 0.0, 4000.0))],
         background=background,
-        grades=grades,
+        design={
+            "scenarios": 3,
+            "evaluations": 0,
+            "random_layouts": 10,
+            "grid_spacing_m": 500.0,
+        },
+        grade=grades,
     )
-    return parse_config(text, "review.toml")
+    if installed:
+        site["probes"]["installed"] = list(installed)
+    return make_config("review.toml", **site)
 
 
 def test_plan_survives_a_parameter_no_candidate_can_see():
     # Outside a uniform ball the field does not depend on its radius (shell theorem), so no
     # layout of outside probes resolves it: the relaxation used to crash on its singular start.
-    ball = """kind = "sphere"
-charge_c = -20.0
-center_m = [0.0, 0.0, 4000.0]
-radius_m = 500.0
-estimate = ["charge", "z", "radius"]"""
+    ball = {
+        "kind": "sphere",
+        "charge_c": -20.0,
+        "center_m": [0.0, 0.0, 4000.0],
+        "radius_m": 500.0,
+        "estimate": ["charge", "z", "radius"],
+    }
     outcome = plan(build_problem(_config(source=ball)), random_layouts=0)
     assert outcome.info.bound == -np.inf
     assert outcome.score.value == -np.inf
@@ -72,8 +51,8 @@ estimate = ["charge", "z", "radius"]"""
 
 def test_tilted_meters_estimate_only_the_background_they_can_separate():
     # Every reading sees 0.6 B_y + 0.8 B_z: one number, so one background component.
-    bg = "[background]\nfield_v_per_m = [0.0, 0.0, -120.0]\nestimate = true"
-    problem = build_problem(_config(count=6, component="[0.0, 0.6, 0.8]", background=bg))
+    bg = {"field_v_per_m": [0.0, 0.0, -120.0], "estimate": True}
+    problem = build_problem(_config(count=6, component=[0.0, 0.6, 0.8], background=bg))
     assert [n for n in problem.names if n.startswith("bg.")] == ["bg.z_v_per_m"]
     layout = np.array(
         [
@@ -92,18 +71,15 @@ def test_tilted_meters_estimate_only_the_background_they_can_separate():
         _config(
             count=6,
             background=bg,
-            installed='[[probes.installed]]\nposition_m = [100.0, 0.0, 0.0]\ncomponent = "x"',
+            installed=[{"position_m": [100.0, 0.0, 0.0], "component": "x"}],
         )
     )
     assert [n for n in both.names if n.startswith("bg.")] == ["bg.x_v_per_m", "bg.z_v_per_m"]
 
 
 def test_a_budget_grade_does_not_change_the_installed_meters():
-    grades = """[[grade]]
-name = "coarse"
-noise_v_per_m = 200.0
-cost = 1.0"""
-    inst = "[[probes.installed]]\nposition_m = [500.0, 500.0, 0.0]"
+    grades = [meter_grade("coarse", 200.0, 1.0)]
+    inst = [{"position_m": [500.0, 500.0, 0.0]}]
     cfg = _config(installed=inst, grades=grades)
     plain = build_problem(cfg)
     coarse = build_problem(cfg, grade=cfg.grades[0])
@@ -126,27 +102,16 @@ def test_the_automatic_grid_is_not_finer_than_the_field_changes():
     # An 18 m rail 3-7 m from a charge: the count target alone gave 1.2 cm spacing.
     from probeplan.search import GRID_FRACTION_OF_DISTANCE, _candidates
 
-    text = """
-seed = 1
-[ground]
-z_m = 0.0
-[probes]
-count = 3
-component = "vector"
-noise_v_per_m = 50.0
-[[region]]
-kind = "segment"
-start_m = [-9.0, 5.0, 2.5]
-end_m = [9.0, 5.0, 2.5]
-[[source]]
-kind = "point"
-charge_c = 2e-6
-center_m = [0.0, 0.0, 3.0]
-estimate = ["charge", "x", "y", "z"]
-[design]
-scenarios = 2
-"""
-    problem = build_problem(parse_config(text, "rail.toml"))
+    rail = {"kind": "segment", "start_m": [-9.0, 5.0, 2.5], "end_m": [9.0, 5.0, 2.5]}
+    site = dict(
+        seed=1,
+        title=None,
+        probes={"count": 3, "component": "vector", "noise_v_per_m": 50.0},
+        region=[rail],
+        source=[point_source(2e-6, (0.0, 0.0, 3.0))],
+        design={"scenarios": 2, "evaluations": None},
+    )
+    problem = build_problem(make_config("rail.toml", **site))
     cand = _candidates(problem, None, 1500)
     dist = np.linalg.norm(cand.positions_m - [0.0, 0.0, 3.0], axis=1)
     # A segment is split into equal steps, so the spacing may come out a little under the

@@ -1,0 +1,109 @@
+"""One test site for the whole suite, built from a mapping, and overrides for what differs.
+
+The base is a small fictional storm-watch site: a ground plane at z = 0, a 4 km square of
+flush ground meters reading E_z, and one point charge of -20 C three kilometres up whose charge
+and position are estimated, drawn from a 1 km box around its nominal place. A test states only
+what its site needs beyond that, as overrides:
+
+* ``site_mapping(probes={"count": 6})`` merges into a table; ``None`` removes a key or a table
+  (``ground=None`` is free space, ``probes={"min_spacing_m": None}``);
+* any other value (a number, a list of tables) replaces the base's.
+
+:func:`make_config` checks the mapping through :func:`probeplan.config.config_from_mapping`, the
+same checks a file goes through; :func:`write_site` writes it as a TOML file for the CLI.
+The numbers are invented for the tests, not taken from any real installation.
+"""
+
+from __future__ import annotations
+
+import copy
+from pathlib import Path
+from typing import Any
+
+from probeplan.config import Config, config_from_mapping
+from probeplan.config.render import mapping_to_toml
+
+#: Every position parameter and the charge of a source.
+ALL = ("charge", "x", "y", "z")
+
+
+def rectangle(half_m: float, z_m: float = 0.0, **keys: Any) -> dict:
+    """A horizontal square ``[-half_m, half_m]²`` at ``z_m``; ``keys`` adds e.g. ``gain``."""
+    return {
+        "kind": "rectangle",
+        "min_m": [-half_m, -half_m],
+        "max_m": [half_m, half_m],
+        "z_m": z_m,
+        **keys,
+    }
+
+
+def box(half_m: float, z_lo_m: float, z_hi_m: float) -> list[list[float]]:
+    """A ``center_range_m`` of ±``half_m`` in x and y and ``[z_lo_m, z_hi_m]`` in z."""
+    return [[-half_m, half_m], [-half_m, half_m], [z_lo_m, z_hi_m]]
+
+
+def point_source(
+    charge_c: float = -20.0,
+    center_m: tuple[float, float, float] = (0.0, 0.0, 3000.0),
+    estimate: tuple[str, ...] = ALL,
+    **keys: Any,
+) -> dict:
+    """A ``[[source]]`` point charge; ``keys`` adds e.g. ``center_range_m``."""
+    return {
+        "kind": "point",
+        "charge_c": charge_c,
+        "center_m": list(center_m),
+        "estimate": list(estimate),
+        **keys,
+    }
+
+
+def meter_grade(name: str, noise_v_per_m: float, cost: float, **keys: Any) -> dict:
+    """A ``[[grade]]``; ``keys`` adds e.g. ``relative_noise``."""
+    return {"name": name, "noise_v_per_m": noise_v_per_m, **keys, "cost": cost}
+
+
+BASE: dict[str, Any] = {
+    "title": "Test site (fictional)",
+    "seed": 3,
+    "ground": {"z_m": 0.0},
+    "probes": {"count": 4, "component": "z", "noise_v_per_m": 20.0},
+    "region": [rectangle(2000.0)],
+    "source": [point_source(center_range_m=box(500.0, 2500.0, 3500.0))],
+    "design": {"scenarios": 4, "evaluations": 0},
+}
+
+
+def _merge(base: dict, overrides: dict) -> dict:
+    out = copy.deepcopy(base)
+    for key, value in overrides.items():
+        if value is None:
+            out.pop(key, None)
+        elif isinstance(value, dict) and isinstance(out.get(key), dict):
+            out[key] = _merge(out[key], value)
+        else:
+            out[key] = copy.deepcopy(value)
+    return out
+
+
+def site_mapping(**overrides: Any) -> dict:
+    """The base site with ``overrides`` applied (see the module docstring)."""
+    return _merge(BASE, overrides)
+
+
+def make_config(path: str = "<test site>", **overrides: Any) -> Config:
+    """The checked config of ``site_mapping(**overrides)``; ``path`` is named in messages."""
+    return config_from_mapping(site_mapping(**overrides), path)
+
+
+def site_toml(**overrides: Any) -> str:
+    """``site_mapping(**overrides)`` as TOML text."""
+    return mapping_to_toml(site_mapping(**overrides), "<test site>")
+
+
+def write_site(path: str | Path, **overrides: Any) -> Path:
+    """Write ``site_mapping(**overrides)`` as a TOML file at ``path``; returns the path."""
+    path = Path(path)
+    path.write_text(site_toml(**overrides), encoding="utf-8")
+    return path
