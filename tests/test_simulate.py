@@ -21,53 +21,40 @@ from __future__ import annotations
 import numpy as np
 import pytest
 from scipy import stats
+from sites import box, make_config, point_source, rectangle
 
-from probeplan.config import parse_config
 from probeplan.problem import build_problem
 from probeplan.simulate import Simulation, default_scenarios, simulate, summary_rows
 
 # A fictional test site: a charge of -50 mC, 400 m above flat ground (a small storm-like cell),
 # ground meters reading E_z on a ring of 600 m, one of them right under the charge, and an
 # installed three-axis meter on a low mast.
-SITE = """
-title = "fictional simulation test site"
-seed = 3
+MAST = {"position_m": [-300.0, 700.0, 10.0], "component": "vector"}
 
-[ground]
-z_m = 0.0
 
-[probes]
-count = 6
-component = "z"
-noise_v_per_m = {noise}
-relative_noise = {relative}
-range_v_per_m = {range}
+def _site(noise=1.0, relative=0.0, range_v_per_m=1e9, scenarios=1, installed=True) -> dict:
+    probes = {
+        "count": 6,
+        "noise_v_per_m": noise,
+        "relative_noise": relative,
+        "range_v_per_m": range_v_per_m,
+    }
+    if installed:
+        probes["installed"] = [MAST]
+    cell = point_source(
+        -0.05,
+        (50.0, -30.0, 400.0),
+        charge_range_c=[-0.08, -0.03],
+        center_range_m=box(200.0, 300.0, 500.0),
+    )
+    return dict(
+        title="fictional simulation test site",
+        probes=probes,
+        region=[rectangle(1000.0)],
+        source=[cell],
+        design={"scenarios": scenarios, "evaluations": None},
+    )
 
-{installed}
-
-[[region]]
-kind = "rectangle"
-min_m = [-1000.0, -1000.0]
-max_m = [1000.0, 1000.0]
-z_m = 0.0
-
-[[source]]
-kind = "point"
-charge_c = -0.05
-center_m = [50.0, -30.0, 400.0]
-estimate = ["charge", "x", "y", "z"]
-charge_range_c = [-0.08, -0.03]
-center_range_m = [[-200.0, 200.0], [-200.0, 200.0], [300.0, 500.0]]
-
-[design]
-scenarios = {scenarios}
-"""
-
-MAST = """
-[[probes.installed]]
-position_m = [-300.0, 700.0, 10.0]
-component = "vector"
-"""
 
 _ANGLES = np.linspace(0.0, 2.0 * np.pi, 6, endpoint=False)
 RING = np.c_[600.0 * np.cos(_ANGLES), 600.0 * np.sin(_ANGLES), np.zeros(6)]
@@ -75,14 +62,8 @@ RING[0] = [0.0, 0.0, 0.0]  # right under the charge: the strongest reading
 
 
 def problem(noise=1.0, relative=0.0, range_v_per_m=1e9, scenarios=1, installed=True):
-    text = SITE.format(
-        noise=noise,
-        relative=relative,
-        range=range_v_per_m,
-        scenarios=scenarios,
-        installed=MAST if installed else "",
-    )
-    return build_problem(parse_config(text, "<simulation test>"))
+    site = _site(noise, relative, range_v_per_m, scenarios, installed)
+    return build_problem(make_config("<simulation test>", **site))
 
 
 def chi2_ok(sum_squares: np.ndarray, dof: int, alpha: float = 1e-3) -> np.ndarray:
@@ -194,9 +175,9 @@ def test_default_scenarios_and_summary_rows():
 
 
 def test_without_location_or_charge_the_flags_say_so():
-    text = SITE.format(noise=1.0, relative=0.0, range=1e9, scenarios=1, installed="")
-    text = text.replace('estimate = ["charge", "x", "y", "z"]', 'estimate = ["z"]')
-    pr = build_problem(parse_config(text))
+    site = _site(installed=False)
+    site["source"][0]["estimate"] = ["z"]
+    pr = build_problem(make_config(**site))
     sim = simulate(pr, RING, trials=3, rng=0)
     assert not sim.has_location and not sim.has_charge
     np.testing.assert_array_equal(sim.location_rms_m, [-1.0])
@@ -231,29 +212,17 @@ def test_fits_with_proportional_noise_are_unbiased():
     # relative noise). Weighted least squares is the ML fit only with σ evaluated at the model
     # (Kay, Fundamentals of Statistical Signal Processing vol. 1, §7.5), which the iterative
     # reweighting does. Invented site: 12 ground meters under a charge at 4 km.
-    text = """
-seed = 2
-[ground]
-z_m = 0.0
-[probes]
-count = 12
-component = "z"
-noise_v_per_m = 5.0
-relative_noise = 0.2
-[[region]]
-kind = "rectangle"
-min_m = [-6000.0, -6000.0]
-max_m = [6000.0, 6000.0]
-z_m = 0.0
-[[source]]
-kind = "point"
-charge_c = -20.0
-center_m = [0.0, 0.0, 4000.0]
-estimate = ["charge", "x", "y", "z"]
-[design]
-scenarios = 1
-"""
-    problem = build_problem(parse_config(text, "bias.toml"))
+    problem = build_problem(
+        make_config(
+            "bias.toml",
+            seed=2,
+            title=None,
+            probes={"count": 12, "noise_v_per_m": 5.0, "relative_noise": 0.2},
+            region=[rectangle(6000.0)],
+            source=[point_source(center_m=(0.0, 0.0, 4000.0))],
+            design={"scenarios": 1, "evaluations": None},
+        )
+    )
     g = np.linspace(-5000.0, 5000.0, 4)
     layout = np.array([[x, y, 0.0] for x in g for y in g[:3]])
     trials = 200
