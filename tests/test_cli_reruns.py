@@ -7,75 +7,31 @@ import struct
 import h5py
 import numpy as np
 import pytest
+from sites import meter_grade, write_site
 
 from probeplan.cli import main
 from probeplan.store import read_result
 
 # A tiny invented site (fictional numbers): every command runs in seconds.
-SITE = """title = "Rerun test site (fictional)"
-seed = 5
-
-[ground]
-z_m = 0.0
-
-[probes]
-count = 4
-component = "z"
-noise_v_per_m = 20.0
-min_spacing_m = 300.0
-
-[[probes.installed]]
-name = "mast"
-position_m = [-1500.0, -1000.0, 0.0]
-
-[[region]]
-kind = "rectangle"
-min_m = [-2000.0, -2000.0]
-max_m = [2000.0, 2000.0]
-z_m = 0.0
-{keepout}
-[[source]]
-kind = "point"
-charge_c = -20.0
-center_m = [0.0, 0.0, 3000.0]
-estimate = ["charge", "x", "y", "z"]
-center_range_m = [[-500.0, 500.0], [-500.0, 500.0], [2500.0, 3500.0]]
-
-[design]
-scenarios = 4
-evaluations = 0
-random_layouts = 10
-grid_spacing_m = 500.0
-
-[[grade]]
-name = "basic"
-noise_v_per_m = 40.0
-cost = 1000.0
-
-[[grade]]
-name = "fine"
-noise_v_per_m = 10.0
-cost = 2500.0
-
-[budget]
-counts = [3, 5]
-target = -30.0
-"""
+MAST = {"name": "mast", "position_m": [-1500.0, -1000.0, 0.0]}
+SITE = dict(
+    title="Rerun test site (fictional)",
+    seed=5,
+    probes={"min_spacing_m": 300.0, "installed": [MAST]},
+    design={"random_layouts": 10, "grid_spacing_m": 500.0},
+    grade=[meter_grade("basic", 40.0, 1000.0), meter_grade("fine", 10.0, 2500.0)],
+    budget={"counts": [3, 5], "target": -30.0},
+)
 
 # A new building appears in the north-east quarter: a keep-out for the rerun.
-BUILDING = """
-[[keepout]]
-kind = "rectangle"
-min_m = [0.0, 0.0]
-max_m = [2000.0, 2000.0]
-"""
+BUILDING = {"kind": "rectangle", "min_m": [0.0, 0.0], "max_m": [2000.0, 2000.0]}
 
 
 @pytest.fixture()
 def site(tmp_path, monkeypatch):
     monkeypatch.chdir(tmp_path)
-    (tmp_path / "site.toml").write_text(SITE.format(keepout=""))
-    (tmp_path / "site2.toml").write_text(SITE.format(keepout=BUILDING))
+    write_site(tmp_path / "site.toml", **SITE)
+    write_site(tmp_path / "site2.toml", **SITE, keepout=[BUILDING])
     return tmp_path
 
 
@@ -152,16 +108,13 @@ def test_rerun_with_old_probes_installed_keeps_them_fixed(planned):
 def test_rerun_from_a_result_of_installed_meters_alone_rescores_it(site):
     # count = 0 scores what a site already has; a later plan that adds meters --from that
     # result compares with it like with any other (it once printed "d = nan").
-    extra = "".join(
-        f"\n[[probes.installed]]\nposition_m = [{x}, {y}, 0.0]\n"
+    extra = [
+        {"position_m": [x, y, 0.0]}
         for x, y in ((1500.0, 1200.0), (-1200.0, 1500.0), (1000.0, -1500.0), (0.0, 100.0))
-    )
-    text = SITE.format(keepout="").replace("count = 4", "count = 0")
-    text = text.replace(
-        "position_m = [-1500.0, -1000.0, 0.0]\n", "position_m = [-1500.0, -1000.0, 0.0]\n" + extra
-    )
-    (site / "none.toml").write_text(text)
-    (site / "more.toml").write_text(text.replace("count = 0", "count = 2"))
+    ]
+    for name, count in (("none.toml", 0), ("more.toml", 2)):
+        probes = {**SITE["probes"], "count": count, "installed": [MAST, *extra]}
+        write_site(site / name, **{**SITE, "probes": probes})
     assert main(["plan", "none.toml", "--out", "none.h5", "--quiet"]) == 0
     assert main(["plan", "more.toml", "--from", "none.h5", "--out", "new.h5", "--quiet"]) == 0
     old, changes = read_result("none.h5").score, read_result("new.h5").changes
@@ -240,8 +193,7 @@ def test_budget_writes_the_table(site, capsys):
 
 
 def test_budget_without_grades_is_bad_input(site, capsys):
-    text = SITE.format(keepout="").split("[[grade]]")[0]
-    (site / "nogrades.toml").write_text(text)
+    write_site(site / "nogrades.toml", **{**SITE, "grade": None, "budget": None})
     assert main(["budget", "nogrades.toml"]) == 2
     err = capsys.readouterr().err
     assert err.startswith("probeplan: error: nogrades.toml:")
@@ -349,11 +301,8 @@ def test_score_notes_rule_breaks_and_keeps_csv_names(site, capsys):
 
 
 def test_plan_refuses_fewer_readings_than_parameters(site, capsys):
-    text = (site / "site.toml").read_text().replace("count = 4", "count = 2")
-    text = text.replace(
-        '[[probes.installed]]\nname = "mast"\nposition_m = [-1500.0, -1000.0, 0.0]', ""
-    )
-    (site / "few.toml").write_text(text)
+    probes = {**SITE["probes"], "count": 2, "installed": None}
+    write_site(site / "few.toml", **{**SITE, "probes": probes})
     assert main(["plan", "few.toml"]) == 2
     err = capsys.readouterr().err
     assert "give 2 readings, which cannot determine 4 estimated parameters" in err
