@@ -7,7 +7,9 @@ what its site needs beyond that, as overrides:
 
 * ``site_mapping(probes={"count": 6})`` merges into a table; ``None`` removes a key or a table
   (``ground=None`` is free space, ``probes={"min_spacing_m": None}``);
-* any other value (a number, a list of tables) replaces the base's.
+* any other value (a number, a list of tables) replaces the base's;
+* layers apply in turn: ``site_mapping(SITE, probes={"count": 5})`` is a test file's own
+  ``SITE`` (a dict of overrides) with five new probes.
 
 :func:`make_config` checks the mapping through :func:`probeplan.config.config_from_mapping`, the
 same checks a file goes through; :func:`write_site` writes it as a TOML file for the CLI.
@@ -87,23 +89,30 @@ def _merge(base: dict, overrides: dict) -> dict:
     return out
 
 
-def site_mapping(**overrides: Any) -> dict:
-    """The base site with ``overrides`` applied (see the module docstring)."""
-    return _merge(BASE, overrides)
+def site_mapping(*layers: dict, **overrides: Any) -> dict:
+    """The base site with each layer of overrides applied in turn, then ``overrides``.
+
+    A layer is a dict of overrides (see the module docstring), e.g. a test file's own site;
+    ``site_mapping(SITE, probes={"count": 5})`` is that site with five new probes.
+    """
+    out = BASE
+    for layer in (*layers, overrides):
+        out = _merge(out, layer)
+    return out
 
 
-def make_config(path: str = "<test site>", **overrides: Any) -> Config:
-    """The checked config of ``site_mapping(**overrides)``; ``path`` is named in messages."""
-    return config_from_mapping(site_mapping(**overrides), path)
+def make_config(path: str = "<test site>", *layers: dict, **overrides: Any) -> Config:
+    """The checked config of ``site_mapping(*layers, **overrides)``; ``path`` names it."""
+    return config_from_mapping(site_mapping(*layers, **overrides), path)
 
 
-def site_toml(**overrides: Any) -> str:
-    """``site_mapping(**overrides)`` as TOML text."""
-    return mapping_to_toml(site_mapping(**overrides), "<test site>")
+def site_toml(*layers: dict, **overrides: Any) -> str:
+    """``site_mapping(*layers, **overrides)`` as TOML text."""
+    return mapping_to_toml(site_mapping(*layers, **overrides), "<test site>")
 
 
-def write_site(path: str | Path, **overrides: Any) -> Path:
-    """Write ``site_mapping(**overrides)`` as a TOML file at ``path``; returns the path."""
+def write_site(path: str | Path, *layers: dict, **overrides: Any) -> Path:
+    """Write ``site_mapping(*layers, **overrides)`` as a TOML file at ``path``; returns it."""
     path = Path(path)
-    path.write_text(site_toml(**overrides), encoding="utf-8")
+    path.write_text(site_toml(*layers, **overrides), encoding="utf-8")
     return path

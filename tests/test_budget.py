@@ -24,7 +24,7 @@ SITE = dict(
 
 
 def _config(target: float = -20.0):
-    return make_config("budget-test.toml", **SITE, budget={"counts": [4, 5, 7], "target": target})
+    return make_config("budget-test.toml", SITE, budget={"counts": [4, 5, 7], "target": target})
 
 
 @pytest.fixture(scope="module")
@@ -80,7 +80,7 @@ def test_no_option_meets_an_impossible_target():
 
 
 def test_budget_needs_grades_and_a_budget_table():
-    cfg = make_config("nogrades.toml", **{**SITE, "grade": None})
+    cfg = make_config("nogrades.toml", SITE, grade=None)
     with pytest.raises(InputError, match=r"nogrades.toml: `budget` needs a \[budget\] table"):
         run_budget(cfg)
 

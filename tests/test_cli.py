@@ -20,6 +20,7 @@ import numpy as np
 import pytest
 from result_builders import make_result, make_simulation
 from rich.console import Console
+from sites import box, meter_grade, point_source, site_toml, write_site
 
 import probeplan.store
 from probeplan import cli, report
@@ -28,54 +29,21 @@ from probeplan.cli import main
 from probeplan.result import Result
 from probeplan.store import read_result, write_result
 
-TINY = """title = "Tiny test site (fictional)"
-seed = 3
+# The tiny site: the shared test site with an installed meter, a charge range and two grades.
+TINY = dict(
+    title="Tiny test site (fictional)",
+    probes={
+        "relative_noise": 0.02,
+        "installed": [{"name": "gatehouse", "position_m": [-1500.0, -1000.0, 0.0]}],
+    },
+    source=[point_source(charge_range_c=[-30.0, -10.0], center_range_m=box(500.0, 2500.0, 3500.0))],
+    design={"random_layouts": 10, "grid_spacing_m": 1000.0},
+    grade=[
+        meter_grade("standard", 20.0, 1000.0, relative_noise=0.02),
+        meter_grade("fine", 5.0, 3000.0, relative_noise=0.01),
+    ],
+)
 
-[ground]
-z_m = 0.0
-
-[probes]
-count = 4
-component = "z"
-noise_v_per_m = 20.0
-relative_noise = 0.02
-
-[[probes.installed]]
-name = "gatehouse"
-position_m = [-1500.0, -1000.0, 0.0]
-
-[[region]]
-kind = "rectangle"
-min_m = [-2000.0, -2000.0]
-max_m = [2000.0, 2000.0]
-z_m = 0.0
-
-[[source]]
-kind = "point"
-charge_c = -20.0
-center_m = [0.0, 0.0, 3000.0]
-estimate = ["charge", "x", "y", "z"]
-charge_range_c = [-30.0, -10.0]
-center_range_m = [[-500.0, 500.0], [-500.0, 500.0], [2500.0, 3500.0]]
-
-[design]
-scenarios = 4
-evaluations = 0
-random_layouts = 10
-grid_spacing_m = 1000.0
-
-[[grade]]
-name = "standard"
-noise_v_per_m = 20.0
-relative_noise = 0.02
-cost = 1000.0
-
-[[grade]]
-name = "fine"
-noise_v_per_m = 5.0
-relative_noise = 0.01
-cost = 3000.0
-"""
 
 LAYOUT = """name,x_m,y_m,z_m
 north,100,1500,0
@@ -85,7 +53,7 @@ west,-1700,300,0
 """
 
 # The Bayesian refinement costs a Gaussian-process fit per step: only one test runs it.
-REFINE = TINY.replace("evaluations = 0", "evaluations = 3")
+REFINE = {"design": {"evaluations": 3}}
 
 CRITERION = re.compile(r"Criterion (\w+) = (\S+)")
 
@@ -99,7 +67,7 @@ def _eighty_columns(monkeypatch):
 
 @pytest.fixture
 def site(tmp_path):
-    (tmp_path / "tiny.toml").write_text(TINY)
+    write_site(tmp_path / "tiny.toml", TINY)
     (tmp_path / "layout.csv").write_text(LAYOUT)
     return tmp_path
 
@@ -231,8 +199,8 @@ def test_rerun_from_a_layout_that_estimated_other_parameters_says_so(site, capsy
     # With a fair-weather background to estimate, the old layout's x and vector meters made
     # its horizontal components estimable; the new plan's vertical meters cannot see them. The
     # two log-determinants are over different parameter sets: the summary must not compare them.
-    text = TINY + "\n[background]\nfield_v_per_m = [0.0, 0.0, -120.0]\nestimate = true\n"
-    (site / "bg.toml").write_text(text)
+    background = {"field_v_per_m": [0.0, 0.0, -120.0], "estimate": True}
+    write_site(site / "bg.toml", TINY, background=background)
     (site / "mixed.csv").write_text(MIXED)
     code, _, err = run(capsys, "score", site / "bg.toml", "--layout", site / "mixed.csv",
                        "--out", site / "m.h5")  # fmt: skip
@@ -273,7 +241,7 @@ def test_score_bad_layout_exits_2(site, capsys, csv_text, message):
 
 
 def test_bad_config_key(site, capsys):
-    (site / "bad.toml").write_text(TINY.replace("evaluations = 0", "evaluation = 0"))
+    write_site(site / "bad.toml", TINY, design={"evaluations": None, "evaluation": 0})
     code, _, err = run(capsys, "plan", site / "bad.toml", "--out", site / "p.h5")
     assert code == 2
     line = one_error_line(err)
@@ -282,7 +250,7 @@ def test_bad_config_key(site, capsys):
 
 
 def test_toml_syntax_error(site, capsys):
-    (site / "bad.toml").write_text(TINY.replace("seed = 3", "seed = = 3"))
+    (site / "bad.toml").write_text(site_toml(TINY).replace("seed = 3", "seed = = 3"))
     code, _, err = run(capsys, "score", site / "bad.toml", "--layout", site / "layout.csv")
     assert code == 2
     assert "bad.toml" in one_error_line(err)
@@ -377,7 +345,7 @@ def test_internal_error(site, capsys, monkeypatch):
 
 def test_plan_writes_a_complete_result_under_the_config_name(site, capsys, monkeypatch):
     monkeypatch.chdir(site)
-    (site / "tiny.toml").write_text(REFINE)
+    write_site(site / "tiny.toml", TINY, REFINE)
     code, out, err = run(capsys, "plan", "tiny.toml")
     assert code == 0, err
     assert "Result written to tiny.h5" in out
@@ -395,7 +363,7 @@ def test_plan_writes_a_complete_result_under_the_config_name(site, capsys, monke
     # Signal handlers are put back after the search.
     assert signal.getsignal(signal.SIGINT) is signal.default_int_handler
 
-    (site / "tiny.toml").write_text(TINY)
+    write_site(site / "tiny.toml", TINY)
     code, out, err = run(capsys, "plan", "tiny.toml", "--quiet")
     assert code == 0, err
     assert out.strip() == "Result written to tiny-2.h5"
@@ -432,7 +400,7 @@ def test_resume_with_a_different_count_is_bad_input(site, capsys, monkeypatch):
     out_file = site / "p.h5"
     monkeypatch.setattr(cli._StopFlag, "__call__", lambda self: True)
     assert run(capsys, "plan", site / "tiny.toml", "--out", out_file)[0] == 130
-    (site / "five.toml").write_text(TINY.replace("count = 4", "count = 5"))
+    write_site(site / "five.toml", TINY, probes={"count": 5})
     code, _, err = run(capsys, "plan", site / "five.toml", "--resume", out_file)
     assert code == 2
     assert "holds 4 new probes but the config asks for [probes] count = 5" in one_error_line(err)
@@ -558,7 +526,7 @@ def test_readable_units(value, unit, text):
     ],
 )
 def test_caution_panels(site, capsys, caution, phrase):
-    (site / "c.toml").write_text(f'caution = "{caution}"\n' + TINY)
+    write_site(site / "c.toml", TINY, caution=caution)
     code, out, err = run(capsys, "score", site / "c.toml", "--layout", site / "layout.csv")
     assert code == 0, err
     text = flat(out)
@@ -568,7 +536,7 @@ def test_caution_panels(site, capsys, caution, phrase):
 
 
 def test_no_caution_when_none(site, capsys):
-    (site / "c.toml").write_text('caution = "none"\n' + TINY)
+    write_site(site / "c.toml", TINY, caution="none")
     code, out, _ = run(capsys, "score", site / "c.toml", "--layout", site / "layout.csv")
     assert code == 0
     assert "Caution" not in out

@@ -30,8 +30,8 @@ BUILDING = {"kind": "rectangle", "min_m": [0.0, 0.0], "max_m": [2000.0, 2000.0]}
 @pytest.fixture()
 def site(tmp_path, monkeypatch):
     monkeypatch.chdir(tmp_path)
-    write_site(tmp_path / "site.toml", **SITE)
-    write_site(tmp_path / "site2.toml", **SITE, keepout=[BUILDING])
+    write_site(tmp_path / "site.toml", SITE)
+    write_site(tmp_path / "site2.toml", SITE, keepout=[BUILDING])
     return tmp_path
 
 
@@ -113,8 +113,7 @@ def test_rerun_from_a_result_of_installed_meters_alone_rescores_it(site):
         for x, y in ((1500.0, 1200.0), (-1200.0, 1500.0), (1000.0, -1500.0), (0.0, 100.0))
     ]
     for name, count in (("none.toml", 0), ("more.toml", 2)):
-        probes = {**SITE["probes"], "count": count, "installed": [MAST, *extra]}
-        write_site(site / name, **{**SITE, "probes": probes})
+        write_site(site / name, SITE, probes={"count": count, "installed": [MAST, *extra]})
     assert main(["plan", "none.toml", "--out", "none.h5", "--quiet"]) == 0
     assert main(["plan", "more.toml", "--from", "none.h5", "--out", "new.h5", "--quiet"]) == 0
     old, changes = read_result("none.h5").score, read_result("new.h5").changes
@@ -193,7 +192,7 @@ def test_budget_writes_the_table(site, capsys):
 
 
 def test_budget_without_grades_is_bad_input(site, capsys):
-    write_site(site / "nogrades.toml", **{**SITE, "grade": None, "budget": None})
+    write_site(site / "nogrades.toml", SITE, grade=None, budget=None)
     assert main(["budget", "nogrades.toml"]) == 2
     err = capsys.readouterr().err
     assert err.startswith("probeplan: error: nogrades.toml:")
@@ -301,8 +300,7 @@ def test_score_notes_rule_breaks_and_keeps_csv_names(site, capsys):
 
 
 def test_plan_refuses_fewer_readings_than_parameters(site, capsys):
-    probes = {**SITE["probes"], "count": 2, "installed": None}
-    write_site(site / "few.toml", **{**SITE, "probes": probes})
+    write_site(site / "few.toml", SITE, probes={"count": 2, "installed": None})
     assert main(["plan", "few.toml"]) == 2
     err = capsys.readouterr().err
     assert "give 2 readings, which cannot determine 4 estimated parameters" in err
