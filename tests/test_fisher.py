@@ -12,9 +12,9 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from sites import ALL, make_config, point_source, rectangle
 
 import probeplan.fisher as fisher_mod
-from probeplan.config import parse_config
 from probeplan.fisher import (
     CRITERIA,
     Criterion,
@@ -40,34 +40,23 @@ def spd(rng: np.random.Generator, n_scenarios: int, p: int = 5) -> np.ndarray:
     return a * d[:, None] * d[None, :]
 
 
-def config_text(
+def fisher_config(
+    path: str,
     layout_count: int = 1,
-    estimate: str = '["charge", "x", "y", "z"]',
+    estimate: tuple[str, ...] = ALL,
     criterion: str = "d",
-    center: str = "[300.0, 200.0, 6000.0]",
-) -> str:
-    return f"""
-seed = 1
-[ground]
-z_m = 0.0
-[probes]
-count = {layout_count}
-component = "z"
-noise_v_per_m = 20.0
-[[region]]
-kind = "rectangle"
-min_m = [-200000.0, -200000.0]
-max_m = [200000.0, 200000.0]
-z_m = 0.0
-[[source]]
-kind = "point"
-charge_c = -20.0
-center_m = {center}
-estimate = {estimate}
-[design]
-criterion = "{criterion}"
-scenarios = 1
-"""
+    center: tuple[float, float, float] = (300.0, 200.0, 6000.0),
+):
+    """A single-scenario site: one point charge over a 400 km square of ground meters."""
+    return make_config(
+        path,
+        seed=1,
+        title=None,
+        probes={"count": layout_count},
+        region=[rectangle(200000.0)],
+        source=[point_source(center_m=center, estimate=estimate)],
+        design={"criterion": criterion, "scenarios": 1, "evaluations": None},
+    )
 
 
 # --------------------------------------------------------------------------------------------
@@ -143,7 +132,7 @@ def test_criterion_rejects_unknown_names():
 @pytest.mark.parametrize("criterion", CRITERIA)
 def test_a_single_probe_cannot_resolve_four_parameters(criterion):
     # One reading, four unknowns: J has rank 1, so the contract gives −inf (d) or +inf.
-    problem = build_problem(parse_config(config_text(criterion=criterion), "one.toml"))
+    problem = build_problem(fisher_config("one.toml", criterion=criterion))
     score = problem.score(np.array([[1000.0, 0.0, 0.0]]))
     assert score.singular.tolist() == [True]
     assert score.value == (-math.inf if criterion == "d" else math.inf)
@@ -255,8 +244,8 @@ def test_far_charge_over_ground_only_the_product_is_seen():
     # Far from the probes a charge q at height h and its image −q form a dipole 2qh: the
     # ground field is −2kqh/R³ (image method; e.g. any electrostatics text), so only q·h is
     # seen — charge and height are not separable.
-    text = config_text(layout_count=4, estimate='["charge", "z"]', center="[0.0, 0.0, 2000.0]")
-    problem = build_problem(parse_config(text, "far.toml"))
+    far = fisher_config("far.toml", 4, estimate=("charge", "z"), center=(0.0, 0.0, 2000.0))
+    problem = build_problem(far)
     score = problem.score(_far_cluster(100_000.0))
     assert score.value == -math.inf
     [direction] = score.unresolved
@@ -270,8 +259,8 @@ def test_far_charge_over_ground_only_the_product_is_seen():
 def test_moderately_far_charge_is_named_as_poorly_resolved():
     # At 5 km from a 2 km-high charge the 1/R³ law is not yet exact: resolvable, but the
     # errors of charge and height are strongly correlated.
-    text = config_text(layout_count=4, estimate='["charge", "z"]', center="[0.0, 0.0, 2000.0]")
-    problem = build_problem(parse_config(text, "far.toml"))
+    far = fisher_config("far.toml", 4, estimate=("charge", "z"), center=(0.0, 0.0, 2000.0))
+    problem = build_problem(far)
     score = problem.score(_far_cluster(5000.0))
     assert np.isfinite(score.value)
     [direction] = score.unresolved
@@ -282,7 +271,7 @@ def test_moderately_far_charge_is_named_as_poorly_resolved():
 
 
 def test_a_well_spread_layout_leaves_nothing_unresolved():
-    problem = build_problem(parse_config(config_text(layout_count=6), "spread.toml"))
+    problem = build_problem(fisher_config("spread.toml", layout_count=6))
     ang = np.arange(5) * 2 * np.pi / 5
     ring = np.stack([5000 * np.cos(ang), 5000 * np.sin(ang), 0 * ang], axis=1)
     score = problem.score(np.concatenate([[[0.0, 0.0, 0.0]], ring]))

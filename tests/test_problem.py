@@ -18,8 +18,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 from scipy.optimize import least_squares
+from sites import ALL, make_config, meter_grade, point_source, rectangle
 
-from probeplan.config import parse_config
 from probeplan.probes import axes_table, component_axes, draw_readings, readings
 from probeplan.problem import build_problem, draw_scenarios
 
@@ -27,23 +27,16 @@ from probeplan.problem import build_problem, draw_scenarios
 # Small configs
 # --------------------------------------------------------------------------------------------
 
-STORM_SOURCE = """
-[[source]]
-kind = "point"
-charge_c = {charge}
-center_m = [{x}, {y}, {z}]
-estimate = {estimate}
-{ranges}
-"""
-
-RANGES = """charge_range_c = [-30.0, -10.0]
-center_range_m = [[-2000.0, 2000.0], [-2000.0, 2000.0], [5000.0, 8000.0]]"""
+RANGES = dict(
+    charge_range_c=[-30.0, -10.0],
+    center_range_m=[[-2000.0, 2000.0], [-2000.0, 2000.0], [5000.0, 8000.0]],
+)
 
 
-def make_config(
+def problem_config(
     *,
     ground: bool = True,
-    component: str = '"z"',
+    component: str | list[float] = "z",
     noise: float = 20.0,
     relative: float = 0.0,
     range_v_per_m: float | None = None,
@@ -51,64 +44,49 @@ def make_config(
     count: int = 5,
     charge: float = -20.0,
     center: tuple[float, float, float] = (300.0, 200.0, 6000.0),
-    estimate: str = '["charge", "x", "y", "z"]',
+    estimate: tuple[str, ...] = ALL,
     ranges: bool = False,
-    background: str = "",
-    extra: str = "",
+    background: dict | None = None,
+    installed: tuple[dict, ...] = (),
     criterion: str = "d",
     aggregate: str = "mean",
     scenarios: int = 1,
     seed: int = 3,
     half_width_m: float = 6000.0,
     region_gain: float = 1.0,
-    tail: str = "",
+    grades: list[dict] | None = None,
 ):
     """A one-region storm-watch style config (fictional numbers) as a checked Config."""
-    rng_line = f"range_v_per_m = {range_v_per_m}" if range_v_per_m is not None else ""
-    w = half_width_m
-    text = f"""
-seed = {seed}
-{"[ground]" if ground else ""}
-{"z_m = 0.0" if ground else ""}
-
-[probes]
-count = {count}
-component = {component}
-noise_v_per_m = {noise}
-relative_noise = {relative}
-gain = {gain}
-{rng_line}
-{extra}
-
-[[region]]
-kind = "rectangle"
-min_m = [{-w}, {-w}]
-max_m = [{w}, {w}]
-z_m = 0.0
-gain = {region_gain}
-""" + STORM_SOURCE.format(
-        charge=charge,
-        x=center[0],
-        y=center[1],
-        z=center[2],
-        estimate=estimate,
-        ranges=RANGES if ranges else "",
+    probes = {
+        "count": count,
+        "component": component,
+        "noise_v_per_m": noise,
+        "relative_noise": relative,
+        "gain": gain,
+        "range_v_per_m": range_v_per_m,
+    }
+    if installed:
+        probes["installed"] = list(installed)
+    return make_config(
+        "test.toml",
+        seed=seed,
+        title=None,
+        ground={"z_m": 0.0} if ground else None,
+        probes=probes,
+        region=[rectangle(half_width_m, gain=region_gain)],
+        source=[point_source(charge, center, estimate, **(RANGES if ranges else {}))],
+        background=background,
+        design={
+            "criterion": criterion,
+            "aggregate": aggregate,
+            "scenarios": scenarios,
+            "evaluations": None,
+        },
+        grade=grades,
     )
-    text += background
-    text += f"""
-[design]
-criterion = "{criterion}"
-aggregate = "{aggregate}"
-scenarios = {scenarios}
-"""
-    return parse_config(text + tail, "test.toml")
 
 
-BACKGROUND = """
-[background]
-field_v_per_m = [0.0, 0.0, -120.0]
-estimate = true
-"""
+BACKGROUND = {"field_v_per_m": [0.0, 0.0, -120.0], "estimate": True}
 
 # A spread layout of five ground probes (m).
 LAYOUT5 = np.array(
@@ -224,7 +202,7 @@ FD_CASES = {
     # Free space, three-axis meters with gain 1.5 (all background components seen).
     "free-space-vector-gain": dict(
         ground=False,
-        component='"vector"',
+        component="vector",
         gain=1.5,
         relative=0.05,
         center=(300.0, 200.0, 3000.0),
@@ -233,20 +211,15 @@ FD_CASES = {
     ),
     # A tilted unit-vector axis, a region gain, and installed meters (one three-axis, gain 2).
     "unit-axis-installed": dict(
-        component="[0.3, 0.0, 1.0]",
+        component=[0.3, 0.0, 1.0],
         region_gain=1.3,
         relative=0.01,
         ranges=True,
         background=BACKGROUND,
-        extra="""
-[[probes.installed]]
-position_m = [-1500.0, 2500.0, 0.0]
-component = "vector"
-gain = 2.0
-
-[[probes.installed]]
-position_m = [2500.0, 1000.0, 0.0]
-""",
+        installed=(
+            {"position_m": [-1500.0, 2500.0, 0.0], "component": "vector", "gain": 2.0},
+            {"position_m": [2500.0, 1000.0, 0.0]},
+        ),
     ),
 }
 
@@ -254,7 +227,7 @@ position_m = [2500.0, 1000.0, 0.0]
 @pytest.mark.parametrize("criterion", ["d", "location", "charge"])
 @pytest.mark.parametrize("case", sorted(FD_CASES))
 def test_fisher_matches_finite_differences(case, criterion):
-    cfg = make_config(criterion=criterion, scenarios=3, **FD_CASES[case])
+    cfg = problem_config(criterion=criterion, scenarios=3, **FD_CASES[case])
     problem = build_problem(cfg)
     score = problem.score(LAYOUT5)
     # The gain a new meter gets: its own gain times its mounting region's (a mast factor).
@@ -274,19 +247,10 @@ def test_fisher_matches_finite_differences(case, criterion):
     np.testing.assert_allclose(score.crb_std, crb, rtol=1e-5)
 
 
-GRADES = """
-[[grade]]
-name = "coarse"
-noise_v_per_m = 80.0
-relative_noise = 0.05
-cost = 1.0
-
-[[grade]]
-name = "fine"
-noise_v_per_m = 5.0
-range_v_per_m = 2000.0
-cost = 3.0
-"""
+GRADES = [
+    meter_grade("coarse", 80.0, 1.0, relative_noise=0.05),
+    meter_grade("fine", 5.0, 3.0, range_v_per_m=2000.0),
+]
 
 
 def test_each_probe_reads_its_own_axes_with_its_own_grade():
@@ -295,14 +259,14 @@ def test_each_probe_reads_its_own_axes_with_its_own_grade():
     # finite-difference Fisher information (Kay, §3.9), each reading with its own meter's noise.
     # Free space, so that horizontal readings see the charge too (over a grounded plane its
     # field is vertical at the ground) and the layout resolves every parameter.
-    installed = '[[probes.installed]]\nposition_m = [2500.0, 1000.0, 0.0]\ncomponent = "x"\n'
-    cfg = make_config(
+    installed = {"position_m": [2500.0, 1000.0, 0.0], "component": "x", "grade": "fine"}
+    cfg = problem_config(
         ground=False,
         scenarios=3,
         ranges=True,
         background=BACKGROUND,
-        extra=installed + 'grade = "fine"\n',
-        tail=GRADES,
+        installed=(installed,),
+        grades=GRADES,
     )
     assert cfg.installed[0].grade == "fine"
     comps = ["vector", "x", "vector", (0.6, 0.0, 0.8), "vector"]
@@ -341,7 +305,7 @@ def test_each_probe_reads_its_own_axes_with_its_own_grade():
 
 
 def test_unknown_grade_or_wrong_axes_is_a_clear_error():
-    problem = build_problem(make_config())
+    problem = build_problem(problem_config())
     with pytest.raises(ValueError, match=r"`grades` must name 5 grades.*got \['gold'"):
         problem.score(LAYOUT5, grades=["gold"] * 5)
     with pytest.raises(ValueError, match=r"`axes` must have shape \(5, n_axes, 3\)"):
@@ -349,7 +313,7 @@ def test_unknown_grade_or_wrong_axes_is_a_clear_error():
 
 
 def test_score_lists_installed_probes_first():
-    cfg = make_config(**FD_CASES["unit-axis-installed"])
+    cfg = problem_config(**FD_CASES["unit-axis-installed"])
     problem = build_problem(cfg)
     score = problem.score(LAYOUT5)
     assert score.positions_m.shape == (7, 3)
@@ -370,7 +334,7 @@ def test_score_lists_installed_probes_first():
 def test_saturated_reading_carries_no_information():
     # 1 mC at 100 m over ground: straight below, |E_z| = 2kq/h² ≈ 1.8 kV/m (Coulomb plus the
     # image charge), beyond a 1 kV/m range; 300 m aside it is ≈ 57 V/m, well inside.
-    cfg = make_config(
+    cfg = problem_config(
         noise=1.0,
         range_v_per_m=1000.0,
         charge=1e-3,
@@ -396,7 +360,7 @@ def test_saturated_reading_carries_no_information():
 # Laws: more probes never hurt, order does not matter, units scale
 # --------------------------------------------------------------------------------------------
 
-_LOEWNER = build_problem(make_config(relative=0.02, background=BACKGROUND, ranges=True))
+_LOEWNER = build_problem(problem_config(relative=0.02, background=BACKGROUND, ranges=True))
 _layout = arrays(
     float,
     st.tuples(st.integers(1, 6), st.just(3)),
@@ -422,7 +386,7 @@ def test_adding_a_probe_never_lowers_information(layout, extra):
 
 
 def test_probe_order_does_not_matter():
-    problem = build_problem(make_config(relative=0.02, background=BACKGROUND, ranges=True))
+    problem = build_problem(problem_config(relative=0.02, background=BACKGROUND, ranges=True))
     perm = np.random.default_rng(0).permutation(len(LAYOUT5))
     a = problem.fisher(LAYOUT5[None])[0]
     b = problem.fisher(LAYOUT5[perm][None])[0]
@@ -433,8 +397,8 @@ def test_probe_order_does_not_matter():
 def test_doubling_additive_noise_quarters_information():
     # J = Gᵀ Σ⁻¹ G with Σ = σ² I: doubling σ divides J by 4, so log det drops by p·ln 4.
     base = dict(background=BACKGROUND, ranges=True, scenarios=4)
-    quiet = build_problem(make_config(noise=20.0, **base))
-    loud = build_problem(make_config(noise=40.0, **base))
+    quiet = build_problem(problem_config(noise=20.0, **base))
+    loud = build_problem(problem_config(noise=40.0, **base))
     np.testing.assert_allclose(loud.score(LAYOUT5).fisher, quiet.score(LAYOUT5).fisher / 4.0)
     p = quiet.n_params
     assert p == 5
@@ -448,8 +412,8 @@ def test_charge_scaling_scales_position_bound_inversely():
     # ∂h/∂x ∝ q, so with additive noise J = D J₁ D, D = diag(1, c, c, c), when q → c·q.
     # Hence the 1-sigma position bounds scale by 1/c and the charge bound is unchanged.
     c = 3.0
-    weak = build_problem(make_config(charge=-10.0)).score(LAYOUT5).crb_std[0]
-    strong = build_problem(make_config(charge=-10.0 * c)).score(LAYOUT5).crb_std[0]
+    weak = build_problem(problem_config(charge=-10.0)).score(LAYOUT5).crb_std[0]
+    strong = build_problem(problem_config(charge=-10.0 * c)).score(LAYOUT5).crb_std[0]
     assert strong[0] == pytest.approx(weak[0], rel=1e-9)
     np.testing.assert_allclose(strong[1:], weak[1:] / c, rtol=1e-9)
 
@@ -459,9 +423,9 @@ def test_length_scaling_of_the_bounds():
     # scaled scene over z = 0 to a scaled image): with every length × a, ∂h/∂q scales as a⁻²
     # and ∂h/∂x as a⁻³, so σ_q scales as a² and σ_x, σ_y, σ_z as a³ (additive noise).
     a = 2.0
-    small = build_problem(make_config(center=(300.0, 200.0, 3000.0), half_width_m=3000.0))
+    small = build_problem(problem_config(center=(300.0, 200.0, 3000.0), half_width_m=3000.0))
     large = build_problem(
-        make_config(center=(300.0 * a, 200.0 * a, 3000.0 * a), half_width_m=3000.0 * a)
+        problem_config(center=(300.0 * a, 200.0 * a, 3000.0 * a), half_width_m=3000.0 * a)
     )
     crb_small = small.score(LAYOUT5 / 2.0).crb_std[0]
     crb_large = large.score(LAYOUT5 / 2.0 * a).crb_std[0]
@@ -477,24 +441,20 @@ def test_length_scaling_of_the_bounds():
 def test_background_components_no_meter_reads_are_not_estimated():
     # Vertical (z) meters cannot see a horizontal background field at all: the contract says
     # only the components some meter reads are estimated.
-    problem = build_problem(make_config(background=BACKGROUND))
+    problem = build_problem(problem_config(background=BACKGROUND))
     assert problem.names == ("s0.charge_c", "s0.x_m", "s0.y_m", "s0.z_m", "bg.z_v_per_m")
     # An installed three-axis meter sees all three.
-    inst = """
-[[probes.installed]]
-position_m = [100.0, 100.0, 0.0]
-component = "vector"
-"""
-    problem = build_problem(make_config(background=BACKGROUND, extra=inst))
+    inst = {"position_m": [100.0, 100.0, 0.0], "component": "vector"}
+    problem = build_problem(problem_config(background=BACKGROUND, installed=(inst,)))
     assert problem.names[-3:] == ("bg.x_v_per_m", "bg.y_v_per_m", "bg.z_v_per_m")
     # A meter along x sees only the x component.
-    problem = build_problem(make_config(background=BACKGROUND, component='"x"'))
+    problem = build_problem(problem_config(background=BACKGROUND, component="x"))
     assert problem.names[-1] == "bg.x_v_per_m"
     assert "bg.z_v_per_m" not in problem.names
 
 
 def test_only_listed_parameters_are_estimated_in_contract_order():
-    problem = build_problem(make_config(estimate='["z", "charge"]', background=BACKGROUND))
+    problem = build_problem(problem_config(estimate=("z", "charge"), background=BACKGROUND))
     assert problem.names == ("s0.charge_c", "s0.z_m", "bg.z_v_per_m")
     assert problem.fisher(LAYOUT5[None]).shape == (1, 1, 3, 3)
 
@@ -505,7 +465,7 @@ def test_only_listed_parameters_are_estimated_in_contract_order():
 
 
 def test_draw_scenarios_nominal_first_then_within_ranges():
-    cfg = make_config(ranges=True, scenarios=40, background=BACKGROUND)
+    cfg = problem_config(ranges=True, scenarios=40, background=BACKGROUND)
     problem = build_problem(cfg)
     names = problem.scene.param_names
     theta = problem.theta
@@ -526,7 +486,7 @@ def test_draw_scenarios_nominal_first_then_within_ranges():
 
 
 def test_draw_scenarios_is_reproducible_from_the_seed():
-    cfg = make_config(ranges=True, scenarios=8)
+    cfg = problem_config(ranges=True, scenarios=8)
     problem = build_problem(cfg)
     a = draw_scenarios(cfg, problem.scene, np.random.default_rng(5))
     b = draw_scenarios(cfg, problem.scene, np.random.default_rng(5))
@@ -536,7 +496,7 @@ def test_draw_scenarios_is_reproducible_from_the_seed():
     assert not np.array_equal(a[1:], c[1:])
     # build_problem draws with the config's seed, so equal seeds give equal tables.
     np.testing.assert_array_equal(build_problem(cfg).theta, problem.theta)
-    other = build_problem(make_config(ranges=True, scenarios=8, seed=4))
+    other = build_problem(problem_config(ranges=True, scenarios=8, seed=4))
     assert not np.array_equal(other.theta, problem.theta)
 
 
@@ -552,7 +512,7 @@ def test_least_squares_fits_attain_the_cramer_rao_bound():
     # covariance ML is weighted least squares, and at high SNR the linearised model makes it
     # unbiased with covariance J⁻¹. A -20 C charge 6 km up gives readings of ~4–10 kV/m
     # against 20 V/m of noise (SNR ~ 200–500), so the linearisation holds.
-    cfg = make_config(count=7, center=(400.0, -300.0, 6000.0))
+    cfg = problem_config(count=7, center=(400.0, -300.0, 6000.0))
     problem = build_problem(cfg)
     ang = np.arange(6) * np.pi / 3.0
     ring = np.stack([5000.0 * np.cos(ang), 5000.0 * np.sin(ang), 0.0 * ang], axis=1)
@@ -615,11 +575,11 @@ def test_installed_meters_alone_are_scored_with_their_single_failures():
     # count = 0 is allowed when meters are installed (scoring what a site already has); the
     # single-failure values then drop one installed meter at a time. Reference: the finite-
     # difference Fisher information (Kay, §3.9) of the meters that remain.
-    installed = "".join(
-        f"[[probes.installed]]\nposition_m = [{x}, {y}, 0.0]\n"
+    installed = tuple(
+        {"position_m": [x, y, 0.0]}
         for x, y in ((-4000.0, -3500.0), (3500.0, -3000.0), (0.0, 500.0), (-3000.0, 4000.0))
     )
-    cfg = make_config(count=0, extra=installed, ground=False)
+    cfg = problem_config(count=0, installed=installed, ground=False)
     problem = build_problem(cfg)
     score = problem.score(np.empty((0, 3)))
     assert score.failure_values.shape == (4,)

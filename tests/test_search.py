@@ -14,67 +14,62 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from sites import ALL, make_config, point_source, rectangle
 
-from probeplan.config import parse_config
 from probeplan.fisher import d_ratio
 from probeplan.problem import build_problem
 from probeplan.search import GridObjective, exchange, greedy, plan, relaxation_bound
 
 
-def config_text(
+def search_config(
+    path: str,
     *,
     seed: int = 0,
     count: int = 3,
     criterion: str = "d",
     aggregate: str = "mean",
     scenarios: int = 6,
-    estimate: str = '["charge", "x", "z"]',
+    estimate: tuple[str, ...] = ("charge", "x", "z"),
     grid_spacing_m: float | None = None,
-    extra_probes: str = "",
-    extra_site: str = "",
-    background: str = "",
+    probes: dict | None = None,
+    extra_regions: tuple[dict, ...] = (),
+    keepout: list[dict] | None = None,
+    background: dict | None = None,
     evaluations: int = 0,
-) -> str:
-    spacing = f"grid_spacing_m = {grid_spacing_m}" if grid_spacing_m else ""
-    return f"""
-seed = {seed}
-[ground]
-z_m = 0.0
-[probes]
-count = {count}
-component = "z"
-noise_v_per_m = 20.0
-relative_noise = 0.02
-{extra_probes}
-[[region]]
-kind = "rectangle"
-min_m = [-6000.0, -6000.0]
-max_m = [6000.0, 6000.0]
-z_m = 0.0
-{extra_site}
-[[source]]
-kind = "point"
-charge_c = -20.0
-center_m = [400.0, -300.0, 6000.0]
-estimate = {estimate}
-charge_range_c = [-30.0, -10.0]
-center_range_m = [[-3000.0, 3000.0], [-3000.0, 3000.0], [5000.0, 8000.0]]
-{background}
-[design]
-criterion = "{criterion}"
-aggregate = "{aggregate}"
-scenarios = {scenarios}
-evaluations = {evaluations}
-random_layouts = 50
-{spacing}
-"""
+):
+    """A 12 km square of ground meters under a charge near 6 km, drawn from a wide box."""
+    charge = point_source(
+        center_m=(400.0, -300.0, 6000.0),
+        estimate=estimate,
+        charge_range_c=[-30.0, -10.0],
+        center_range_m=[[-3000.0, 3000.0], [-3000.0, 3000.0], [5000.0, 8000.0]],
+    )
+    return make_config(
+        path,
+        seed=seed,
+        title=None,
+        probes={"count": count, "relative_noise": 0.02, **(probes or {})},
+        region=[rectangle(6000.0), *extra_regions],
+        keepout=keepout,
+        source=[charge],
+        background=background,
+        design={
+            "criterion": criterion,
+            "aggregate": aggregate,
+            "scenarios": scenarios,
+            "evaluations": evaluations,
+            "random_layouts": 50,
+            "grid_spacing_m": grid_spacing_m,
+        },
+    )
+
+
+FAIR_WEATHER = {"field_v_per_m": [0.0, 0.0, -120.0]}
 
 
 def grid_problem(seed: int, spacing_m: float = 2000.0, count: int = 3, **kw):
     """A problem, its candidate lattice (7 × 7 = 49 points at 2 km) and the one-probe rows."""
-    cfg = parse_config(
-        config_text(seed=seed, count=count, grid_spacing_m=spacing_m, **kw), "grid.toml"
-    )
+    cfg = search_config("grid.toml", seed=seed, count=count, grid_spacing_m=spacing_m, **kw)
     problem = build_problem(cfg)
     cand = problem.site.candidate_grid(spacing_m)
     rows, _ = problem.rows(cand.positions_m)
@@ -175,9 +170,7 @@ def test_relaxation_bound_is_above_every_subset(seed):
 @functools.cache
 def big_problem():
     """A 16 × 16 lattice (256 candidates), 6 probes, 5 parameters, and its relaxation bound."""
-    problem, cand, rows = grid_problem(
-        5, spacing_m=800.0, count=6, background="[background]\nfield_v_per_m = [0.0, 0.0, -120.0]"
-    )
+    problem, cand, rows = grid_problem(5, spacing_m=800.0, count=6, background=FAIR_WEATHER)
     obj = GridObjective(problem, rows, prior=False)
     return problem, cand, rows, relaxation_bound(obj.info, problem.fisher_installed, 6)
 
@@ -227,27 +220,24 @@ def test_relaxation_bound_is_tight_when_every_candidate_is_taken():
 
 RULES = dict(
     count=4,
-    estimate='["charge", "x", "y", "z"]',
-    extra_probes="""min_spacing_m = 1500.0
-[[probes.installed]]
-position_m = [-2000.0, -1500.0, 0.0]""",
-    extra_site="""
-[[region]]
-kind = "segment"
-start_m = [-5000.0, 6500.0, 10.0]
-end_m = [5000.0, 6500.0, 10.0]
-gain = 1.8
-
-[[keepout]]
-kind = "rectangle"
-min_m = [-1000.0, -1000.0]
-max_m = [1500.0, 1000.0]
-
-[[keepout]]
-kind = "polygon"
-vertices_m = [[2000.0, -6000.0], [6000.0, -6000.0], [6000.0, -2000.0]]
-""",
-    background="[background]\nfield_v_per_m = [0.0, 0.0, -120.0]",
+    estimate=ALL,
+    probes={"min_spacing_m": 1500.0, "installed": [{"position_m": [-2000.0, -1500.0, 0.0]}]},
+    extra_regions=(
+        {
+            "kind": "segment",
+            "start_m": [-5000.0, 6500.0, 10.0],
+            "end_m": [5000.0, 6500.0, 10.0],
+            "gain": 1.8,
+        },
+    ),
+    keepout=[
+        {"kind": "rectangle", "min_m": [-1000.0, -1000.0], "max_m": [1500.0, 1000.0]},
+        {
+            "kind": "polygon",
+            "vertices_m": [[2000.0, -6000.0], [6000.0, -6000.0], [6000.0, -2000.0]],
+        },
+    ],
+    background=FAIR_WEATHER,
 )
 
 
@@ -271,8 +261,8 @@ def assert_follows_the_rules(problem, layout):
     ],
 )
 def test_plan_keeps_mounting_rules_for_every_criterion(criterion, aggregate):
-    cfg = parse_config(
-        config_text(criterion=criterion, aggregate=aggregate, scenarios=5, **RULES), "rules.toml"
+    cfg = search_config(
+        "rules.toml", criterion=criterion, aggregate=aggregate, scenarios=5, **RULES
     )
     problem = build_problem(cfg)
     out = plan(problem, evaluations=0, random_layouts=50, candidate_target=400)
@@ -304,30 +294,19 @@ def test_one_charge_over_a_disc_gives_a_symmetric_layout():
     # spreads the meters evenly around the centre (a ring, possibly with one under the charge).
     radius = 5000.0
     ang = np.arange(32) * 2 * np.pi / 32
-    vertices = ", ".join(f"[{radius * np.cos(a):.3f}, {radius * np.sin(a):.3f}]" for a in ang)
-    text = f"""
-seed = 2
-[ground]
-z_m = 0.0
-[probes]
-count = 6
-component = "z"
-noise_v_per_m = 20.0
-[[region]]
-kind = "polygon"
-vertices_m = [{vertices}]
-z_m = 0.0
-[[source]]
-kind = "point"
-charge_c = -20.0
-center_m = [0.0, 0.0, 6000.0]
-estimate = ["charge", "x", "y", "z"]
-[design]
-scenarios = 1
-evaluations = 0
-random_layouts = 50
-"""
-    problem = build_problem(parse_config(text, "disc.toml"))
+    # Rounded to the millimetre, as a surveyor would give them.
+    mm = [float(f"{v:.3f}") for v in radius * np.concatenate([np.cos(ang), np.sin(ang)])]
+    vertices = [list(xy) for xy in zip(mm[:32], mm[32:], strict=True)]
+    disc = make_config(
+        "disc.toml",
+        seed=2,
+        title=None,
+        region=[{"kind": "polygon", "vertices_m": vertices, "z_m": 0.0}],
+        probes={"count": 6},
+        source=[point_source(center_m=(0.0, 0.0, 6000.0))],
+        design={"scenarios": 1, "evaluations": 0, "random_layouts": 50},
+    )
+    problem = build_problem(disc)
     out = plan(problem, candidate_target=600)
     pos = out.positions_m
     assert_follows_the_rules(problem, pos)
@@ -342,7 +321,7 @@ random_layouts = 50
 
 
 def test_same_seed_same_layout_to_the_bit():
-    cfg = parse_config(config_text(scenarios=4, evaluations=4, **RULES), "again.toml")
+    cfg = search_config("again.toml", scenarios=4, evaluations=4, **RULES)
     first = plan(build_problem(cfg), candidate_target=300)
     second = plan(build_problem(cfg), candidate_target=300)
     assert first.positions_m.tobytes() == second.positions_m.tobytes()
