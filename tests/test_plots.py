@@ -19,63 +19,33 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from sites import ALL, box, make_config, point_source
 
 from probeplan import plots
-from probeplan.config import load_config, parse_config
+from probeplan.config import load_config
 from probeplan.problem import build_problem
 from probeplan.result import BudgetTable, make_result
 
 CONFIGS = Path(__file__).resolve().parent.parent / "configs"
 
-SITE = """
-title = "fictional plot test yard"
-seed = 4
-
-[ground]
-z_m = 0.0
-
-[probes]
-count = 4
-component = "z"
-noise_v_per_m = 10.0
-relative_noise = 0.02
-range_v_per_m = 30000.0
-
-[[probes.installed]]
-position_m = [-150.0, 120.0, 8.0]
-component = "vector"
-
-[[region]]
-kind = "rectangle"
-min_m = [-400.0, -300.0]
-max_m = [400.0, 300.0]
-z_m = 0.0
-
-[[keepout]]
-kind = "rectangle"
-min_m = [-50.0, -40.0]
-max_m = [60.0, 50.0]
-
-[[keepout]]
-kind = "points"
-positions_m = [[250.0, -200.0, 0.0]]
-buffer_m = 40.0
-
-[[source]]
-kind = "point"
-charge_c = -0.002
-center_m = [{x}, {y}, 180.0]
-estimate = {estimate}
-center_range_m = [[-100.0, 100.0], [-100.0, 100.0], [150.0, 220.0]]
-
-[background]
-field_v_per_m = [0.0, 0.0, -100.0]
-estimate = true
-
-[design]
-criterion = "{criterion}"
-scenarios = {scenarios}
-"""
+# A fictional yard: ground meters around a small charged cloud 180 m up, a building and a
+# tank kept clear, one three-axis meter on a mast.
+SITE = dict(
+    title="fictional plot test yard",
+    seed=4,
+    probes={
+        "noise_v_per_m": 10.0,
+        "relative_noise": 0.02,
+        "range_v_per_m": 30000.0,
+        "installed": [{"position_m": [-150.0, 120.0, 8.0], "component": "vector"}],
+    },
+    region=[{"kind": "rectangle", "min_m": [-400.0, -300.0], "max_m": [400.0, 300.0], "z_m": 0.0}],
+    keepout=[
+        {"kind": "rectangle", "min_m": [-50.0, -40.0], "max_m": [60.0, 50.0]},
+        {"kind": "points", "positions_m": [[250.0, -200.0, 0.0]], "buffer_m": 40.0},
+    ],
+    background={"field_v_per_m": [0.0, 0.0, -100.0], "estimate": True},
+)
 
 LAYOUT = np.array(
     [[-300.0, -250.0, 0.0], [320.0, -100.0, 0.0], [100.0, 240.0, 0.0], [-200.0, -20.0, 0.0]]
@@ -83,9 +53,10 @@ LAYOUT = np.array(
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 
 
-def config(x=20.0, y=-10.0, estimate='["charge", "x", "y", "z"]', criterion="d", scenarios=6):
-    text = SITE.format(x=x, y=y, estimate=estimate, criterion=criterion, scenarios=scenarios)
-    return parse_config(text, "<plot test>")
+def config(x=20.0, y=-10.0, estimate=ALL, criterion="d", scenarios=6):
+    cloud = point_source(-0.002, (x, y, 180.0), estimate, center_range_m=box(100.0, 150.0, 220.0))
+    design = {"criterion": criterion, "scenarios": scenarios, "evaluations": None}
+    return make_config("<plot test>", SITE, source=[cloud], design=design)
 
 
 def png_size(path: Path) -> tuple[int, int]:
@@ -168,7 +139,7 @@ def test_coverage_map_png(tmp_path):
 
 
 def test_coverage_needs_the_horizontal_position():
-    pr = build_problem(config(estimate='["charge", "z"]'))
+    pr = build_problem(config(estimate=("charge", "z")))
     with pytest.raises(ValueError, match=r'needs the horizontal position of source 0.*"x" and "y"'):
         plots.coverage_grid(pr, LAYOUT)
     with pytest.raises(ValueError, match=r"`resolution` must be an integer from 2 to 400; got 1"):
@@ -206,7 +177,7 @@ def test_plot_all_writes_what_applies(tmp_path):
     assert [p.name for p in paths] == ["site_map.svg", "coverage_map.svg", "budget_curve.svg"]
     for p in paths:
         svg_root(p)
-    no_xy = config(estimate='["charge", "z"]')
+    no_xy = config(estimate=("charge", "z"))
     pr2 = build_problem(no_xy)
     paths = plots.plot_all(make_result("score", no_xy, pr2.score(LAYOUT)), no_xy, pr2, tmp_path)
     assert [p.name for p in paths] == ["site_map.png"]
