@@ -1,4 +1,7 @@
-"""The TOML config loader: a full round trip, defaults, and one exact message per bad input.
+"""The ways into a config (file, text, mapping): a full round trip, defaults, files, syntax.
+
+Each section's checks and exact messages are in test_config_<section>.py; the typed-table
+reader's in test_config_reader.py.
 
 The site, charges and numbers below are invented for the tests (a fictional site), not taken
 from any real installation.
@@ -6,13 +9,15 @@ from any real installation.
 
 from __future__ import annotations
 
+import dataclasses
 import math
+import tomllib
 
 import numpy as np
 import pytest
-from hypothesis import given, settings
-from hypothesis import strategies as st
+from config_cases import BASE, assert_pieces, edited, message, write
 
+from probeplan import fisher, probes, report, site, sources
 from probeplan.config import (
     AGGREGATES,
     COMPONENTS,
@@ -25,9 +30,12 @@ from probeplan.config import (
     Grade,
     InstalledProbe,
     ProbeSpec,
+    config_from_mapping,
     load_config,
     parse_config,
+    vocab,
 )
+from probeplan.config.render import mapping_to_toml
 from probeplan.errors import InputError
 from probeplan.sources import DensityGrid, GaussianCharge, LineCharge, PointCharge, SphereCharge
 
@@ -158,55 +166,6 @@ counts = [6, 3, 4]
 target = 250.0
 """
 
-# The smallest valid config; the bad-input cases edit one line of it.
-BASE = """
-title = "Fictional test range"
-seed = 3
-
-[ground]
-z_m = 0.0
-
-[probes]
-count = 4
-component = "z"
-noise_v_per_m = 20.0
-
-[[region]]
-kind = "rectangle"
-min_m = [-500.0, -500.0]
-max_m = [500.0, 500.0]
-z_m = 1.0
-
-[[source]]
-kind = "point"
-charge_c = -20.0
-center_m = [0.0, 0.0, 7000.0]
-estimate = ["charge", "x", "y", "z"]
-"""
-
-
-def write(tmp_path, text: str, name: str = "cfg.toml"):
-    path = tmp_path / name
-    path.write_text(text, encoding="utf-8")
-    return path
-
-
-def edited(old: str, new: str, text: str = BASE) -> str:
-    assert old in text, old
-    return text.replace(old, new, 1)
-
-
-def message(tmp_path, text: str) -> str:
-    """The one InputError message that loading ``text`` from ``cfg.toml`` gives."""
-    with pytest.raises(InputError) as info:
-        load_config(write(tmp_path, text))
-    return str(info.value)
-
-
-def assert_pieces(msg: str, *pieces: str) -> None:
-    for piece in pieces:
-        assert piece in msg, f"{piece!r} not in {msg!r}"
-
 
 @pytest.fixture
 def full_config(tmp_path) -> Config:
@@ -330,71 +289,6 @@ def test_free_space_and_low_sources_are_not_storm_watch():
     assert esd.caution == "esd" and esd.storm_watch is False
 
 
-def test_count_zero_is_allowed_with_installed_probes():
-    text = (
-        edited("count = 4", "count = 0") + "\n[[probes.installed]]\nposition_m = [1.0, 2.0, 0.0]\n"
-    )
-    cfg = parse_config(text)
-    assert cfg.probes.count == 0 and len(cfg.installed) == 1
-
-
-def test_ranges_for_known_parameters_and_background_estimate_default():
-    text = edited('estimate = ["charge", "x", "y", "z"]', 'estimate = ["x", "y"]')
-    text += "charge_range_c = [-30.0, -30.0]\n\n[background]\nfield_v_per_m = [0, 0, -100]\n"
-    cfg = parse_config(text)
-    assert cfg.sources[0].estimate == ("x_m", "y_m")
-    assert cfg.sources[0].ranges == (("charge_c", -30.0, -30.0),)
-    assert cfg.background.estimate is True and cfg.background.ranges == ()
-    assert cfg.background.field_v_per_m == (0.0, 0.0, -100.0)
-
-
-def test_only_background_estimated_is_enough():
-    text = edited('estimate = ["charge", "x", "y", "z"]', "estimate = []")
-    cfg = parse_config(text + "\n[background]\nfield_v_per_m = [0, 0, -100]\n")
-    assert cfg.sources[0].estimate == ()
-
-
-def test_density_path_is_relative_to_the_config_folder(tmp_path, monkeypatch):
-    (tmp_path / "site").mkdir()
-    np.save(tmp_path / "site" / "cloud.npy", np.full((2, 2, 2), 1e-9))
-    text = edited(
-        'kind = "point"\ncharge_c = -20.0\ncenter_m = [0.0, 0.0, 7000.0]',
-        'kind = "grid"\ndensity_path = "cloud.npy"\norigin_m = [0, 0, 4000]\nspacing_m = 200.0',
-    )
-    monkeypatch.chdir(tmp_path)  # not the config's folder
-    cfg = load_config(write(tmp_path / "site", text))
-    grid = cfg.sources[0].source
-    assert grid.spacing_m == (200.0, 200.0, 200.0)
-    # charge = density × cell volume × cells = 1e-9 × 200³ × 8
-    assert grid.charge_c == pytest.approx(1e-9 * 200.0**3 * 8)
-
-
-def test_infinite_range_means_no_saturation(tmp_path):
-    cfg = parse_config(edited("count = 4", "count = 4\nrange_v_per_m = inf"))
-    assert cfg.probes.range_v_per_m == math.inf
-    msg = message(tmp_path, edited("count = 4", "count = 4\nrange_v_per_m = -inf"))
-    assert_pieces(
-        msg, "`probes.range_v_per_m` must be a finite number (inf means no limit); got -inf"
-    )
-
-
-finite = st.floats(-1e3, 1e3, allow_nan=False)
-
-
-@settings(max_examples=25, deadline=None)
-@given(st.tuples(finite, finite, finite).filter(lambda v: np.linalg.norm(v) > 1e-3))
-def test_component_vector_is_normalised(vector):
-    text = edited('component = "z"', f"component = [{vector[0]!r}, {vector[1]!r}, {vector[2]!r}]")
-    axis = np.array(parse_config(text).probes.component)
-    assert np.linalg.norm(axis) == pytest.approx(1.0)
-    np.testing.assert_allclose(axis * np.linalg.norm(vector), vector, atol=1e-9)
-
-
-def test_quantile_aggregate_is_normalised():
-    cfg = parse_config(BASE + '\n[design]\naggregate = "quantile:0.25"\n')
-    assert cfg.design.aggregate == "quantile:0.25" and cfg.design.quantile == 0.25
-
-
 # ------------------------------------------------------------------------------------------
 # Files and syntax
 # ------------------------------------------------------------------------------------------
@@ -432,477 +326,110 @@ def test_duplicate_key_is_a_syntax_error(tmp_path):
     assert_pieces(msg, "cfg.toml: line ", "TOML syntax error")
 
 
-# ------------------------------------------------------------------------------------------
-# Bad inputs: one case per check, with the message pieces it must carry
-# ------------------------------------------------------------------------------------------
-
-SOURCE_POINT = 'kind = "point"\ncharge_c = -20.0\ncenter_m = [0.0, 0.0, 7000.0]'
-EST = 'estimate = ["charge", "x", "y", "z"]'
-RECT = 'kind = "rectangle"\nmin_m = [-500.0, -500.0]\nmax_m = [500.0, 500.0]\nz_m = 1.0'
-
-BAD = {
-    # unknown keys and tables
-    "typo in probes": (
-        ("noise_v_per_m = 20.0", "nosie_v_per_m = 20.0"),
-        ["unknown key `nosie_v_per_m` in [probes]; did you mean `noise_v_per_m`?"],
-    ),
-    "unknown key, no close match": (
-        ("count = 4", "count = 4\ncolour = 1"),
-        ["unknown key `colour` in [probes]; allowed: count, component, noise_v_per_m"],
-    ),
-    "unknown top-level table": (
-        ("[ground]", "[grund]"),
-        ["unknown table `grund` at the top level; did you mean `ground`?"],
-    ),
-    "unknown key in an array table": (
-        (EST, EST + "\ncentre_m = [0, 0, 1]"),
-        ["unknown key `centre_m` in source[0]; did you mean `center_m`?"],
-    ),
-    "key of another kind": (
-        (EST, EST + "\nradius_m = 100.0"),
-        [
-            "key `radius_m` does not apply to a point source (source[0]); allowed: kind, "
-            "charge_c, center_m, estimate, charge_range_c, center_range_m."
-        ],
-    ),
-    "single [region] table": (
-        ("[[region]]", "[region]"),
-        ["`region` must be an array of tables, each headed [[region]]", "write [[region]]"],
-    ),
-    # wrong types and non-finite numbers
-    "string for a number": (
-        ("noise_v_per_m = 20.0", 'noise_v_per_m = "20"'),
-        [
-            '`probes.noise_v_per_m` must be a number > 0; got "20" (a string)',
-            "write numbers without quotes",
-        ],
-    ),
-    "bool for a number": (
-        ("charge_c = -20.0", "charge_c = true"),
-        ["`source[0].charge_c` must be a number; got true (a boolean)"],
-    ),
-    "bool for an integer": (
-        ("count = 4", "count = true"),
-        ["`probes.count` must be a whole number >= 0; got true (a boolean)"],
-    ),
-    "float for an integer": (
-        ("count = 4", "count = 4.0"),
-        ["`probes.count` must be a whole number >= 0; got 4.0 (a number)"],
-    ),
-    "nan": (
-        ("charge_c = -20.0", "charge_c = nan"),
-        ["`source[0].charge_c` must be a finite number; got nan"],
-    ),
-    "inf in a vector": (
-        ("[0.0, 0.0, 7000.0]", "[0.0, inf, 7000.0]"),
-        ["`source[0].center_m[1]` must be a finite number; got inf"],
-    ),
-    "negative noise": (
-        ("noise_v_per_m = 20.0", "noise_v_per_m = -1.0"),
-        ["`probes.noise_v_per_m` must be > 0; got -1.0"],
-    ),
-    "missing noise": (
-        ("noise_v_per_m = 20.0", ""),
-        ["`probes.noise_v_per_m` is missing; give the 1-sigma noise in V/m (a number > 0)"],
-    ),
-    "negative relative noise": (
-        ("count = 4", "count = 4\nrelative_noise = -0.1"),
-        ["`probes.relative_noise` must be >= 0; got -0.1"],
-    ),
-    "zero gain": (
-        ("count = 4", "count = 4\ngain = 0"),
-        ["`probes.gain` must be > 0; got 0.0"],
-    ),
-    "negative seed": (("seed = 3", "seed = -1"), ["`seed` must be a whole number >= 0; got -1"]),
-    "title not text": (
-        ('title = "Fictional test range"', "title = 5"),
-        ["`title` must be a string; got 5"],
-    ),
-    # reversed ranges, never swapped
-    "reversed charge range": (
-        (EST, EST + "\ncharge_range_c = [-10.0, -40.0]"),
-        [
-            "`source[0].charge_range_c` must be [lo, hi] with lo <= hi; got [-10.0, -40.0]",
-            "never swapped",
-        ],
-    ),
-    "reversed centre range": (
-        (EST, EST + "\ncenter_range_m = [[0, 1], [0, 1], [9000.0, 5000.0]]"),
-        ["`source[0].center_range_m[2]` must be [lo, hi] with lo <= hi; got [9000.0, 5000.0]"],
-    ),
-    "centre range of two pairs": (
-        (EST, EST + "\ncenter_range_m = [[0, 1], [0, 1]]"),
-        ["`source[0].center_range_m` must be 3 ranges [[x_lo, x_hi], [y_lo, y_hi], [z_lo, z_hi]]"],
-    ),
-    "reversed rectangle": (
-        ("max_m = [500.0, 500.0]", "max_m = [-600.0, 500.0]"),
-        ["`region[0].min_m` x = -500.0 is above `region[0].max_m` x = -600.0"],
-    ),
-    # vectors of the wrong length
-    "centre of two numbers": (
-        ("center_m = [0.0, 0.0, 7000.0]", "center_m = [0.0, 7000.0]"),
-        ["`source[0].center_m` must be 3 numbers (x, y, z) in metres; got 2: [0.0, 7000.0]"],
-    ),
-    "corner of three numbers": (
-        ("min_m = [-500.0, -500.0]", "min_m = [-500.0, -500.0, 0.0]"),
-        ["`region[0].min_m` must be 2 numbers (x, y) in metres; got 3"],
-    ),
-    # enumerated options
-    "unknown source kind": (
-        ('kind = "point"', 'kind = "cloud"'),
-        [
-            '`source[0].kind` must be one of "point", "line", "sphere", "gaussian", "grid"; '
-            'got "cloud" (a string)'
-        ],
-    ),
-    "unknown region kind": (
-        ('kind = "rectangle"', 'kind = "rectangel"'),
-        ['`region[0].kind` must be one of "rectangle", "polygon"', 'did you mean "rectangle"?'],
-    ),
-    "unknown component": (
-        ('component = "z"', 'component = "w"'),
-        ['`probes.component` must be one of "x", "y", "z", "vector" or a unit vector'],
-    ),
-    "zero component vector": (
-        ('component = "z"', "component = [0, 0, 0]"),
-        ["`probes.component` must be", "got the zero vector [0, 0, 0]"],
-    ),
-    "unknown criterion": (
-        (EST, EST + '\n\n[design]\ncriterion = "e"'),
-        ['`design.criterion` must be one of "d", "location", "charge"; got "e"'],
-    ),
-    "unknown aggregate": (
-        (EST, EST + '\n\n[design]\naggregate = "median"'),
-        [
-            '`design.aggregate` must be "mean", "worst" or "quantile:q" with 0 < q < 1',
-            'got "median"',
-        ],
-    ),
-    "quantile of 1": (
-        (EST, EST + '\n\n[design]\naggregate = "quantile:1"'),
-        ['`design.aggregate` must be "mean", "worst" or "quantile:q"', 'got "quantile:1"'],
-    ),
-    "quantile of 0": (
-        (EST, EST + '\n\n[design]\naggregate = "quantile:0"'),
-        ['got "quantile:0"'],
-    ),
-    "two failures tolerated": (
-        (EST, EST + "\n\n[design]\ntolerate_failures = 2"),
-        ["`design.tolerate_failures` must be one of 0, 1; got 2"],
-    ),
-    "zero scenarios": (
-        (EST, EST + "\n\n[design]\nscenarios = 0"),
-        ["`design.scenarios` must be a whole number >= 1; got 0"],
-    ),
-    "unknown caution": (
-        ('title = "Fictional test range"', 'caution = "storm"'),
-        [
-            '`caution` must be one of "lightning", "esd", "high-voltage", "general", "none"; '
-            'got "storm"'
-        ],
-    ),
-    # estimate names
-    "unknown estimate name": (
-        (EST, 'estimate = ["charge", "q"]'),
-        [
-            '`source[0].estimate[1]`: unknown parameter name "q"',
-            "allowed for a point source: charge, x, y, z",
-        ],
-    ),
-    "estimate invalid for the kind": (
-        (EST, 'estimate = ["radius"]'),
-        ["`radius` is not a parameter of a point source; allowed: charge, x, y, z"],
-    ),
-    "duplicated estimate": (
-        (EST, 'estimate = ["x", "y", "x"]'),
-        ["`source[0].estimate[2]`: `x` is listed twice"],
-    ),
-    "estimate not an array": (
-        (EST, 'estimate = "x"'),
-        ["`source[0].estimate` must be an array of parameter names", 'got "x" (a string)'],
-    ),
-    "nothing estimated": (
-        (EST, "estimate = []"),
-        ["nothing to estimate", "estimate = "],
-    ),
-    "location criterion without x and y": (
-        (EST, 'estimate = ["charge", "z"]\n\n[design]\ncriterion = "location"'),
-        ['`design.criterion` = "location" scores source 0', 'lacks "x", "y"'],
-    ),
-    "charge criterion without charge": (
-        (EST, 'estimate = ["x"]\n\n[design]\ncriterion = "charge"'),
-        ['`design.criterion` = "charge"', 'lacks "charge"'],
-    ),
-    # below the ground
-    "source below ground": (
-        ("[0.0, 0.0, 7000.0]", "[0.0, 0.0, -5.0]"),
-        [
-            "`source[0].center_m` puts the point source down to z = -5 m, not above the ground "
-            "plane at z = 0 m"
-        ],
-    ),
-    "centre range below ground": (
-        (EST, EST + "\ncenter_range_m = [[0, 0], [0, 0], [-100.0, 9000.0]]"),
-        ["`source[0].center_range_m` let the point source reach down to z = -100 m"],
-    ),
-    "sphere radius range below ground": (
-        (
-            SOURCE_POINT,
-            'kind = "sphere"\ncharge_c = 1.0\ncenter_m = [0, 0, 1000.0]\nradius_m = 500.0\n'
-            "radius_range_m = [100.0, 1200.0]",
-        ),
-        [
-            "`source[0].radius_range_m` let the sphere source reach down to z = -200 m",
-            "minus 1200 m from the centre",
-        ],
-    ),
-    "sphere centre range minus radius below ground": (
-        (
-            SOURCE_POINT,
-            'kind = "sphere"\ncharge_c = 1.0\ncenter_m = [0, 0, 1000.0]\nradius_m = 500.0\n'
-            "center_range_m = [[0, 0], [0, 0], [400.0, 1000.0]]",
-        ),
-        ["`source[0].center_range_m` let the sphere source reach down to z = -100 m"],
-    ),
-    "line end below ground": (
-        (SOURCE_POINT, 'kind = "line"\ncharge_c = 1.0\nstart_m = [0, 0, 10]\nend_m = [0, 0, -1]'),
-        ["`source[0].start_m` / `end_m` puts the line source down to z = -1 m"],
-    ),
-    "line range below ground": (
-        (
-            SOURCE_POINT,
-            'kind = "line"\ncharge_c = 1.0\nstart_m = [0, 0, 100]\nend_m = [0, 0, 300]\n'
-            "center_range_m = [[0, 0], [0, 0], [50.0, 300.0]]",
-        ),
-        ["`source[0].center_range_m` let the line source reach down to z = -50 m"],
-    ),
-    "region below ground": (
-        ("z_m = 1.0", "z_m = -1.0"),
-        ["`region[0].z_m` puts a probe at z = -1 m, below the ground plane at z = 0 m"],
-    ),
-    "installed below ground": (
-        (EST, EST + "\n\n[[probes.installed]]\nposition_m = [0, 0, -2]"),
-        ["`probes.installed[0].position_m` puts a probe at z = -2 m"],
-    ),
-    # wrapped constructor errors
-    "sphere radius negative": (
-        (
-            SOURCE_POINT,
-            'kind = "sphere"\ncharge_c = 1.0\ncenter_m = [0, 0, 1000.0]\nradius_m = -2.0',
-        ),
-        ["cfg.toml: source[0]: `radius_m` must be > 0; got -2.0."],
-    ),
-    "line of zero length": (
-        (SOURCE_POINT, 'kind = "line"\ncharge_c = 1.0\nstart_m = [0, 0, 10]\nend_m = [0, 0, 10]'),
-        ["cfg.toml: source[0]: `start_m` and `end_m` of a line charge must differ"],
-    ),
-    "sigma range not positive": (
-        (
-            SOURCE_POINT,
-            'kind = "gaussian"\ncharge_c = 1.0\ncenter_m = [0, 0, 1000.0]\nsigma_m = 10.0\n'
-            "sigma_range_m = [0.0, 20.0]",
-        ),
-        ["`source[0].sigma_range_m[0]` must be > 0; got 0.0"],
-    ),
-    # required tables and counts
-    "no source": (
-        ("[[source]]\n" + SOURCE_POINT + "\n" + EST, ""),
-        ["no [[source]] table is given; at least one is needed"],
-    ),
-    "no region": (
-        ("[[region]]\n" + RECT, ""),
-        ["no [[region]] table is given; at least one is needed"],
-    ),
-    "no probes table": (
-        ('[probes]\ncount = 4\ncomponent = "z"\nnoise_v_per_m = 20.0', ""),
-        ["the [probes] table is missing"],
-    ),
-    "count zero without installed": (
-        ("count = 4", "count = 0"),
-        ["`probes.count` must be >= 1 when no [[probes.installed]] is given; got 0"],
-    ),
-    "duplicate installed names": (
-        (
-            EST,
-            EST + '\n\n[[probes.installed]]\nposition_m = [0, 0, 1]\nname = "a"\n'
-            '[[probes.installed]]\nposition_m = [5, 0, 1]\nname = "a"',
-        ),
-        ['`probes.installed[1].name` = "a" is already the name of probes.installed[0]'],
-    ),
-    "installed grade unknown": (
-        (
-            EST,
-            EST + '\n\n[[probes.installed]]\nposition_m = [0, 0, 1]\ngrade = "gold"\n'
-            '[[grade]]\nname = "std"\ncost = 1.0',
-        ),
-        ['`probes.installed[0].grade` = "gold" names no [[grade]]; the grades are: std.'],
-    ),
-    "installed grade without grades": (
-        (EST, EST + '\n\n[[probes.installed]]\nposition_m = [0, 0, 1]\ngrade = "std"'),
-        ["names no [[grade]]; the grades are: none: the config has no [[grade]] table"],
-    ),
-    "installed grade empty": (
-        (EST, EST + '\n\n[[probes.installed]]\nposition_m = [0, 0, 1]\ngrade = ""'),
-        ["`probes.installed[0].grade` must not be empty; give a [[grade]] name."],
-    ),
-    # grades and budget
-    "budget without grade": (
-        (EST, EST + "\n\n[budget]\ncounts = [2, 3]"),
-        ["[budget] needs at least one [[grade]]"],
-    ),
-    "duplicate grade names": (
-        (EST, EST + '\n\n[[grade]]\nname = "std"\ncost = 1.0\n[[grade]]\nname = "std"\ncost = 2.0'),
-        ['`grade[1].name` = "std" is already the name of grade[0]; grade names must be unique'],
-    ),
-    "grade without cost": (
-        (EST, EST + '\n\n[[grade]]\nname = "std"'),
-        ["`grade[0].cost` is missing; give the cost per meter (a number >= 0)"],
-    ),
-    "budget count zero": (
-        (EST, EST + '\n\n[[grade]]\nname = "std"\ncost = 1.0\n[budget]\ncounts = [0, 2]'),
-        ["`budget.counts[0]` must be a whole number >= 1; got 0"],
-    ),
-    "budget count not an integer": (
-        (EST, EST + '\n\n[[grade]]\nname = "std"\ncost = 1.0\n[budget]\ncounts = [2, "3"]'),
-        ['`budget.counts[1]` must be a whole number >= 1; got "3" (a string)'],
-    ),
-    "budget counts repeated": (
-        (EST, EST + '\n\n[[grade]]\nname = "std"\ncost = 1.0\n[budget]\ncounts = [2, 3, 2]'),
-        ["`budget.counts` lists 2 more than once"],
-    ),
-}
-
-
-@pytest.mark.parametrize("case", sorted(BAD))
-def test_bad_input_gives_one_clear_message(tmp_path, case):
-    (old, new), pieces = BAD[case]
-    msg = message(tmp_path, edited(old, new))
-    assert msg.startswith("cfg.toml: ") or msg.startswith(str(tmp_path / "cfg.toml") + ": ")
-    assert_pieces(msg, *pieces)
-
-
 def test_message_names_the_file_as_given(tmp_path):
     bad = edited("noise_v_per_m = 20.0", "noise_v_per_m = 0.0")
     with pytest.raises(InputError, match=r"^configs/x\.toml: `probes\.noise_v_per_m` must be > 0"):
         parse_config(bad, "configs/x.toml")
 
 
-def _grid_text(path: str) -> str:
-    return edited(
-        SOURCE_POINT,
-        f'kind = "grid"\ndensity_path = "{path}"\norigin_m = [0, 0, 4000]\nspacing_m = 100.0',
+def test_a_byte_order_mark_is_accepted(tmp_path):
+    # Some editors start a UTF-8 file with U+FEFF; TOML itself does not allow it (toml.io 1.0).
+    path = tmp_path / "bom.toml"
+    path.write_bytes(b"\xef\xbb\xbf" + BASE.encode("utf-8"))
+    cfg = load_config(path)
+    assert cfg.text == BASE
+    assert repr(dataclasses.replace(cfg, path="")) == repr(parse_config(BASE, ""))
+    assert parse_config("\ufeff" + BASE).text == BASE
+
+
+def test_a_bad_byte_after_a_byte_order_mark_is_counted_from_the_file_start(tmp_path):
+    path = tmp_path / "bom.toml"
+    path.write_bytes(b'\xef\xbb\xbftitle = "caf\xe9"\n')  # 3 + 12 bytes before the bad one
+    with pytest.raises(InputError, match=r"bom\.toml: not UTF-8 text \(byte 15\)"):
+        load_config(path)
+
+
+# ------------------------------------------------------------------------------------------
+# A config from a mapping
+# ------------------------------------------------------------------------------------------
+
+
+def _same(a: Config, b: Config) -> bool:
+    # Regions hold cached shapely geometry, compared by identity: compare the reprs instead.
+    return repr(dataclasses.replace(a, text="")) == repr(dataclasses.replace(b, text=""))
+
+
+def test_a_mapping_gives_the_config_its_toml_gives(full_config, tmp_path):
+    data = tomllib.loads(full_config.text)
+    cfg = config_from_mapping(data, full_config.path)
+    assert _same(cfg, full_config)
+    # Its text is TOML that reads back to the same mapping, so reruns can parse it.
+    assert tomllib.loads(cfg.text) == data
+    assert _same(parse_config(cfg.text, cfg.path), full_config)
+    # Relative paths start at base_dir when given, else at the folder of `path`.
+    moved = config_from_mapping(data, "elsewhere.toml", base_dir=tmp_path)
+    np.testing.assert_array_equal(
+        moved.sources[4].source.density_c_per_m3, full_config.sources[4].source.density_c_per_m3
     )
 
 
-def test_grid_density_file_missing(tmp_path):
-    msg = message(tmp_path, _grid_text("absent.npy"))
-    assert_pieces(
-        msg, '`source[0].density_path` = "absent.npy": no such file', "config file's folder"
-    )
+def test_a_mapping_takes_tuples_and_numpy_numbers():
+    data = tomllib.loads(BASE)
+    data["source"][0]["center_m"] = (np.float64(0.0), 0, np.float32(7000.0))
+    data["probes"]["count"] = np.int64(4)
+    assert _same(config_from_mapping(data, "<config>"), parse_config(BASE))
+
+
+def test_a_mapping_is_checked_like_a_file():
+    data = tomllib.loads(edited("noise_v_per_m = 20.0", "noise_v_per_m = -1.0"))
+    with pytest.raises(InputError, match=r"^site: `probes\.noise_v_per_m` must be > 0; got -1\.0"):
+        config_from_mapping(data, "site")
+    assert config_from_mapping(tomllib.loads(BASE)).path == "<mapping>"
 
 
 @pytest.mark.parametrize(
-    "array, piece",
+    ("edit", "piece"),
     [
-        (np.ones((2, 2)), "the array must be 3-D (nx, ny, nz) of C/m³; got shape (2, 2)"),
-        (np.full((2, 2, 2), np.nan), "the density must be finite"),
-        (np.array(["a"] * 8).reshape(2, 2, 2), "the array must hold real numbers"),
+        (lambda d: d["probes"].update(count=None), "`probes.count` is None (NoneType)"),
+        (lambda d: d["source"][0].update(center_m=[0, object(), 1]), "`source[0].center_m[1]`"),
+        (lambda d: d.update({3: 1}), "key 3 at the top level must be a string"),
     ],
 )
-def test_grid_density_file_bad(tmp_path, array, piece):
-    np.save(tmp_path / "rho.npy", array)
-    assert_pieces(message(tmp_path, _grid_text("rho.npy")), "`source[0].density_path`", piece)
+def test_values_toml_cannot_hold_are_named(edit, piece):
+    data = tomllib.loads(BASE)
+    edit(data)
+    with pytest.raises(InputError, match="^<mapping>: ") as info:
+        config_from_mapping(data)
+    assert piece in str(info.value)
+    with pytest.raises(InputError, match="must be a dict"):
+        config_from_mapping([("seed", 1)])
 
 
-def test_grid_density_file_not_npy(tmp_path):
-    (tmp_path / "rho.npy").write_text("not an array")
-    msg = message(tmp_path, _grid_text("rho.npy"))
-    assert_pieces(msg, '`source[0].density_path` = "rho.npy": not a readable .npy array file')
-
-
-def test_neutral_grid_cannot_have_its_charge_estimated(tmp_path):
-    rho = np.zeros((2, 2, 2))
-    rho[0, 0, 1], rho[1, 1, 1] = 1e-9, -1e-9
-    np.save(tmp_path / "rho.npy", rho)
-    msg = message(tmp_path, _grid_text("rho.npy"))
-    assert_pieces(msg, "`source[0].estimate`: the grid's net charge is zero")
-
-
-def test_grid_keys_of_other_kinds_rejected(tmp_path):
-    np.save(tmp_path / "rho.npy", np.ones((1, 1, 1)))
-    text = _grid_text("rho.npy").replace("spacing_m = 100.0", "spacing_m = 100.0\ncharge_c = 1.0")
-    assert_pieces(message(tmp_path, text), "`charge_c` does not apply to a grid source (source[0])")
+def test_toml_written_from_a_mapping_reads_back():
+    # Quoted keys, escapes, special floats, inline tables in arrays, nested arrays of tables.
+    data = {
+        "a b": 'say "hi"\n\x7f\u00e9',
+        "x": [math.inf, -math.inf, 1e-300, -0.0, 2**62],
+        "mixed": [{"k": 1}, {"k": [1, 2]}],
+        "t": {"inner": {"deep": True}, "rows": [{"n": 1, "sub": [{"m": 2}]}, {"n": 3}]},
+        "empty": [],
+        "top": [{"z": 0.5}],
+    }
+    assert tomllib.loads(mapping_to_toml(data, "<test>")) == data
+    nan = tomllib.loads(mapping_to_toml({"v": math.nan}, "<test>"))["v"]
+    assert math.isnan(nan)
 
 
 # ------------------------------------------------------------------------------------------
-# Mounting rules: regions, keep-outs and feasibility (checked by probeplan.site)
+# The vocabularies: defined once, where the stage that owns them lives
 # ------------------------------------------------------------------------------------------
 
-KEEPOUT_ALL = (
-    '\n[[keepout]]\nkind = "rectangle"\nmin_m = [-600.0, -600.0]\nmax_m = [600.0, 600.0]\n'
-)
 
-
-def test_site_is_built_from_the_config():
-    cfg = parse_config(BASE + "\n[[probes.installed]]\nposition_m = [3.0, 4.0, 1.0]\n")
-    site = cfg.site()
-    assert site.min_spacing_m == 0.0
-    np.testing.assert_array_equal(site.installed_m, [[3.0, 4.0, 1.0]])
-    assert site.allowed([[0.0, 0.0, 1.0], [0.0, 0.0, 2.0]]).tolist() == [True, False]
-
-
-def test_region_wholly_inside_keepouts(tmp_path):
-    msg = message(tmp_path, BASE + KEEPOUT_ALL)
-    assert_pieces(
-        msg,
-        "cfg.toml: [[region]] / [[keepout]] with `probes.count` = 4",
-        "no mounting position is left: region 0 (rectangle) lies wholly inside keep-out 0",
-    )
-
-
-def test_count_times_spacing_does_not_fit(tmp_path):
-    # A 1000 m × 1000 m rectangle holds at most about 1e6/(0.866 × 400²) + 4000/400 + 1 ≈ 18
-    # probes 400 m apart (hexagonal packing bound), far fewer than 50.
-    text = edited("count = 4", "count = 50\nmin_spacing_m = 400.0")
-    msg = message(tmp_path, text)
-    assert_pieces(
-        msg,
-        "[[region]] / [[keepout]] with `probes.count` = 50 and `probes.min_spacing_m` = 400",
-        "cannot place 50 probes at least 400 m apart",
-    )
-
-
-def test_budget_count_that_does_not_fit(tmp_path):
-    text = edited("count = 4", "count = 2\nmin_spacing_m = 400.0")
-    text += '\n[[grade]]\nname = "std"\ncost = 1.0\n[budget]\ncounts = [2, 60]\n'
-    msg = message(tmp_path, text)
-    assert_pieces(msg, "with `budget.counts` = 60", "cannot place 60 probes")
-
-
-def test_region_constructor_errors_are_wrapped(tmp_path):
-    text = edited(
-        RECT, 'kind = "polygon"\nvertices_m = [[0, 0, 1], [10, 0, 1], [0, 10, 1]]\nz_m = 1.0'
-    )
-    msg = message(tmp_path, text)
-    assert_pieces(
-        msg, "cfg.toml: region[0]: `z_m` is not used by a polygon with [x, y, z] vertices"
-    )
-
-
-def test_rectangle_region_needs_its_height(tmp_path):
-    msg = message(tmp_path, edited("z_m = 1.0", ""))
-    assert_pieces(msg, "`region[0].z_m` is missing; give the mounting height in metres (a number)")
-
-
-def test_buffer_belongs_to_keepouts_and_gain_to_regions(tmp_path):
-    msg = message(tmp_path, edited("z_m = 1.0", "z_m = 1.0\nbuffer_m = 2.0"))
-    assert_pieces(msg, "key `buffer_m` does not apply to a rectangle region (region[0])")
-    msg = message(tmp_path, BASE + KEEPOUT_ALL.replace("600.0]\n", "600.0]\ngain = 2.0\n", 1))
-    assert_pieces(msg, "key `gain` does not apply to a rectangle keepout (keepout[0])")
-
-
-def test_keepout_takes_a_buffer():
-    text = BASE + '\n[[keepout]]\nkind = "points"\npositions_m = [[0, 0, 1]]\nbuffer_m = 5.0\n'
-    cfg = parse_config(text)
-    assert cfg.keepouts[0].buffer_m == 5.0
-    assert cfg.site().allowed([[3.0, 0.0, 1.0], [6.0, 0.0, 1.0]]).tolist() == [False, True]
+def test_vocabularies_are_the_owning_stages_own():
+    assert vocab.CRITERIA is fisher.CRITERIA
+    assert vocab.AGGREGATES is fisher.AGGREGATE_NAMES
+    assert vocab.COMPONENTS is probes.COMPONENTS
+    assert vocab.SOURCE_KINDS == tuple(sources.KINDS)
+    assert vocab.REGION_KINDS == tuple(site.REGION_KINDS)
+    # Every caution but "none" has its panel in the summary; "none" prints one plain line.
+    assert set(report.CAUTIONS) == set(vocab.CAUTIONS) - {"none"}
