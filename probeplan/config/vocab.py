@@ -3,28 +3,16 @@
 A vocabulary owned by a stage to the left of the config (criteria and aggregates by
 :mod:`probeplan.fisher`, components by :mod:`probeplan.probes`, source kinds by
 :mod:`probeplan.sources`, region kinds by :mod:`probeplan.site`) is imported from there; the
-ones only a config speaks (estimate names, cautions) are defined here. Stages to the right of
-the config import them from here.
+ones only a config speaks (estimate names, cautions) are defined here.
 """
 
 from __future__ import annotations
 
-from ..fisher import AGGREGATE_NAMES, CRITERIA
-from ..probes import COMPONENTS
+from ..fisher import AGGREGATE_NAMES
+from ..fisher import CRITERIA as CRITERIA  # re-exported: the criteria a config names
+from ..probes import COMPONENTS as COMPONENTS  # re-exported: what a meter reads
 from ..site import REGION_KINDS as _SITE_REGION_KINDS
 from ..sources import KINDS
-
-__all__ = [
-    "AGGREGATES",
-    "CAUTIONS",
-    "COMPONENTS",
-    "CRITERIA",
-    "ESTIMATE_NAMES",
-    "PARAM_TO_ESTIMATE",
-    "REGION_KINDS",
-    "SOURCE_KINDS",
-    "STORM_HEIGHT_M",
-]
 
 #: Estimate names a config may use, and the source parameter each one stands for.
 ESTIMATE_NAMES: dict[str, str] = {
