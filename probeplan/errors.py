@@ -1,8 +1,20 @@
-"""Errors that mean "bad input": the CLI turns them into one message and exit status 2."""
+"""The error boundary: what means "bad input", and the command's exit statuses.
+
+Bad input (a config, a layout or result file, an argument) raises :class:`InputError` where
+it enters the program; the command line turns it, and only it, into exit status 2. Every other
+exception is a bug: exit status 1. This module imports nothing heavy, so the command's entry
+point (:mod:`probeplan._entry`) can use it before numpy and the rest are loaded.
+"""
 
 from __future__ import annotations
 
-#: Exit status of an interrupted run (128 + SIGINT, the shell convention).
+#: Exit status of a finished command.
+EXIT_OK = 0
+#: Exit status of an internal error (a bug in probeplan).
+EXIT_INTERNAL = 1
+#: Exit status of bad input: the one line printed says what to change.
+EXIT_INPUT = 2
+#: Exit status of an interrupted run (128 + SIGINT, the shell convention), SIGTERM included.
 EXIT_INTERRUPTED = 130
 
 

@@ -12,7 +12,7 @@ import math
 import os
 import sys
 import traceback
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Sequence
 
 import numpy as np
 from rich import box
@@ -637,23 +637,36 @@ def print_error(message: str, console: Console | None = None) -> None:
     _line(f"probeplan: error: {message}", console)
 
 
-def print_interrupted(console: Console | None = None) -> None:
-    """One line on standard error after a hard interrupt: nothing was written."""
-    _line("probeplan: interrupted; no result file was written.", console)
+def print_interrupted(written: Sequence = (), console: Console | None = None) -> None:
+    """One line on standard error after an interrupt: which files were written whole (the
+    ``written`` paths), or that none was."""
+    if not written:
+        _line("probeplan: interrupted; no result file was written.", console)
+        return
+    names = ", ".join(os.fspath(p) for p in written)
+    _line(f"probeplan: interrupted after writing {names} (written whole).", console)
 
 
-def print_internal_error(exc: BaseException, debug: bool, console: Console | None = None) -> None:
-    """Report an unexpected failure: one line, a hint, and the traceback only when debugging."""
-    _line(f"probeplan: internal error: {type(exc).__name__}: {exc}", console)
+def print_internal_error(
+    exc: BaseException,
+    debug: bool,
+    console: Console | None = None,
+    *,
+    command: str | None = None,
+    variable: str = "PROBEPLAN_DEBUG",
+) -> None:
+    """Report a bug: one line naming the command and how to see the traceback; the traceback
+    itself only when debugging (``variable`` set to 1)."""
+    who = f"probeplan {command}" if command else "probeplan"
+    _line(
+        f"{who}: internal error: {type(exc).__name__}: {' '.join(str(exc).split())} (a bug in "
+        f"probeplan; please report it with the command and the config; set {variable}=1 to "
+        "see the traceback)",
+        console,
+    )
     if debug:
         tb = "".join(traceback.format_exception(exc))
         _console(console, stderr=True).out(tb, highlight=False, end="")
-    else:
-        _line(
-            "probeplan: this is a bug in probeplan; please report it with the command and the "
-            "config. Set PROBEPLAN_DEBUG=1 to see the traceback.",
-            console,
-        )
 
 
 def _line(text: str, console: Console | None) -> None:

@@ -693,9 +693,15 @@ _INFINITE_FIELD = (
 )
 
 
+class SingularPointError(ValueError):
+    """A point where the field is infinite: on a point charge, a line charge or a charged corner
+    of a density grid. A ``ValueError``; the command that read the point (a layout, a config)
+    reports it as that input's fault."""
+
+
 def _raise_on_charge(index: int, point: np.ndarray, what: str, why: str = _INFINITE_FIELD) -> None:
-    """One ValueError naming point ``index`` (among all points) and the singular ``what``."""
-    raise ValueError(
+    """One SingularPointError naming point ``index`` (among all points) and the ``what``."""
+    raise SingularPointError(
         f"point {index} at ({point[0]:g}, {point[1]:g}, {point[2]:g}) m lies on a {what}, where "
         + why
     )

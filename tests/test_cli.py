@@ -23,9 +23,9 @@ from rich.console import Console
 from sites import box, meter_grade, point_source, site_toml, write_site
 
 import probeplan.store
-from probeplan import cli, report
-from probeplan._entry import EXIT_INTERRUPTED
+from probeplan import commands, report, reruns
 from probeplan.cli import main
+from probeplan.errors import EXIT_INTERRUPTED
 from probeplan.result import Result
 from probeplan.store import read_result, write_result
 
@@ -328,7 +328,8 @@ def test_internal_error(site, capsys, monkeypatch):
     monkeypatch.delenv("PROBEPLAN_DEBUG", raising=False)
     code, _, err = run(capsys, "show", site / "x.h5")
     assert code == 1
-    assert err.startswith("probeplan: internal error: RuntimeError: kaboom")
+    assert len(err.strip().splitlines()) == 1, err
+    assert err.startswith("probeplan show: internal error: RuntimeError: kaboom")
     assert "report it" in err and "PROBEPLAN_DEBUG=1" in err
     assert "Traceback" not in err
 
@@ -371,7 +372,7 @@ def test_plan_writes_a_complete_result_under_the_config_name(site, capsys, monke
 
 def test_interrupted_plan_exits_130_and_resume_completes(site, capsys, monkeypatch):
     out_file = site / "p.h5"
-    monkeypatch.setattr(cli._StopFlag, "__call__", lambda self: True)
+    monkeypatch.setattr(commands.StopFlag, "__call__", lambda self: True)
     code, out, err = run(capsys, "plan", site / "tiny.toml", "--out", out_file)
     assert code == 130, err
     assert "INTERRUPTED" in out and "--resume" in out
@@ -398,7 +399,7 @@ def test_interrupted_plan_exits_130_and_resume_completes(site, capsys, monkeypat
 
 def test_resume_with_a_different_count_is_bad_input(site, capsys, monkeypatch):
     out_file = site / "p.h5"
-    monkeypatch.setattr(cli._StopFlag, "__call__", lambda self: True)
+    monkeypatch.setattr(commands.StopFlag, "__call__", lambda self: True)
     assert run(capsys, "plan", site / "tiny.toml", "--out", out_file)[0] == 130
     write_site(site / "five.toml", TINY, probes={"count": 5})
     code, _, err = run(capsys, "plan", site / "five.toml", "--resume", out_file)
@@ -415,7 +416,7 @@ def test_resume_of_a_score_result_is_bad_input(site, capsys):
 
 
 def test_demo_config_is_bundled():
-    config = cli._demo_config()
+    config = reruns.demo_config()
     assert "fictional" in config.title.lower()
 
 
@@ -426,8 +427,8 @@ def test_demo_config_is_bundled():
 
 def test_signals_set_the_stop_flag_and_handlers_are_restored():
     before = (signal.getsignal(signal.SIGINT), signal.getsignal(signal.SIGTERM))
-    flag = cli._StopFlag()
-    with cli._signals_to(flag):
+    flag = commands.StopFlag()
+    with commands.signals_to(flag.handle):
         assert not flag()
         signal.raise_signal(signal.SIGTERM)
         assert flag()
@@ -611,3 +612,13 @@ def test_d_ratio_and_efficiency_arithmetic(tmp_path, capsys):
     eff = re.search(r"D-efficiency: (\S+) %", out)
     want = 100 * np.exp((r.score.value - r.search.bound) / n)
     assert float(eff.group(1)) == pytest.approx(want, abs=0.051)
+
+
+def test_a_probe_on_the_point_charge_is_the_layouts_fault(site, capsys):
+    # Coulomb's law is infinite at a point charge (the contract: an error naming the point);
+    # the layout put the probe there, so it is bad input that names the layout file.
+    (site / "on.csv").write_text("x_m,y_m,z_m\n100,1500,0\n0,0,3000\n")
+    code, _, err = run(capsys, "score", site / "tiny.toml", "--layout", site / "on.csv")
+    assert code == 2
+    line = one_error_line(err)
+    assert "on.csv" in line and "lies on a point charge" in line

@@ -316,3 +316,34 @@ def test_plot_folder_that_is_a_file_is_bad_input(planned, site, capsys):
     (site / "taken").write_text("x")
     assert main(["plot", "old.h5", "--folder", "taken"]) == 2
     assert "exists and is not a folder" in capsys.readouterr().err
+
+
+# --------------------------------------------------------------------------------------------
+# One error boundary: a fault inside the library is a bug (exit 1), never "bad input" (exit 2)
+# --------------------------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize(
+    ("module", "function", "argv"),
+    [
+        ("probeplan.budget", "pareto_front", ["budget", "site.toml", "--quiet"]),
+        ("probeplan.simulate", "_bounds", ["simulate", "old.h5", "--trials", "3"]),
+        ("probeplan.plots", "coverage_grid", ["plot", "old.h5"]),
+    ],
+)
+def test_an_internal_value_error_is_a_bug_not_bad_input(
+    planned, capsys, monkeypatch, module, function, argv
+):
+    import importlib
+
+    def fault(*args, **kwargs):
+        raise ValueError("injected fault")
+
+    monkeypatch.setattr(importlib.import_module(module), function, fault)
+    monkeypatch.delenv("PROBEPLAN_DEBUG", raising=False)
+    assert main(argv) == 1
+    err = capsys.readouterr().err
+    lines = err.strip().splitlines()
+    assert len(lines) == 1, err
+    assert lines[0].startswith(f"probeplan {argv[0]}: internal error: ValueError: injected fault")
+    assert "PROBEPLAN_DEBUG=1" in lines[0] and "Traceback" not in err

@@ -23,7 +23,6 @@ from result_builders import (
     make_simulation,
 )
 
-from probeplan import store
 from probeplan.errors import InputError
 from probeplan.problem import Score
 from probeplan.result import Result, SearchInfo
@@ -35,6 +34,7 @@ from probeplan.store import (
     read_result,
     write_result,
 )
+from probeplan.store import write as store_write
 
 # --------------------------------------------------------------------------------------------
 # Round trip
@@ -195,7 +195,7 @@ def test_failed_write_leaves_nothing(tmp_path, monkeypatch, error):
         f.create_dataset("layout/positions_m", data=np.zeros((2, 3)))
         raise error
 
-    monkeypatch.setattr(store, "_write", half_write)
+    monkeypatch.setattr(store_write, "_write", half_write)
     with pytest.raises(type(error)):
         write_result(make_result(np.random.default_rng(8)), tmp_path / "r.h5")
     assert list(tmp_path.iterdir()) == []
@@ -209,7 +209,7 @@ def test_failed_overwrite_keeps_old_file(tmp_path, monkeypatch):
     def boom(f, result):
         raise RuntimeError("boom")
 
-    monkeypatch.setattr(store, "_write", boom)
+    monkeypatch.setattr(store_write, "_write", boom)
     with pytest.raises(RuntimeError):
         write_result(r, target, force=True)
     assert_results_equal(r, read_result(target))

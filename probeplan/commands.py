@@ -1,0 +1,333 @@
+"""The bodies of the ``probeplan`` commands: load, call the library, write, report. No physics.
+
+Each command takes the parsed arguments and a list it appends every file it has written to
+(whole), so that the command line can say what was written whatever stops the run. Bad input
+raises :class:`~probeplan.errors.InputError` where it enters (:mod:`probeplan.reruns`, the
+config, the store); everything else that goes wrong is a bug.
+
+Map of this module:
+
+1. Signals: :class:`StopFlag`, :func:`signals_to`, :func:`stoppable` (SIGINT / SIGTERM end the
+   search cleanly).
+2. Writing: :func:`finish` (a plan or budget result), :func:`record_write`.
+3. The commands, :data:`COMMANDS`.
+"""
+
+from __future__ import annotations
+
+import argparse
+import contextlib
+import signal
+from collections.abc import Callable, Iterator
+from dataclasses import replace
+from pathlib import Path
+
+import numpy as np
+
+from . import report, reruns
+from .errors import EXIT_INTERRUPTED, EXIT_OK, InputError
+
+# --------------------------------------------------------------------------------------------
+# Signals: SIGINT / SIGTERM end the search cleanly
+# --------------------------------------------------------------------------------------------
+
+
+class StopFlag:
+    """Set by SIGINT/SIGTERM; polled by the search through ``stop()``.
+
+    A second signal while the flag is already set raises KeyboardInterrupt: the user insists,
+    so the run ends at once without writing a file.
+    """
+
+    def __init__(self) -> None:
+        self.signum: int | None = None
+
+    def __call__(self) -> bool:
+        return self.signum is not None
+
+    def handle(self, signum, frame) -> None:
+        if self.signum is not None:
+            raise KeyboardInterrupt
+        self.signum = signum
+
+
+@contextlib.contextmanager
+def signals_to(handler: Callable) -> Iterator[None]:
+    """Route SIGINT and SIGTERM to ``handler(signum, frame)`` inside the block; restore the
+    old handlers after."""
+    saved = {}
+    try:
+        for sig in (signal.SIGINT, signal.SIGTERM):
+            try:
+                saved[sig] = signal.signal(sig, handler)
+            except ValueError:  # not the main thread (an embedding application): no handlers
+                break
+        yield
+    finally:
+        for sig, old in saved.items():
+            signal.signal(sig, old)
+
+
+@contextlib.contextmanager
+def stoppable(quiet: bool) -> Iterator[tuple]:
+    """A progress callable (None when quiet) and a stop flag set by SIGINT/SIGTERM."""
+    flag = StopFlag()
+    progress_cm = contextlib.nullcontext(None) if quiet else report.progress_bar()
+    with progress_cm as progress, signals_to(flag.handle):
+        yield progress, flag
+
+
+# --------------------------------------------------------------------------------------------
+# Writing
+# --------------------------------------------------------------------------------------------
+
+
+def record_write(write: Callable[[], Path], written: list[Path]) -> Path:
+    """Run ``write()`` (which writes one file whole or not at all) and append the file to
+    ``written``."""
+    path = write()
+    written.append(path)
+    return path
+
+
+def finish(result, out: Path, force: bool, quiet: bool, written: list[Path]) -> int:
+    """Write a plan or budget result, print it, and give the exit status of its completion."""
+    from .store import write_result
+
+    path = record_write(lambda: write_result(result, out, force=force), written)
+    if not quiet:
+        report.print_result(result)
+    report.print_written(path, complete=result.complete, command=result.command)
+    return EXIT_OK if result.complete else EXIT_INTERRUPTED
+
+
+# --------------------------------------------------------------------------------------------
+# Commands
+# --------------------------------------------------------------------------------------------
+
+
+def cmd_plan(args: argparse.Namespace, written: list[Path]) -> int:
+    """``probeplan plan``: search a layout and write it with its score."""
+    from .result import make_result
+    from .search import d_efficiency, plan
+
+    stored, config, base_config, old, out, force = reruns.prepare_run(args, "plan", suffix="")
+    problem = reruns.build_problem(config)
+    check_enough_readings(problem, config)
+    warm = history = None
+    if old is not None and args.from_as == "start":
+        warm = reruns.new_probes(old)
+    if stored is not None:
+        warm, history = reruns.resume_start(stored, args.resume, problem.count)
+
+    with stoppable(args.quiet) as (progress, flag):
+        outcome = plan(problem, progress=progress, stop=flag, warm_start_m=warm, history=history)
+
+    extra = {}
+    eff = d_efficiency(outcome.score.value, outcome.info.bound, problem.n_params)
+    if eff is not None and problem.criterion.name == "d":
+        extra["d_efficiency"] = float(eff)
+    changes = None
+    if old is not None:
+        changes = reruns.changes(old, args.from_file, args.from_as, base_config, outcome.score)
+    result = make_result(
+        "plan",
+        config,
+        outcome.score,
+        search=outcome.info,
+        complete=outcome.complete,
+        extra=extra,
+        changes=changes,
+        probe_names=reruns.run_names(config, outcome.score),
+    )
+    return finish(result, out, force, args.quiet, written)
+
+
+def check_enough_readings(problem, config) -> None:
+    """A layout of n scalar readings cannot determine more than n parameters: say so before
+    searching (the Fisher information is a sum of n rank-one terms)."""
+    axes = problem.new_axes.shape[0]
+    readings = problem.count * axes + int(np.count_nonzero(np.any(problem.installed_axes, -1)))
+    if readings < problem.n_params:
+        raise InputError(
+            f"{config.path}: `probes.count` = {problem.count} new meters of {axes} axis/axes"
+            f"{' plus the installed ones' if problem.installed_m.shape[0] else ''} give "
+            f"{readings} readings, which cannot determine {problem.n_params} estimated "
+            f"parameters ({', '.join(problem.names)}); add meters, use 3-axis meters "
+            '(component = "vector") or estimate fewer parameters.'
+        )
+
+
+def cmd_score(args: argparse.Namespace, written: list[Path]) -> int:
+    """``probeplan score``: score a layout given as a CSV or an earlier result."""
+    from .result import make_result
+    from .sources import SingularPointError
+    from .store import check_writable, read_layout_csv, write_result
+
+    config = reruns.load_config(args.config)
+    old = layout = None
+    if args.from_file:
+        old = reruns.read_old(args.from_file)
+        positions, gain = reruns.new_probes(old), reruns.new_gains(old)
+        axes, grades = old.score.new_meters()
+        where, names = f"{args.from_file}", None
+    else:
+        layout = read_layout_csv(args.layout)
+        positions, names = layout.positions_m, layout.names
+        axes, grades = reruns.csv_axes(config, layout), layout.grades
+        where = f"{layout.path}"
+    reruns.check_grades(config, where, grades, names)
+    if args.out:
+        check_writable(args.out, force=args.force)
+    problem = reruns.build_problem(config, count=positions.shape[0], layout_axes=axes)
+    if layout is not None:
+        gain = reruns.csv_gains(problem, layout)
+    g = config.ground_z_m
+    if g is not None and positions.size and positions[:, 2].min() < g:
+        i = int(np.argmin(positions[:, 2]))
+        raise InputError(
+            f"{where}: probe {i} is at z = {positions[i, 2]:g} m, below the ground plane at "
+            f"z = {g:g} m of {config.path}; a meter reads the field on or above the ground."
+        )
+    try:
+        score = problem.score(positions, gain, axes, reruns.grade_names(grades))
+    except SingularPointError as exc:  # a probe placed on a point charge: the layout's fault
+        raise InputError(f"{where} (installed probes counted first): {exc}") from None
+    # Scoring a layout that breaks the mounting rules is allowed (it may be what is installed
+    # today), but the summary says which rules it breaks.
+    notes = tuple(
+        f"{where} (new probes counted from 0 in file order): {v} The mounting rules of "
+        f"{config.path} do not allow this."
+        for v in problem.site.violations(positions)
+    )
+    names = reruns.score_names(config, score, layout, problem.installed_m.shape[0])
+    changes = None
+    if old is not None:
+        changes = reruns.changes(old, args.from_file, "rescore", config, score)
+    result = make_result("score", config, score, changes=changes, notes=notes, probe_names=names)
+    report.print_result(result)
+    if args.out:
+        path = record_write(lambda: write_result(result, args.out, force=args.force), written)
+        report.print_written(path)
+    return EXIT_OK
+
+
+def cmd_budget(args: argparse.Namespace, written: list[Path]) -> int:
+    """``probeplan budget``: plan every (count, grade) option and price it."""
+    from .budget import chosen_option, run_budget
+    from .result import make_result
+
+    run = reruns.prepare_run(args, "budget", suffix="-budget")
+    config = run.config
+    reruns.build_problem(config)  # every config check before the sweep spends its time
+    done = reruns.stored_options(run.stored) if run.stored is not None else ()
+
+    with stoppable(args.quiet) as (progress, flag):
+        table, complete = run_budget(config, progress=progress, stop=flag, done=done)
+    if table.count.size == 0:
+        report.print_interrupted(written)
+        return EXIT_INTERRUPTED  # stopped before any option was planned: nothing to write
+    maximise = config.design.criterion == "d"
+    row = chosen_option(table, maximise)
+    grade = next(g for g in config.grades if g.name == table.grade[row])
+    problem = reruns.build_problem(config, count=int(table.count[row]), grade=grade)
+    score = problem.score(table.layouts[row])
+    changes = None
+    if run.old is not None:
+        changes = reruns.changes(run.old, args.from_file, args.from_as, run.base_config, score)
+    if table.cheapest >= 0:
+        why = "the cheapest option that meets the target"
+    elif table.target is not None:
+        why = "no option meets the target; the best-scoring option"
+    else:
+        why = "no target set; the best-scoring option"
+    note = (
+        f"the layout and bounds below are budget row {row}: {table.count[row]} new "
+        f'"{table.grade[row]}" meters, cost {table.cost[row]:,.0f} ({why}).'
+    )
+    result = make_result(
+        "budget",
+        config,
+        score,
+        budget=table,
+        complete=complete,
+        extra={"budget_row_scored": float(row)},
+        changes=changes,
+        notes=(note,),
+        probe_names=reruns.run_names(config, score),
+    )
+    return finish(result, run.out, run.force, args.quiet, written)
+
+
+def cmd_show(args: argparse.Namespace, written: list[Path]) -> int:
+    """``probeplan show``: the summary of a stored result (and its layout as a CSV)."""
+    from .store import check_writable, read_result, write_layout_csv
+
+    result = read_result(args.file)
+    if args.layout_csv:
+        check_writable(args.layout_csv, force=args.force, option="--layout-csv", suffix=".csv")
+    report.print_result(result)
+    if args.layout_csv:
+        path = record_write(
+            lambda: write_layout_csv(result, args.layout_csv, force=args.force), written
+        )
+        report.print_layout_written(path)
+    return EXIT_OK
+
+
+def cmd_simulate(args: argparse.Namespace, written: list[Path]) -> int:
+    """``probeplan simulate``: simulated fits of a stored layout, stored back into its file."""
+    from .simulate import simulate
+    from .store import read_result, write_result
+
+    if args.trials < 2:
+        raise InputError(f"--trials must be a whole number >= 2; got {args.trials}.")
+    result = read_result(args.file)
+    config, problem, (positions, gain, axes, grades) = reruns.stored_problem(result, args.file)
+    seed = config.seed if args.seed is None else args.seed
+    sim = simulate(
+        problem,
+        positions,
+        gain,
+        axes=axes,
+        grades=grades,
+        trials=args.trials,
+        rng=np.random.default_rng(seed),
+    )
+    result = replace(result, simulation=sim)
+    report.print_result(result)
+    path = record_write(lambda: write_result(result, args.file, force=True), written)
+    report.print_written(path)
+    return EXIT_OK
+
+
+def cmd_plot(args: argparse.Namespace, written: list[Path]) -> int:
+    """``probeplan plot``: site map, coverage map and budget curve of a stored result."""
+    from .plots import plot_all
+    from .store import read_result
+
+    result = read_result(args.file)
+    config, problem, _ = reruns.stored_problem(result, args.file)
+    src = Path(args.file)
+    folder = Path(args.folder) if args.folder else src.with_name(src.stem + "_plots")
+    if folder.exists() and not folder.is_dir():
+        raise InputError(f"{folder}: exists and is not a folder; give --folder a folder name.")
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise InputError(f"{folder}: cannot create the folder ({exc.strerror}).") from None
+    paths = plot_all(result, config, problem, folder, fmt=args.fmt)
+    written.extend(paths)
+    report.print_plots(paths)
+    return EXIT_OK
+
+
+#: Command name -> its body.
+COMMANDS: dict[str, Callable[[argparse.Namespace, list[Path]], int]] = {
+    "plan": cmd_plan,
+    "score": cmd_score,
+    "budget": cmd_budget,
+    "show": cmd_show,
+    "simulate": cmd_simulate,
+    "plot": cmd_plot,
+}
