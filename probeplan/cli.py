@@ -32,12 +32,21 @@ from __future__ import annotations
 import argparse
 import contextlib
 import os
+import signal
 import sys
+from collections.abc import Iterator
 from pathlib import Path
 
 from . import report
 from .commands import COMMANDS
-from .errors import EXIT_INPUT, EXIT_INTERNAL, EXIT_INTERRUPTED, EXIT_OK, InputError
+from .errors import (
+    EXIT_INPUT,
+    EXIT_INTERNAL,
+    EXIT_INTERRUPTED,
+    EXIT_OK,
+    InputError,
+    raise_interrupt,
+)
 
 FROM_MODES = ("start", "installed")
 PLOT_FORMATS = ("png", "svg")
@@ -284,6 +293,26 @@ def main(argv: list[str] | None = None) -> int:
     int
         Exit status: 0 done, 2 bad input, 130 interrupted, 1 internal error.
     """
+    with _sigterm_interrupts():
+        return _run(argv)
+
+
+@contextlib.contextmanager
+def _sigterm_interrupts() -> Iterator[None]:
+    """SIGTERM means what Ctrl-C means inside the block (exit status 130, not 143)."""
+    try:
+        old = signal.signal(signal.SIGTERM, raise_interrupt)
+    except ValueError:  # not the main thread (an embedding application): no handler
+        old = None
+    try:
+        yield
+    finally:
+        if old is not None:
+            signal.signal(signal.SIGTERM, old)
+
+
+def _run(argv: list[str] | None) -> int:
+    """Parse and run one command; every exception ends here, as an exit status and one line."""
     command = None
     written: list[Path] = []  # every file written whole, for the message after an interrupt
     try:
@@ -297,7 +326,7 @@ def main(argv: list[str] | None = None) -> int:
         report.print_error(str(exc))
         return EXIT_INPUT
     except KeyboardInterrupt:
-        report.print_interrupted(written)
+        report.print_interrupted(written=written)
         return EXIT_INTERRUPTED
     except BrokenPipeError:
         # `probeplan show x.h5 | head`: the reader left; not an error of ours.

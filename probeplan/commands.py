@@ -82,19 +82,36 @@ def stoppable(quiet: bool) -> Iterator[tuple]:
 # --------------------------------------------------------------------------------------------
 
 
+@contextlib.contextmanager
+def signals_deferred() -> Iterator[None]:
+    """Hold SIGINT and SIGTERM until the block is done, then act on them (KeyboardInterrupt).
+
+    Around a write and its record in ``written``: a file is either written whole and named as
+    written, or not written and not named, whenever the signal comes."""
+    caught: list[int] = []
+    with signals_to(lambda signum, frame: caught.append(signum)):
+        yield
+    if caught:
+        raise KeyboardInterrupt
+
+
 def record_write(write: Callable[[], Path], written: list[Path]) -> Path:
     """Run ``write()`` (which writes one file whole or not at all) and append the file to
-    ``written``."""
-    path = write()
-    written.append(path)
+    ``written``, with signals held until both are done."""
+    with signals_deferred():
+        path = write()
+        written.append(path)
     return path
 
 
-def finish(result, out: Path, force: bool, quiet: bool, written: list[Path]) -> int:
+def finish(run: reruns.Run, result, quiet: bool, written: list[Path]) -> int:
     """Write a plan or budget result, print it, and give the exit status of its completion."""
     from .store import write_result
 
-    path = record_write(lambda: write_result(result, out, force=force), written)
+    def write() -> Path:
+        return write_result(result, run.out, force=run.force, names=run.names)
+
+    path = record_write(write, written)
     if not quiet:
         report.print_result(result)
     report.print_written(path, complete=result.complete, command=result.command)
@@ -111,7 +128,8 @@ def cmd_plan(args: argparse.Namespace, written: list[Path]) -> int:
     from .result import make_result
     from .search import d_efficiency, plan
 
-    stored, config, base_config, old, out, force = reruns.prepare_run(args, "plan", suffix="")
+    run = reruns.prepare_run(args, "plan", suffix="")
+    stored, config, old = run.stored, run.config, run.old
     problem = reruns.build_problem(config)
     check_enough_readings(problem, config)
     warm = history = None
@@ -122,6 +140,10 @@ def cmd_plan(args: argparse.Namespace, written: list[Path]) -> int:
 
     with stoppable(args.quiet) as (progress, flag):
         outcome = plan(problem, progress=progress, stop=flag, warm_start_m=warm, history=history)
+    # A search stopped before it had any layout says so (``has_layout``, the search stages).
+    if not getattr(outcome, "has_layout", True):
+        report.print_interrupted(when="before the search had a layout", written=written)
+        return EXIT_INTERRUPTED  # nothing to write
 
     extra = {}
     eff = d_efficiency(outcome.score.value, outcome.info.bound, problem.n_params)
@@ -129,7 +151,7 @@ def cmd_plan(args: argparse.Namespace, written: list[Path]) -> int:
         extra["d_efficiency"] = float(eff)
     changes = None
     if old is not None:
-        changes = reruns.changes(old, args.from_file, args.from_as, base_config, outcome.score)
+        changes = reruns.changes(old, args.from_file, args.from_as, run.base_config, outcome.score)
     result = make_result(
         "plan",
         config,
@@ -140,7 +162,7 @@ def cmd_plan(args: argparse.Namespace, written: list[Path]) -> int:
         changes=changes,
         probe_names=reruns.run_names(config, outcome.score),
     )
-    return finish(result, out, force, args.quiet, written)
+    return finish(run, result, args.quiet, written)
 
 
 def check_enough_readings(problem, config) -> None:
@@ -178,7 +200,7 @@ def cmd_score(args: argparse.Namespace, written: list[Path]) -> int:
         where = f"{layout.path}"
     reruns.check_grades(config, where, grades, names)
     if args.out:
-        check_writable(args.out, force=args.force)
+        check_writable(args.out, force=args.force, reading=[args.config, where])
     problem = reruns.build_problem(config, count=positions.shape[0], layout_axes=axes)
     if layout is not None:
         gain = reruns.csv_gains(problem, layout)
@@ -225,7 +247,7 @@ def cmd_budget(args: argparse.Namespace, written: list[Path]) -> int:
     with stoppable(args.quiet) as (progress, flag):
         table, complete = run_budget(config, progress=progress, stop=flag, done=done)
     if table.count.size == 0:
-        report.print_interrupted(written)
+        report.print_interrupted(when="before any option was planned", written=written)
         return EXIT_INTERRUPTED  # stopped before any option was planned: nothing to write
     maximise = config.design.criterion == "d"
     row = chosen_option(table, maximise)
@@ -256,7 +278,7 @@ def cmd_budget(args: argparse.Namespace, written: list[Path]) -> int:
         notes=(note,),
         probe_names=reruns.run_names(config, score),
     )
-    return finish(result, run.out, run.force, args.quiet, written)
+    return finish(run, result, args.quiet, written)
 
 
 def cmd_show(args: argparse.Namespace, written: list[Path]) -> int:
@@ -265,7 +287,13 @@ def cmd_show(args: argparse.Namespace, written: list[Path]) -> int:
 
     result = read_result(args.file)
     if args.layout_csv:
-        check_writable(args.layout_csv, force=args.force, option="--layout-csv", suffix=".csv")
+        check_writable(
+            args.layout_csv,
+            force=args.force,
+            option="--layout-csv",
+            suffix=".csv",
+            reading=[args.file],
+        )
     report.print_result(result)
     if args.layout_csv:
         path = record_write(
@@ -296,7 +324,8 @@ def cmd_simulate(args: argparse.Namespace, written: list[Path]) -> int:
     )
     result = replace(result, simulation=sim)
     report.print_result(result)
-    path = record_write(lambda: write_result(result, args.file, force=True), written)
+    # Stored back into the file it read: there is no option naming another file.
+    path = record_write(lambda: write_result(result, args.file, force=True, option=None), written)
     report.print_written(path)
     return EXIT_OK
 
@@ -316,8 +345,10 @@ def cmd_plot(args: argparse.Namespace, written: list[Path]) -> int:
         folder.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise InputError(f"{folder}: cannot create the folder ({exc.strerror}).") from None
-    paths = plot_all(result, config, problem, folder, fmt=args.fmt)
-    written.extend(paths)
+    # Each image is written whole; signals wait until the set is written and recorded.
+    with signals_deferred():
+        paths = plot_all(result, config, problem, folder, fmt=args.fmt)
+        written.extend(paths)
     report.print_plots(paths)
     return EXIT_OK
 

@@ -25,3 +25,8 @@ class InputError(ValueError):
     was found and what is allowed. It subclasses ``ValueError`` so that API callers who
     catch ``ValueError`` catch it too.
     """
+
+
+def raise_interrupt(signum, frame) -> None:
+    """A signal handler: SIGTERM means what Ctrl-C means (KeyboardInterrupt, exit status 130)."""
+    raise KeyboardInterrupt

@@ -19,8 +19,6 @@ purple stars; mounting regions are light green, keep-outs red hatching.
 
 from __future__ import annotations
 
-import os
-import secrets
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -35,6 +33,7 @@ from matplotlib.ticker import FuncFormatter, NullFormatter
 from .fisher import CRITERIA, covariance, fisher_from_rows
 from .probes import whitened_rows
 from .problem import draw_scenarios
+from .store.files import write_atomically
 
 #: Output formats.
 FORMATS: tuple[str, ...] = ("png", "svg")
@@ -491,17 +490,14 @@ def _check_path(path) -> tuple[Path, str]:
 
 
 def _save(fig: Figure, path: Path, fmt: str) -> Path:
-    """Write to a temporary file in the same folder, then rename (never half written)."""
-    # A fresh name opened exclusively: permissions follow the umask like any other file.
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.{secrets.token_hex(4)}.tmp")
-    try:
-        with open(tmp, "xb") as fh:
+    """Write the figure whole or not at all, replacing only a regular file (an earlier plot):
+    a failure (read-only folder, full disk) is an InputError naming the file."""
+
+    def write(tmp: Path) -> None:
+        with open(tmp, "wb") as fh:
             fig.savefig(fh, format=fmt, dpi=DPI)
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    return path
+
+    return write_atomically(Path(path), write, "the plot", force=True, option="--folder")
 
 
 def _xy_geometry(region, buffer_m: float = 0.0):

@@ -637,14 +637,18 @@ def print_error(message: str, console: Console | None = None) -> None:
     _line(f"probeplan: error: {message}", console)
 
 
-def print_interrupted(written: Sequence = (), console: Console | None = None) -> None:
-    """One line on standard error after an interrupt: which files were written whole (the
-    ``written`` paths), or that none was."""
-    if not written:
-        _line("probeplan: interrupted; no result file was written.", console)
+def print_interrupted(
+    console: Console | None = None, *, when: str = "", written: Sequence = ()
+) -> None:
+    """One line on standard error after an interrupt: the files written whole before it
+    (``written``), or that no result file was written (``when``, e.g. "before the search had
+    a layout", says why)."""
+    if written:
+        names = ", ".join(os.fspath(p) for p in written)
+        _line(f"probeplan: interrupted after writing {names} (written whole).", console)
         return
-    names = ", ".join(os.fspath(p) for p in written)
-    _line(f"probeplan: interrupted after writing {names} (written whole).", console)
+    why = f" {when}" if when else ""
+    _line(f"probeplan: interrupted{why}; no result file was written.", console)
 
 
 def print_internal_error(

@@ -15,6 +15,8 @@ Map of this module:
 from __future__ import annotations
 
 import argparse
+import os
+from collections.abc import Iterator
 from dataclasses import replace
 from importlib import resources
 from pathlib import Path
@@ -89,12 +91,13 @@ class Run(NamedTuple):
     old: object  # the --from result, or None
     out: Path
     force: bool
+    names: Iterator[Path]  # a default `out`: the names to take if it is taken meanwhile
 
 
 def prepare_run(args: argparse.Namespace, command: str, suffix: str) -> Run:
     """Config (given, resumed or the demo), --resume / --from, and the output file, checked
     writable before the search spends its time."""
-    from .store import check_writable, free_name
+    from .store import check_writable, free_names
 
     stored = read_resumed(args.resume, command) if args.resume else None
     if args.config:
@@ -115,16 +118,19 @@ def prepare_run(args: argparse.Namespace, command: str, suffix: str) -> Run:
         if args.from_as == "installed":
             config = with_old_installed(config, old, args.from_file)
     resume_path = Path(args.resume) if args.resume else None
+    names: Iterator[Path] = iter(())
     if args.out:
         out = Path(args.out)
     elif resume_path is not None:
         out = resume_path
     else:
-        out = free_name(Path(config.path).stem + suffix)
+        names = free_names(Path(config.path).stem + suffix)
+        out = next(p for p in names if not os.path.lexists(p))
     # Resuming into the resumed file replaces it: that is what --resume is for.
     force = bool(args.force) or (resume_path is not None and _same_file(out, resume_path))
-    check_writable(out, force=force)
-    return Run(stored, config, base_config, old, out, force)
+    reading = [p for p in (args.config, args.from_file) if p]
+    check_writable(out, force=force, reading=reading)
+    return Run(stored, config, base_config, old, out, force, names)
 
 
 def _same_file(a: Path, b: Path) -> bool:

@@ -5,11 +5,12 @@ Map of this package (every name below is importable from ``probeplan.store``):
 1. :func:`write_result` / :func:`read_result`: one :class:`~probeplan.result.Result` per file,
    every path of the contract's "Result file (HDF5)" table plus what ``probeplan show`` needs to
    reprint the whole summary from the file alone. Every dataset with a unit carries an attr
-   ``units``. A file is written to a temporary name in the target folder and renamed, so a
-   reader never sees a half-written file; an existing file is kept unless ``force``.
+   ``units``. A file is written whole or not at all (see :mod:`.files`): an existing file
+   is kept unless ``force``, and only a regular file is ever replaced.
    Writing in :mod:`.write`, reading in :mod:`.read`.
 2. :mod:`.files`: :func:`check_writable` (before a run spends its time), the atomic write of
-   every file, and :func:`free_name`, the default output name (``demo.h5``, ``demo-2.h5`` …).
+   every file, and :func:`free_name` / :func:`free_names`, the default output names
+   (``demo.h5``, ``demo-2.h5`` …).
 3. :func:`read_layout_csv` / :func:`write_layout_csv` (:mod:`.layout_csv`): a layout of new
    probes, one probe a row.
 4. Re-exported from :mod:`probeplan.resulttypes`: :func:`param_unit`, :func:`value_unit`,
@@ -53,7 +54,7 @@ File layout (beyond the contract's paths)::
 from __future__ import annotations
 
 from ..resulttypes import param_unit, probe_names, value_unit
-from .files import check_writable, free_name
+from .files import check_writable, free_name, free_names
 from .layout_csv import LAYOUT_COLUMNS, LayoutFile, read_layout_csv, write_layout_csv
 from .read import read_result
 from .write import SIGN_CONVENTION, write_result
@@ -64,6 +65,7 @@ __all__ = [
     "LayoutFile",
     "check_writable",
     "free_name",
+    "free_names",
     "param_unit",
     "probe_names",
     "read_layout_csv",

@@ -251,4 +251,4 @@ def write_layout_csv(result: Result, path: str | os.PathLike, *, force: bool = F
             writer.writerow(["name", "x_m", "y_m", "z_m", "component", "grade", "gain"])
             writer.writerows(rows)
 
-    return write_atomically(target, write, "the layout file")
+    return write_atomically(target, write, "the layout file", force=force, option="--layout-csv")

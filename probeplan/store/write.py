@@ -5,7 +5,9 @@ for the file layout). The file is written whole or not at all (:mod:`.files`).""
 from __future__ import annotations
 
 import dataclasses
+import io
 import os
+from collections.abc import Iterable
 from pathlib import Path
 
 import h5py
@@ -23,8 +25,15 @@ _STR = h5py.string_dtype()
 _FISHER_UNITS = "SI (1/(unit_i unit_j))"
 
 
-def write_result(result: Result, path: str | os.PathLike, *, force: bool = False) -> Path:
-    """Write a result to an HDF5 file, atomically.
+def write_result(
+    result: Result,
+    path: str | os.PathLike,
+    *,
+    force: bool = False,
+    option: str | None = "--out",
+    names: Iterable[Path] = (),
+) -> Path:
+    """Write a result to an HDF5 file, whole or not at all (see :mod:`probeplan.store.files`).
 
     Parameters
     ----------
@@ -32,7 +41,13 @@ def write_result(result: Result, path: str | os.PathLike, *, force: bool = False
     path : str or path-like
         The file to write (its folder must exist).
     force : bool
-        Replace an existing file. Without it an existing file is an error.
+        Replace an existing regular file. Without it an existing file is an error, even one
+        that appeared while the result was being written.
+    option : str or None
+        The command-line option naming the file, for the messages (None: none).
+    names : iterable of Path
+        Where ``path`` is a default name: the names to take in turn if it was taken meanwhile
+        (e.g. :func:`~probeplan.store.files.free_names`).
 
     Returns
     -------
@@ -42,16 +57,25 @@ def write_result(result: Result, path: str | os.PathLike, *, force: bool = False
     Raises
     ------
     InputError
-        The file exists (without ``force``), the path is a folder, its folder is missing, or
-        the file cannot be created there.
+        The file exists (without ``force``), the path is not a regular file (a folder, a
+        link, a FIFO, a device …), its folder is missing, or the file cannot be written there
+        (read-only folder, full disk …); nothing is left behind.
     """
-    target = check_writable(path, force=force)
+    target = check_writable(path, force=force, option=option)
 
     def write(tmp: Path) -> None:
-        with h5py.File(tmp, "w") as f:
+        # The file is built in memory and written with plain file I/O: HDF5's own writes on
+        # a full disk leave objects that crash the interpreter when freed (exit 139), where
+        # a plain write raises one OSError (a result is kilobytes to a few megabytes).
+        image = io.BytesIO()
+        with h5py.File(image, "w") as f:
             _write(f, result)
+        with open(tmp, "wb") as fh:
+            fh.write(image.getbuffer())
 
-    return write_atomically(target, write, "the result file")
+    return write_atomically(
+        target, write, "the result file", force=force, option=option, names=names
+    )
 
 
 def _dataset(group: h5py.Group, name: str, data, units: str | list[str] | None = None):
