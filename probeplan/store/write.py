@@ -40,14 +40,10 @@ def write_result(
     result : Result
     path : str or path-like
         The file to write (its folder must exist).
-    force : bool
-        Replace an existing regular file. Without it an existing file is an error, even one
-        that appeared while the result was being written.
-    option : str or None
-        The command-line option naming the file, for the messages (None: none).
-    names : iterable of Path
-        Where ``path`` is a default name: the names to take in turn if it was taken meanwhile
-        (e.g. :func:`~probeplan.store.files.free_names`).
+    force, option, names
+        As for :func:`probeplan.store.files.write_atomically`: replace an existing regular
+        file; the command-line option naming the file (None: none); where ``path`` is a
+        default name, the names to take in turn if it was taken meanwhile.
 
     Returns
     -------
