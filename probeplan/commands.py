@@ -306,11 +306,12 @@ def cmd_show(args: argparse.Namespace, written: list[Path]) -> int:
 def cmd_simulate(args: argparse.Namespace, written: list[Path]) -> int:
     """``probeplan simulate``: simulated fits of a stored layout, stored back into its file."""
     from .simulate import simulate
-    from .store import read_result, write_result
+    from .store import check_writable, read_result, write_result
 
     if args.trials < 2:
         raise InputError(f"--trials must be a whole number >= 2; got {args.trials}.")
     result = read_result(args.file)
+    check_writable(args.file, force=True, option=None)  # before the fits spend their time
     config, problem, (positions, gain, axes, grades) = reruns.stored_problem(result, args.file)
     seed = config.seed if args.seed is None else args.seed
     sim = simulate(

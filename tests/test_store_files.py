@@ -187,3 +187,20 @@ def test_new_files_follow_the_umask(tmp_path):
     finally:
         os.umask(old)
     assert stat.S_IMODE(os.stat(path).st_mode) == 0o644
+
+
+def test_without_hard_links_the_name_is_still_claimed_exclusively(tmp_path, monkeypatch):
+    # Some file systems (FAT, some network shares) have no hard links: os.link fails with
+    # EPERM there, and the final name is then created exclusively before the file is renamed.
+    def no_links(src, dst):
+        raise OSError(errno.EPERM, os.strerror(errno.EPERM))
+
+    monkeypatch.setattr(os, "link", no_links)
+    r = result(10)
+    assert_results_equal(r, read_result(write_result(r, tmp_path / "a.h5")))
+    taken = tmp_path / "b.h5"
+    monkeypatch.setattr(store_write, "_write", _racing(taken, b"another run's result"))
+    with pytest.raises(InputError, match=r"b\.h5 exists"):
+        write_result(r, taken)
+    assert taken.read_bytes() == b"another run's result"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["a.h5", "b.h5"]

@@ -221,33 +221,34 @@ def write_atomically(
 def _commit(tmp: Path, target: Path, force: bool, option: str | None, names: Iterator) -> Path:
     """Give ``tmp`` the name ``target`` (or the next of ``names``), never replacing a file
     that is not ours unless ``force``."""
+    if force:
+        _refuse_special(target, option)
+        os.replace(tmp, target)
+        return target
     final = target
-    while True:
-        _refuse_special(final, option)
-        if force:
-            os.replace(tmp, final)
-            return final
-        try:
-            os.link(tmp, final)
-            return final
-        except FileExistsError:
-            nxt = next(names, None)
-            if nxt is None:
-                raise InputError(_exists_message(final, option)) from None
-            final = nxt
-        except OSError as exc:
-            if exc.errno not in _NO_HARD_LINKS:
-                raise
-            try:  # no hard links here: claim the name exclusively, then replace our claim
-                os.close(os.open(final, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666))
-            except FileExistsError:
-                nxt = next(names, None)
-                if nxt is None:
-                    raise InputError(_exists_message(final, option)) from None
-                final = nxt
-                continue
-            os.replace(tmp, final)
-            return final
+    while not _link_exclusively(tmp, final):
+        final = next(names, None)
+        if final is None:
+            raise InputError(_exists_message(target, option))
+    return final
+
+
+def _link_exclusively(tmp: Path, final: Path) -> bool:
+    """Give ``tmp`` the name ``final`` as well, unless that name exists (False)."""
+    try:
+        os.link(tmp, final)
+        return True
+    except FileExistsError:
+        return False
+    except OSError as exc:
+        if exc.errno not in _NO_HARD_LINKS:
+            raise
+    try:  # no hard links on this file system: claim the name exclusively, then fill it
+        os.close(os.open(final, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666))
+    except FileExistsError:
+        return False
+    os.replace(tmp, final)
+    return True
 
 
 def _sync(path: Path) -> None:
