@@ -12,6 +12,7 @@ below are invented for the tests.
 from __future__ import annotations
 
 import math
+import pickle
 
 import numpy as np
 import pytest
@@ -21,13 +22,22 @@ from hypothesis import strategies as st
 from scipy.spatial import cKDTree
 from shapely.ops import nearest_points
 
-from probeplan.site import HEX_CELL_FACTOR, REGION_KINDS, Candidates, Region, Site
+from probeplan.site import (
+    HEX_CELL_FACTOR,
+    REGION_KINDS,
+    Buffered,
+    Candidates,
+    Gained,
+    Region,
+    Site,
+    make_region,
+)
 
 FAST = settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 
 
 def rect(x0=0.0, y0=0.0, x1=30.0, y1=20.0, z=1.5, **kw) -> Region:
-    return Region("rectangle", min_m=(x0, y0), max_m=(x1, y1), z_m=z, **kw)
+    return make_region("rectangle", min_m=(x0, y0), max_m=(x1, y1), z_m=z, **kw)
 
 
 # An L-shaped yard (invented): the 10 x 10 square minus its upper-right 5 x 5 quarter.
@@ -35,16 +45,18 @@ L_SHAPE = [[0, 0], [10, 0], [10, 5], [5, 5], [5, 10], [0, 10]]
 
 
 def l_yard(**kw) -> Region:
-    return Region("polygon", vertices_m=L_SHAPE, z_m=2.0, **kw)
+    return make_region("polygon", vertices_m=L_SHAPE, z_m=2.0, **kw)
 
 
 # A wall (invented): the plane y = 60, from x = 0 to 40, z = 0 to 10.
 def wall(**kw) -> Region:
-    return Region("polygon", vertices_m=[[0, 60, 0], [40, 60, 0], [40, 60, 10], [0, 60, 10]], **kw)
+    return make_region(
+        "polygon", vertices_m=[[0, 60, 0], [40, 60, 0], [40, 60, 10], [0, 60, 10]], **kw
+    )
 
 
 # ============================================================================================
-# Region: validation
+# Regions (site.kinds, site.regions): validation
 # ============================================================================================
 
 
@@ -106,27 +118,66 @@ def wall(**kw) -> Region:
 )
 def test_region_rejects_bad_input_with_a_message_naming_the_field(kwargs, match):
     with pytest.raises(ValueError, match=match):
-        Region(**kwargs)
+        make_region(**kwargs)
 
 
 def test_region_message_carries_its_name():
     with pytest.raises(ValueError, match=r"`min_m` of a rectangle 'roof' must be below"):
-        Region("rectangle", min_m=(0, 0), max_m=(0, 1), z_m=1, name="roof")
+        make_region("rectangle", min_m=(0, 0), max_m=(0, 1), z_m=1, name="roof")
 
 
 def test_region_normalises_to_tuples_of_floats():
-    r = Region("rectangle", min_m=np.array([0, 1]), max_m=[2, 3], z_m=np.int64(4))
+    r = make_region("rectangle", min_m=np.array([0, 1]), max_m=[2, 3], z_m=np.int64(4))
     assert r.min_m == (0.0, 1.0) and r.max_m == (2.0, 3.0) and r.z_m == 4.0
     assert all(type(v) is float for v in (*r.min_m, *r.max_m, r.z_m))
-    p = Region("points", positions_m=np.array([[1, 2, 3]]))
+    p = make_region("points", positions_m=np.array([[1, 2, 3]]))
     assert p.positions_m == ((1.0, 2.0, 3.0),)
-    poly = Region("polygon", vertices_m=[[0, 0], [1, 0], [1, 1], [0, 0]], z_m=0)  # closed ring
+    poly = make_region("polygon", vertices_m=[[0, 0], [1, 0], [1, 1], [0, 0]], z_m=0)  # closed ring
     assert poly.vertices_m[1] == (1.0, 0.0)
-    assert REGION_KINDS == ("rectangle", "polygon", "segment", "points")
+    assert tuple(REGION_KINDS) == ("rectangle", "polygon", "segment", "points")
+
+
+def test_registry_builds_each_kind_and_wrappers_carry_gain_and_buffer():
+    tables = {
+        "rectangle": dict(min_m=(0, 0), max_m=(4, 2), z_m=1.0),
+        "polygon": dict(vertices_m=L_SHAPE, z_m=2.0),
+        "segment": dict(start_m=(0, 0, 0), end_m=(0, 0, 6)),
+        "points": dict(positions_m=[[0, 0, 1], [3, 4, 1]]),
+    }
+    for kind, geometry in tables.items():
+        bare = REGION_KINDS[kind](**geometry)
+        assert bare.kind == kind and isinstance(bare, Region)
+        assert (bare.gain, bare.buffer_m) == (1.0, 0.0)
+        assert type(make_region(kind, **geometry)) is REGION_KINDS[kind]
+        # A wrapper changes only what it carries; the geometry answers stay the bare kind's.
+        gained = make_region(kind, **geometry, gain=1.7, name="mast")
+        assert isinstance(gained, Gained) and isinstance(gained, Region)
+        assert (gained.gain, gained.name, gained.kind) == (1.7, "mast", kind)
+        p = np.random.default_rng(1).uniform(-2, 6, size=(50, 3))
+        np.testing.assert_array_equal(gained.distance(p), bare.distance(p))
+        np.testing.assert_array_equal(gained.grid(0.5), bare.grid(0.5))
+        np.testing.assert_array_equal(gained.outline_m(), bare.outline_m())
+    with pytest.raises(ValueError, match=r"`foo` is not used by a segment; a segment takes"):
+        make_region("segment", start_m=(0, 0, 0), end_m=(1, 0, 0), foo=1)
+    with pytest.raises(ValueError, match=r"`region` must be a Region; got str"):
+        Gained("roof", 2.0)
+
+
+def test_buffered_region_grows_only_the_keepout_test_and_survives_pickling():
+    mast = REGION_KINDS["segment"](start_m=(0, 0, 0), end_m=(0, 0, 20))
+    grown = Buffered(mast, 5.0)
+    # Distance from a point to a segment (textbook): (4.9, 0, 10) is 4.9 m from the mast.
+    p = np.array([[4.9, 0, 10], [5.1, 0, 10]])
+    assert grown.contains(p).tolist() == [True, False]
+    assert mast.contains(p).tolist() == [False, False]
+    assert grown.covers(p).tolist() == mast.covers(p).tolist() == [False, False]
+    # Unpickling asks a wrapper for attributes before its fields exist: it must not recurse.
+    again = pickle.loads(pickle.dumps(Gained(grown, 1.0)))
+    assert again.buffer_m == 5.0 and again.contains(p).tolist() == [True, False]
 
 
 # ============================================================================================
-# Region: sizes
+# Regions: sizes
 # ============================================================================================
 
 
@@ -141,19 +192,19 @@ def test_measure_and_dimension_of_every_kind():
     # A roof tilted by 30 degrees over a 10 x 8 footprint: area = footprint / cos(30 deg)
     # (projected area of a plane figure, textbook).
     t = math.tan(math.radians(30.0))
-    roof = Region(
+    roof = make_region(
         "polygon", vertices_m=[[0, 0, 5], [10, 0, 5], [10, 8, 5 + 8 * t], [0, 8, 5 + 8 * t]]
     )
     assert roof.measure == pytest.approx(80.0 / math.cos(math.radians(30.0)))
     assert (roof.dimension, roof.unit_dim) == (2, 2)
-    seg = Region("segment", start_m=(0, 0, 0), end_m=(3, 4, 12))
+    seg = make_region("segment", start_m=(0, 0, 0), end_m=(3, 4, 12))
     assert (seg.dimension, seg.unit_dim, seg.measure) == (1, 1, pytest.approx(13.0))  # 3-4-12-13
-    pts = Region("points", positions_m=[[0, 0, 1], [5, 0, 1], [9, 9, 2]])
+    pts = make_region("points", positions_m=[[0, 0, 1], [5, 0, 1], [9, 9, 2]])
     assert (pts.dimension, pts.unit_dim, pts.measure) == (0, 1, 3.0)
 
 
 # ============================================================================================
-# Region: membership and keep-out semantics
+# Regions: membership and keep-out semantics
 # ============================================================================================
 
 
@@ -180,7 +231,7 @@ def test_footprint_keepout_excludes_every_height_and_buffer_grows_it():
 
 def test_buffered_footprint_matches_shapely_scalar_distance():
     # Reference: shapely's scalar Polygon.distance(Point), one point at a time.
-    tank = Region("polygon", vertices_m=L_SHAPE, z_m=0.0, buffer_m=1.5)
+    tank = make_region("polygon", vertices_m=L_SHAPE, z_m=0.0, buffer_m=1.5)
     outline = shapely.Polygon(L_SHAPE)
     p = np.random.default_rng(2).uniform(-3, 13, size=(1500, 3))
     ref = [outline.distance(shapely.Point(x, y)) <= 1.5 + 1e-6 for x, y, _ in p]
@@ -198,19 +249,19 @@ def test_wall_keepout_is_its_plate_in_3d():
 
 
 def test_segment_and_points_keepouts_use_3d_distance():
-    mast = Region("segment", start_m=(0, 0, 0), end_m=(0, 0, 20), buffer_m=5.0)
+    mast = make_region("segment", start_m=(0, 0, 0), end_m=(0, 0, 20), buffer_m=5.0)
     # Distance from a point to a segment (textbook): to the nearest point of the segment.
     p = np.array([[4.9, 0, 10], [5.1, 0, 10], [0, 0, 24.9], [3, 0, 24], [3, 0, 24.1], [0, 0, -6]])
     assert mast.contains(p).tolist() == [True, False, True, True, False, False]
-    vents = Region("points", positions_m=[[0, 0, 0], [10, 0, 0]], buffer_m=1.0)
+    vents = make_region("points", positions_m=[[0, 0, 0], [10, 0, 0]], buffer_m=1.0)
     q = np.array([[0.6, 0.8, 0], [10, 0, 1.01], [5, 0, 0]])
     assert vents.contains(q).tolist() == [True, False, False]
-    on_line = Region("segment", start_m=(0, 0, 0), end_m=(10, 0, 0))
+    on_line = make_region("segment", start_m=(0, 0, 0), end_m=(10, 0, 0))
     assert on_line.contains(np.array([[5, 0, 0], [5, 1e-3, 0]])).tolist() == [True, False]
 
 
 def test_distance_to_a_segment_matches_the_textbook_formula():
-    seg = Region("segment", start_m=(0, 0, 0), end_m=(10, 0, 0))
+    seg = make_region("segment", start_m=(0, 0, 0), end_m=(10, 0, 0))
     p = np.array([[5, 3, 4], [-3, 4, 0], [13, 0, 4]])
     np.testing.assert_allclose(seg.distance(p), [5.0, 5.0, 5.0])
 
@@ -221,7 +272,7 @@ def test_membership_rejects_bad_point_arrays():
 
 
 # ============================================================================================
-# Region: grid, sample, unit parametrisation
+# Regions: grid, sample, unit parametrisation
 # ============================================================================================
 
 
@@ -242,12 +293,12 @@ def test_grid_of_a_polygon_wall_segment_points_and_a_thin_shape():
     assert l_yard().covers(g).all()
     gw = wall().grid(2.0)
     assert len(gw) == 21 * 6 and np.all(gw[:, 1] == 60.0)
-    seg = Region("segment", start_m=(0, 0, 1), end_m=(10, 0, 1))
+    seg = make_region("segment", start_m=(0, 0, 1), end_m=(10, 0, 1))
     gs = seg.grid(3.0)  # ceil(10 / 3) = 4 pieces, 5 points, both ends
     np.testing.assert_allclose(gs[:, 0], np.linspace(0, 10, 5))
-    pts = Region("points", positions_m=[[0, 0, 1], [5, 0, 1]])
+    pts = make_region("points", positions_m=[[0, 0, 1], [5, 0, 1]])
     np.testing.assert_array_equal(pts.grid(100.0), [[0, 0, 1], [5, 0, 1]])
-    sliver = Region("polygon", vertices_m=[[0.1, 0.1], [0.4, 0.1], [0.4, 0.3]], z_m=0)
+    sliver = make_region("polygon", vertices_m=[[0.1, 0.1], [0.4, 0.1], [0.4, 0.3]], z_m=0)
     one = sliver.grid(5.0)
     assert one.shape == (1, 3) and sliver.covers(one).all()
 
@@ -280,8 +331,8 @@ def test_samples_of_every_kind_lie_on_the_region():
     for region in (
         rect(),
         wall(),
-        Region("segment", start_m=(0, 0, 0), end_m=(5, 5, 5)),
-        Region("points", positions_m=[[0, 0, 1], [2, 0, 1]]),
+        make_region("segment", start_m=(0, 0, 0), end_m=(5, 5, 5)),
+        make_region("points", positions_m=[[0, 0, 1], [2, 0, 1]]),
     ):
         s = region.sample(500, rng)
         assert s.shape == (500, 3) and region.covers(s).all()
@@ -292,7 +343,7 @@ def test_from_unit_is_affine_on_a_rectangle_and_along_a_segment():
     r = rect(2, 3, 12, 8, z=1.0)
     u = np.array([[0, 0], [1, 1], [0.5, 0.2]])
     np.testing.assert_allclose(r.from_unit(u), [[2, 3, 1], [12, 8, 1], [7, 4, 1]])
-    seg = Region("segment", start_m=(0, 0, 0), end_m=(0, 0, 20))
+    seg = make_region("segment", start_m=(0, 0, 0), end_m=(0, 0, 20))
     np.testing.assert_allclose(
         seg.from_unit([[0.0], [0.25], [1.0]]), [[0, 0, 0], [0, 0, 5], [0, 0, 20]]
     )
@@ -301,7 +352,7 @@ def test_from_unit_is_affine_on_a_rectangle_and_along_a_segment():
 
 
 def test_from_unit_picks_a_point_by_floor_of_u_times_n():
-    pts = Region("points", positions_m=[[0, 0, 1], [1, 0, 1], [2, 0, 1], [3, 0, 1]])
+    pts = make_region("points", positions_m=[[0, 0, 1], [1, 0, 1], [2, 0, 1], [3, 0, 1]])
     u = np.array([[0.0], [0.24], [0.25], [0.74], [0.99], [1.0]])
     np.testing.assert_array_equal(pts.from_unit(u)[:, 0], [0, 0, 1, 2, 3, 3])
 
@@ -320,10 +371,10 @@ def test_from_unit_moves_points_outside_a_polygon_to_its_nearest_point():
 
 def test_to_unit_inverts_from_unit():
     rng = np.random.default_rng(5)
-    for region in (rect(), wall(), Region("segment", start_m=(1, 1, 1), end_m=(4, 5, 1))):
+    for region in (rect(), wall(), make_region("segment", start_m=(1, 1, 1), end_m=(4, 5, 1))):
         u = rng.uniform(size=(20, region.unit_dim))
         np.testing.assert_allclose(region.to_unit(region.from_unit(u)), u, atol=1e-12)
-    pts = Region("points", positions_m=[[0, 0, 1], [1, 0, 1], [2, 0, 1]])
+    pts = make_region("points", positions_m=[[0, 0, 1], [1, 0, 1], [2, 0, 1]])
     np.testing.assert_array_equal(pts.from_unit(pts.to_unit(pts.grid(1.0))), pts.grid(1.0))
 
 
@@ -331,11 +382,11 @@ def test_from_unit_rejects_bad_shapes_and_ranges():
     with pytest.raises(ValueError, match=r"`u` for rectangle must have shape \(\.\.\., 2\)"):
         rect().from_unit(np.zeros((3, 1)))
     with pytest.raises(ValueError, match=r"`u` for segment must lie in \[0, 1\]"):
-        Region("segment", start_m=(0, 0, 0), end_m=(1, 0, 0)).from_unit([[1.5]])
+        make_region("segment", start_m=(0, 0, 0), end_m=(1, 0, 0)).from_unit([[1.5]])
 
 
 # ============================================================================================
-# Site: validation, allowed, spacing, violations
+# Rules (site.rules): validation, allowed, spacing, violations
 # ============================================================================================
 
 
@@ -407,64 +458,7 @@ def test_violations_name_every_broken_rule():
 
 
 # ============================================================================================
-# Site: candidate lattice
-# ============================================================================================
-
-
-def test_candidate_grid_hits_the_target_and_reports_its_spacing():
-    site = Site((rect(0, 0, 300, 200, z=1.0),))
-    c = site.candidate_grid()
-    assert isinstance(c, Candidates)
-    assert 0.8 * 1500 <= c.n_candidates <= 1.25 * 1500
-    # A / s^2 = 1500 for a 60 000 m^2 field: s = sqrt(40) = 6.32 m.
-    assert c.spacing_m == pytest.approx(math.sqrt(60_000 / 1500), rel=0.15)
-    assert site.allowed(c.positions_m).all()
-
-
-def test_candidate_grid_mixes_areas_lengths_and_points_and_honours_keepouts():
-    fence = Region("segment", start_m=(0, -5, 1), end_m=(100, -5, 1), gain=1.3)
-    posts = Region("points", positions_m=[[0, 50, 3], [50, 50, 3], [100, 50, 3]], gain=2.0)
-    site = Site(
-        (rect(0, 0, 100, 40, z=1.0), fence, posts),
-        (rect(40, 0, 60, 40, z=0.0),),
-        installed_m=[[0, 50, 3]],
-        min_spacing_m=2.0,
-    )
-    c = site.candidate_grid(target=600)
-    counts = np.bincount(c.region_index, minlength=3)
-    assert counts[2] == 2  # the post at (0, 50, 3) already holds a probe
-    assert counts[1] > 0 and counts[0] > counts[1]
-    assert 0.7 * 600 <= c.n_candidates <= 1.3 * 600
-    np.testing.assert_array_equal(c.gain[c.region_index == 1], 1.3)
-    np.testing.assert_array_equal(c.gain[c.region_index == 2], 2.0)
-    assert site.allowed(c.positions_m).all()
-    assert site.spacing_ok(c.positions_m[:, None, :]).all()  # each clear of the installed probe
-    fixed = site.candidate_grid(spacing_m=5.0)
-    assert fixed.spacing_m == 5.0
-
-
-def test_candidate_grid_removes_exact_duplicates_of_overlapping_regions():
-    a = rect(0, 0, 10, 10, z=1.0, gain=1.0)
-    b = rect(0, 0, 10, 10, z=1.0, gain=3.0)
-    c = Site((a, b)).candidate_grid(spacing_m=2.0)
-    assert c.n_candidates == 36 and np.all(c.region_index == 0)
-    assert len(np.unique(c.positions_m, axis=0)) == 36
-
-
-def test_candidate_grid_of_points_only_reports_zero_spacing():
-    site = Site((Region("points", positions_m=[[0, 0, 1], [3, 0, 1]]),))
-    c = site.candidate_grid()
-    assert c.spacing_m == 0.0 and c.n_candidates == 2
-
-
-def test_candidate_grid_raises_when_nothing_is_left():
-    site = Site((rect(0, 0, 10, 10),), (rect(-1, -1, 11, 11, z=0.0),))
-    with pytest.raises(ValueError, match=r"no candidate position is left"):
-        site.candidate_grid(spacing_m=1.0)
-
-
-# ============================================================================================
-# Site: feasibility
+# Rules: feasibility
 # ============================================================================================
 
 
@@ -480,8 +474,8 @@ def test_check_feasible_names_the_region_and_the_keepout_that_swallows_it():
     with pytest.raises(ValueError, match=r"wholly inside keep-out 0 .* and keep-out 1"):
         two.check_feasible(1)
     # A mast swallowed by the buffer around a point keep-out (3-D test).
-    mast = Region("segment", start_m=(0, 0, 0), end_m=(0, 0, 4))
-    blob = Region("points", positions_m=[[0, 0, 2]], buffer_m=3.0)
+    mast = make_region("segment", start_m=(0, 0, 0), end_m=(0, 0, 4))
+    blob = make_region("points", positions_m=[[0, 0, 2]], buffer_m=3.0)
     with pytest.raises(ValueError, match=r"region 0 \(segment\) lies wholly inside keep-out 0"):
         Site((mast,), (blob,)).check_feasible(1)
     # One region free is enough.
@@ -516,12 +510,12 @@ def test_hexagonal_packing_fits_the_estimate_and_the_estimate_admits_it():
 
 
 def test_check_feasible_counts_segments_and_points():
-    fence = Site((Region("segment", start_m=(0, 0, 1), end_m=(10, 0, 1)),), min_spacing_m=2.5)
+    fence = Site((make_region("segment", start_m=(0, 0, 1), end_m=(10, 0, 1)),), min_spacing_m=2.5)
     fence.check_feasible(5)  # floor(10 / 2.5) + 1 = 5: the two ends and three between
     with pytest.raises(ValueError, match=r"cannot place 6 probes"):
         fence.check_feasible(6)
-    posts = Region("points", positions_m=[[0, 0, 1], [1, 0, 1], [0, 0, 1], [20, 0, 1]])
-    site = Site((posts,), (Region("points", positions_m=[[20, 0, 1]], buffer_m=0.5),))
+    posts = make_region("points", positions_m=[[0, 0, 1], [1, 0, 1], [0, 0, 1], [20, 0, 1]])
+    site = Site((posts,), (make_region("points", positions_m=[[20, 0, 1]], buffer_m=0.5),))
     site.check_feasible(2)
     with pytest.raises(ValueError, match=r"only 2 distinct allowed mounting points remain \(of 4"):
         site.check_feasible(3)
@@ -533,16 +527,73 @@ def test_check_feasible_counts_segments_and_points():
 
 
 # ============================================================================================
-# Site: layouts
+# Layouts (site.layouts): candidate lattice
+# ============================================================================================
+
+
+def test_candidate_grid_hits_the_target_and_reports_its_spacing():
+    site = Site((rect(0, 0, 300, 200, z=1.0),))
+    c = site.candidate_grid()
+    assert isinstance(c, Candidates)
+    assert 0.8 * 1500 <= c.n_candidates <= 1.25 * 1500
+    # A / s^2 = 1500 for a 60 000 m^2 field: s = sqrt(40) = 6.32 m.
+    assert c.spacing_m == pytest.approx(math.sqrt(60_000 / 1500), rel=0.15)
+    assert site.allowed(c.positions_m).all()
+
+
+def test_candidate_grid_mixes_areas_lengths_and_points_and_honours_keepouts():
+    fence = make_region("segment", start_m=(0, -5, 1), end_m=(100, -5, 1), gain=1.3)
+    posts = make_region("points", positions_m=[[0, 50, 3], [50, 50, 3], [100, 50, 3]], gain=2.0)
+    site = Site(
+        (rect(0, 0, 100, 40, z=1.0), fence, posts),
+        (rect(40, 0, 60, 40, z=0.0),),
+        installed_m=[[0, 50, 3]],
+        min_spacing_m=2.0,
+    )
+    c = site.candidate_grid(target=600)
+    counts = np.bincount(c.region_index, minlength=3)
+    assert counts[2] == 2  # the post at (0, 50, 3) already holds a probe
+    assert counts[1] > 0 and counts[0] > counts[1]
+    assert 0.7 * 600 <= c.n_candidates <= 1.3 * 600
+    np.testing.assert_array_equal(c.gain[c.region_index == 1], 1.3)
+    np.testing.assert_array_equal(c.gain[c.region_index == 2], 2.0)
+    assert site.allowed(c.positions_m).all()
+    assert site.spacing_ok(c.positions_m[:, None, :]).all()  # each clear of the installed probe
+    fixed = site.candidate_grid(spacing_m=5.0)
+    assert fixed.spacing_m == 5.0
+
+
+def test_candidate_grid_removes_exact_duplicates_of_overlapping_regions():
+    a = rect(0, 0, 10, 10, z=1.0, gain=1.0)
+    b = rect(0, 0, 10, 10, z=1.0, gain=3.0)
+    c = Site((a, b)).candidate_grid(spacing_m=2.0)
+    assert c.n_candidates == 36 and np.all(c.region_index == 0)
+    assert len(np.unique(c.positions_m, axis=0)) == 36
+
+
+def test_candidate_grid_of_points_only_reports_zero_spacing():
+    site = Site((make_region("points", positions_m=[[0, 0, 1], [3, 0, 1]]),))
+    c = site.candidate_grid()
+    assert c.spacing_m == 0.0 and c.n_candidates == 2
+
+
+def test_candidate_grid_raises_when_nothing_is_left():
+    site = Site((rect(0, 0, 10, 10),), (rect(-1, -1, 11, 11, z=0.0),))
+    with pytest.raises(ValueError, match=r"no candidate position is left"):
+        site.candidate_grid(spacing_m=1.0)
+
+
+# ============================================================================================
+# Layouts: random and regular layouts
 # ============================================================================================
 
 
 def test_random_layouts_are_feasible_reproducible_and_spread_over_regions():
-    fence = Region("segment", start_m=(0, -10, 1), end_m=(100, -10, 1))
+    fence = make_region("segment", start_m=(0, -10, 1), end_m=(100, -10, 1))
     site = Site(
         (rect(0, 0, 100, 50, z=1.0), fence),
         (
-            Region(
+            make_region(
                 "polygon", vertices_m=[[40, 10], [60, 10], [60, 30], [40, 30]], z_m=0, buffer_m=2
             ),
         ),
@@ -561,7 +612,7 @@ def test_random_layouts_are_feasible_reproducible_and_spread_over_regions():
 
 
 def test_random_layouts_give_up_with_a_clear_message():
-    fence = Site((Region("segment", start_m=(0, 0, 1), end_m=(10, 0, 1)),), min_spacing_m=5.0)
+    fence = Site((make_region("segment", start_m=(0, 0, 1), end_m=(10, 0, 1)),), min_spacing_m=5.0)
     # Three probes 5 m apart on 10 m need both ends exactly: a random draw never hits them.
     with pytest.raises(ValueError, match=r"cannot place probe 3 of 3 .*too little room"):
         fence.random_layouts(5, 3, np.random.default_rng(0), max_tries=5)
@@ -575,7 +626,7 @@ def test_regular_layout_is_the_hand_drawn_lattice():
     )
     five = site.regular_layout(5)  # the last row of two sits centred
     np.testing.assert_allclose(five[3:, :2], [[10, 15], [20, 15]])
-    seg = Site((Region("segment", start_m=(0, 0, 0), end_m=(0, 0, 20)),))
+    seg = Site((make_region("segment", start_m=(0, 0, 0), end_m=(0, 0, 20)),))
     np.testing.assert_allclose(seg.regular_layout(4)[:, 2], [2.5, 7.5, 12.5, 17.5])
 
 
@@ -594,7 +645,9 @@ def test_regular_layout_falls_back_when_the_lattice_breaks_the_spacing():
     strip = Site((rect(0, 0, 10, 1, z=0.0),), min_spacing_m=3.0)
     layout = strip.regular_layout(4)  # the hand lattice is 2.5 m apart; 4 fit 3 m apart
     assert strip.allowed(layout).all() and strip.spacing_ok(layout[None]).all()
-    posts = Region("points", positions_m=[[0, 0, 1], [1, 0, 1], [2, 0, 1], [3, 0, 1], [9, 0, 1]])
+    posts = make_region(
+        "points", positions_m=[[0, 0, 1], [1, 0, 1], [2, 0, 1], [3, 0, 1], [9, 0, 1]]
+    )
     site = Site((posts,), min_spacing_m=2.0, installed_m=[[9, 0, 1]])
     # The listed post at x = 9 holds the installed probe; the widest free pair is 0 and 3.
     np.testing.assert_array_equal(np.sort(site.regular_layout(2)[:, 0]), [0, 3])
@@ -617,11 +670,11 @@ def star_polygons(draw, three_d: bool = False):
     cx, cy = draw(st.floats(-50, 50)), draw(st.floats(-50, 50))
     ab = np.stack([cx + radii * np.cos(angles), cy + radii * np.sin(angles)], axis=1)
     if not three_d:
-        return Region("polygon", vertices_m=ab.tolist(), z_m=draw(st.floats(0, 5)))
+        return make_region("polygon", vertices_m=ab.tolist(), z_m=draw(st.floats(0, 5)))
     tilt, turn = draw(st.floats(0.0, np.pi / 2)), draw(st.floats(0.0, 2 * np.pi))
     u = np.array([np.cos(turn), np.sin(turn), 0.0])
     v = np.array([-np.sin(turn) * np.cos(tilt), np.cos(turn) * np.cos(tilt), np.sin(tilt)])
-    return Region("polygon", vertices_m=(ab[:, :1] * u + ab[:, 1:] * v + [0, 0, 3]).tolist())
+    return make_region("polygon", vertices_m=(ab[:, :1] * u + ab[:, 1:] * v + [0, 0, 3]).tolist())
 
 
 @st.composite
@@ -637,7 +690,7 @@ def segments(draw):
     d = np.array(draw(st.lists(st.floats(-20, 20), min_size=3, max_size=3)))
     if np.linalg.norm(d) < 1.0:
         d = d + np.array([1.0, 0.0, 0.0])
-    return Region("segment", start_m=tuple(a), end_m=tuple(a + d))
+    return make_region("segment", start_m=tuple(a), end_m=tuple(a + d))
 
 
 @st.composite
@@ -650,7 +703,7 @@ def point_sets(draw):
             unique=True,
         )
     )
-    return Region("points", positions_m=[[x, y, 2.0] for x, y in xy])
+    return make_region("points", positions_m=[[x, y, 2.0] for x, y in xy])
 
 
 REGIONS = st.one_of(

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from typing import Any
 
-from ..site import Region
+from ..site import Region, make_region
 from .ground import check_at_or_above_ground
 from .model import Config
 from .reader import REQUIRED, XYZ, Checker, Table, all_keys
@@ -77,7 +77,7 @@ def parse_regions(root: Table, which: str, ground_z_m: float | None) -> tuple[Re
         # Unnamed: the site's own messages then say "region 2 (rectangle)".
         name = t.string("name", default="", nonempty=True)
         try:
-            out.append(Region(kind, **geom, name=name, **extra))
+            out.append(make_region(kind, **geom, name=name, **extra))
         except ValueError as exc:
             t.ck.fail(f"{t.prefix}: {exc}")
     return tuple(out)
