@@ -100,7 +100,7 @@ def test_a_warm_start_that_breaks_spacing_is_thinned_first():
 
 def test_the_automatic_grid_is_not_finer_than_the_field_changes():
     # An 18 m rail 3-7 m from a charge: the count target alone gave 1.2 cm spacing.
-    from probeplan.search import GRID_FRACTION_OF_DISTANCE, _candidates
+    from probeplan.search.grid import GRID_FRACTION_OF_DISTANCE, _candidates
 
     rail = {"kind": "segment", "start_m": [-9.0, 5.0, 2.5], "end_m": [9.0, 5.0, 2.5]}
     site = dict(

@@ -1,0 +1,359 @@
+"""The search as one stream of steps: :func:`search_steps` yields every step of every stage.
+
+Stages, in order (the package docstring says what each one does):
+
+    candidate grid → greedy → exchange → [warm start] → bound → refine → baselines
+
+Every element of the stream is a :class:`Step`: where the search is (stage, done, total: what a
+progress bar shows) and what that step found (a better layout, evaluated values for the
+history, a stage's value, baselines, the bound, the grid). The caller's stop request is polled
+between any two steps, also inside the long loops (a candidate-row chunk, a greedy pick, an
+exchange try, a relaxation evaluation, a refinement batch, a batch of random layouts); once it
+is set the stream ends after at most one cheap closing step (the exact value of a layout the
+stage had already found). :func:`probeplan.search.outcome.make_outcome` builds the one
+result from the stream, whatever its length.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..problem import Problem
+from ..resulttypes import Baseline
+from .bound import Relaxation, relaxation_steps
+from .grid import (
+    GridObjective,
+    _candidates,
+    _feasible_subset,
+    _region_of,
+    _spacing_mask,
+    exchange_steps,
+    extension_steps,
+    greedy_steps,
+)
+from .refine import REFINE_RADIUS_CELLS, refine_steps
+
+#: Bytes of forward-model Jacobian per chunk of candidate rows: the stop request is polled
+#: between chunks (and the forward model's own blocks stay in cache either way).
+ROW_CHUNK_BYTES = 1 << 23
+
+#: Random baseline layouts scored per batch (the stop request is polled between batches).
+RANDOM_BATCH = 64
+
+
+@dataclass(frozen=True, eq=False)
+class Layout:
+    """A complete layout of the new probes.
+
+    Attributes
+    ----------
+    positions_m : (count, 3) float
+    gain : (count,) float
+    value : float
+        What the search optimises (the criterion, or its worst single loss).
+    """
+
+    positions_m: np.ndarray
+    gain: np.ndarray
+    value: float
+
+
+@dataclass(frozen=True, eq=False)
+class Step:
+    """One element of the search stream.
+
+    Attributes
+    ----------
+    stage : str
+        "candidate grid", "greedy", "exchange", "warm start", "bound", "refine", "baselines".
+    done, total : int
+        Progress within the stage.
+    best : Layout or None
+        The best layout so far, when this step changed it.
+    history : tuple of float
+        Criterion of the layouts this step evaluated, in order (``SearchInfo.history``).
+    value : float or None
+        The stage's final value, on its last step (``SearchInfo.stages``).
+    baselines : tuple of Baseline
+    bound : Relaxation or None
+        The certified bound so far (valid at every step of the bound stage).
+    grid : Candidates or None
+        The candidate grid, once its rows are computed.
+    """
+
+    stage: str
+    done: int
+    total: int
+    best: Layout | None = None
+    history: tuple[float, ...] = ()
+    value: float | None = None
+    baselines: tuple[Baseline, ...] = ()
+    bound: Relaxation | None = None
+    grid: object | None = None
+
+
+class Halt:
+    """The caller's stop callable, latched: once it has said stop, the search stays stopped
+    (and it is not polled again)."""
+
+    def __init__(self, stop: Callable[[], bool] | None) -> None:
+        self._stop = stop
+        self.stopped = False
+
+    def __call__(self) -> bool:
+        if not self.stopped and self._stop is not None:
+            self.stopped = bool(self._stop())
+        return self.stopped
+
+
+@dataclass(frozen=True, eq=False)
+class Settings:
+    """What :func:`search_steps` is asked to do (see :func:`probeplan.search.plan`)."""
+
+    evaluations: int
+    random_layouts: int
+    candidate_target: int = 1500
+    warm_start_m: np.ndarray | None = None
+
+
+@dataclass(frozen=True, eq=False)
+class _Grid:
+    """The candidate grid with its rows' objective: what the grid stages work on."""
+
+    problem: Problem
+    candidates: object  # site Candidates
+    gains: np.ndarray  # (n_candidates,)
+    objective: GridObjective
+
+    @property
+    def positions_m(self) -> np.ndarray:
+        return self.candidates.positions_m
+
+    @property
+    def min_spacing_m(self) -> float:
+        return self.problem.config.probes.min_spacing_m
+
+    def layout(self, chosen: np.ndarray) -> Layout:
+        """The layout of candidates ``chosen (count,) int``, with its exact value."""
+        pos, gain = self.positions_m[chosen].copy(), self.gains[chosen].copy()
+        return Layout(pos, gain, exact(self.problem, pos, gain))
+
+
+def exact(problem: Problem, positions_m: np.ndarray, gain: np.ndarray) -> float:
+    """What the search optimises, of one layout ``(count, 3)``: no prior, no grid."""
+    return float(problem.objective(positions_m[None], gain[None])[0])
+
+
+def search_steps(
+    problem: Problem, settings: Settings, rng: np.random.Generator, halt: Halt
+) -> Iterator[Step]:
+    """Every step of the search of ``problem.count >= 1`` new probes, in order.
+
+    The stream ends early when ``halt()`` returns True; a stream without a ``best`` layout
+    was stopped before the greedy stage finished.
+    """
+    grid = yield from _grid_stage(problem, settings.candidate_target, halt)
+    if grid is None:
+        return
+    picked = yield from _greedy_stage(grid, _snapped(grid, settings.warm_start_m), halt)
+    if picked is None:
+        return
+    chosen, best = picked
+    if not halt():  # else the greedy layout is the result
+        best = yield from _exchange_stage(grid, chosen, halt)
+    if settings.warm_start_m is not None:
+        best = yield from _warm_stage(grid, settings.warm_start_m, best, halt)
+    design = problem.config.design
+    if problem.criterion.name == "d" and design.aggregate == "mean" and not halt():
+        yield from _bound_stage(grid, halt)
+    if settings.evaluations > 0 and not halt():
+        yield from _refine_stage(grid, best, settings.evaluations, rng, halt)
+    if not halt():
+        yield from _baseline_stage(problem, settings.random_layouts, rng, halt)
+
+
+def _grid_stage(problem: Problem, target: int, halt: Halt) -> Iterator[Step]:
+    """The candidate grid and every candidate's rows, computed chunk by chunk; returns the
+    :class:`_Grid` (None when stopped)."""
+    yield Step("candidate grid", 0, 1)
+    cand = _candidates(problem, problem.config.design.grid_spacing_m, target)
+    gains = problem.new_gain * cand.gain
+    n = cand.n_candidates
+    per_point = problem.n_scenarios * 3 * max(problem.scene.n_params, 1) * 8
+    chunk = max(1, ROW_CHUNK_BYTES // per_point)
+    rows = None
+    for start in range(0, max(n, 1), chunk):
+        if halt():
+            return None
+        sl = slice(start, min(start + chunk, n))
+        part, _ = problem.rows(cand.positions_m[sl], gains[sl])
+        if rows is None:
+            rows = np.empty((part.shape[0], n, *part.shape[2:]))
+        rows[:, sl] = part
+        yield Step("candidate grid", sl.stop, n)
+    if halt():
+        return None
+    robust = bool(problem.config.design.tolerate_failures)
+    obj = GridObjective(problem, rows, prior=True, robust=robust)
+    yield Step("candidate grid", n, n, grid=cand)
+    return _Grid(problem, cand, gains, obj)
+
+
+def _snapped(grid: _Grid, warm_start_m: np.ndarray | None) -> np.ndarray | None:
+    """A stored layout's nearest candidates, in order, once each, and only while they
+    respect the spacing: the greedy's start ``(k,) int`` (None without a warm start)."""
+    if warm_start_m is None:
+        return None
+    from scipy.spatial import cKDTree
+
+    p = grid.problem
+    _, near = cKDTree(grid.positions_m).query(np.asarray(warm_start_m).reshape(-1, 3))
+    start: list[int] = []
+    for c in dict.fromkeys(int(i) for i in near):
+        fixed = np.concatenate([p.installed_m, grid.positions_m[start]])
+        ok = _spacing_mask(grid.positions_m[[c]], fixed, p.config.probes.min_spacing_m)[0]
+        if len(start) < p.count and ok:
+            start.append(c)
+    return np.array(start, dtype=int)
+
+
+def _greedy_stage(grid: _Grid, start: np.ndarray | None, halt: Halt) -> Iterator[Step]:
+    """Greedy picks on the grid; returns the chosen candidates and their layout (None when
+    stopped before the last pick)."""
+    p = grid.problem
+    count = p.count
+    chosen = np.array([] if start is None else start, dtype=int)
+    yield Step("greedy", chosen.size, count)
+    picks = greedy_steps(
+        grid.objective, count, grid.positions_m, grid.min_spacing_m, p.installed_m, start
+    )
+    for chosen in picks:  # noqa: B020 - the last pick is the result
+        yield Step("greedy", chosen.size, count)
+        if chosen.size < count and halt():
+            return None
+    found = grid.layout(chosen)
+    yield Step(
+        "greedy",
+        count,
+        count,
+        best=found,
+        history=(found.value,),
+        value=found.value,
+        baselines=(Baseline("greedy", found.value, found.positions_m.copy()),),
+    )
+    return chosen, found
+
+
+def _exchange_stage(grid: _Grid, chosen: np.ndarray, halt: Halt) -> Iterator[Step]:
+    """Fedorov exchange from the greedy layout; returns the best layout (the exchange's, also
+    when stopped part-way)."""
+    p = grid.problem
+    tries = exchange_steps(
+        grid.objective, chosen, grid.positions_m, grid.min_spacing_m, p.installed_m
+    )
+    for chosen in tries:  # noqa: B007, B020 - the last try is the result
+        yield Step("exchange", 0, 1)
+        if halt():
+            break
+    found = grid.layout(chosen)
+    yield Step(
+        "exchange",
+        1,
+        1,
+        best=found,
+        history=(found.value,),
+        value=found.value,
+        baselines=(Baseline("exchange", found.value, found.positions_m.copy()),),
+    )
+    return found
+
+
+def _warm_stage(grid: _Grid, warm_start_m: np.ndarray, best: Layout, halt: Halt) -> Iterator[Step]:
+    """The stored layout (exact positions, perhaps off the grid) stays in the race; a smaller
+    one (a budget's previous count) is extended greedily from the grid. Returns the best."""
+    p = grid.problem
+    warm = np.asarray(warm_start_m, dtype=float).reshape(-1, 3)[: p.count]
+    # Probes the current rules forbid (a new keep-out, a region given up) are dropped.
+    warm = _feasible_subset(p.site, warm)
+    gain = p.gain_at(warm)
+    if warm.shape[0] < p.count:
+        if halt():
+            return best
+        extra = np.zeros(0, dtype=int)
+        n_extra = p.count - warm.shape[0]
+        picks = extension_steps(
+            p, grid.objective, grid.positions_m, warm, gain, p.count, grid.min_spacing_m
+        )
+        for extra in picks:  # noqa: B007 - the last pick is the result
+            yield Step("warm start", extra.size, n_extra)
+            if extra.size < n_extra and halt():
+                return best
+        warm = np.concatenate([warm, grid.positions_m[extra]])
+        gain = np.concatenate([gain, grid.gains[extra]])
+    value = exact(p, warm, gain)
+    better = p.better(value, best.value)
+    found = Layout(warm, gain, value) if better else None
+    yield Step("warm start", 1, 1, best=found, history=(value,))
+    return found if better else best
+
+
+def _bound_stage(grid: _Grid, halt: Halt) -> Iterator[Step]:
+    """The relaxation bound, one evaluation a step; every step's bound is certified."""
+    p = grid.problem
+    yield Step("bound", 0, 1)
+    for relax in relaxation_steps(grid.objective.info, p.fisher_installed, p.count):
+        yield Step("bound", 0, 1, bound=relax)
+        if halt():
+            break
+    yield Step("bound", 1, 1)
+
+
+def _refine_stage(
+    grid: _Grid, best: Layout, evaluations: int, rng: np.random.Generator, halt: Halt
+) -> Iterator[Step]:
+    """Bayesian refinement of the best layout, one batch a step."""
+    p = grid.problem
+    cand = grid.candidates
+    regions = _region_of(p, best.positions_m, cand)
+    radius = REFINE_RADIUS_CELLS * cand.spacing_m if cand.spacing_m > 0 else None
+    yield Step("refine", 0, evaluations)
+    last = None
+    steps = refine_steps(p, best.positions_m, best.gain, regions, evaluations, rng, radius)
+    for last in steps:  # noqa: B007
+        yield Step("refine", last.used, evaluations, history=last.recorded)
+        if halt():
+            break
+    found = Layout(last.layout, best.gain, last.value)
+    yield Step("refine", evaluations, evaluations, best=found, value=found.value)
+
+
+def _baseline_stage(
+    problem: Problem, n_random: int, rng: np.random.Generator, halt: Halt
+) -> Iterator[Step]:
+    """What an engineer would draw, and the best of many random layouts, scored alike."""
+    site, count = problem.site, problem.count
+    yield Step("baselines", 0, 2)
+    try:
+        regular = site.regular_layout(count)
+    except ValueError:
+        regular = None  # no regular layout fits the rules: nothing to compare
+    if regular is not None:
+        rv = exact(problem, regular, problem.gain_at(regular))
+        yield Step("baselines", 1, 2, baselines=(Baseline("regular", rv, regular),))
+    if n_random <= 0 or halt():
+        return
+    rand = site.random_layouts(n_random, count, rng)
+    g = problem.gain_at(rand.reshape(-1, 3)).reshape(rand.shape[:2])
+    rvals = np.empty(n_random)
+    for start in range(0, n_random, RANDOM_BATCH):
+        if halt():
+            return  # a best of fewer layouts than announced is no baseline
+        sl = slice(start, min(start + RANDOM_BATCH, n_random))
+        rvals[sl] = problem.objective(rand[sl], g[sl])
+        yield Step("baselines", 1, 2)
+    k = int(np.argmax(rvals) if problem.criterion.maximise else np.argmin(rvals))
+    best = Baseline(f"best of {n_random} random", float(rvals[k]), rand[k])
+    yield Step("baselines", 2, 2, baselines=(best,))
