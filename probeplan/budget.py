@@ -79,6 +79,8 @@ def plan_chain(
         outcome = plan(
             problem, warm_start_m=warm, evaluations=evaluations, random_layouts=0, stop=stop
         )
+        if not outcome.has_layout:
+            break  # stopped before this count had a layout: nothing to tabulate
         warm = outcome.positions_m
         out.append(
             OptionPlan(

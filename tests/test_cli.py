@@ -372,9 +372,24 @@ def test_plan_writes_a_complete_result_under_the_config_name(site, capsys, monke
     assert out.strip() == "Result written to tiny-2.h5"
 
 
+def stop_after_the_greedy(monkeypatch) -> None:
+    """Ctrl-C as soon as the greedy stage has placed every probe (the first layout exists)."""
+    import probeplan.search.stages as stages
+
+    placed = []
+    picks = stages.greedy_steps
+
+    def greedy_then_flag(*args, **kwargs):
+        yield from picks(*args, **kwargs)
+        placed.append(True)
+
+    monkeypatch.setattr(stages, "greedy_steps", greedy_then_flag)
+    monkeypatch.setattr(commands.StopFlag, "__call__", lambda self: bool(placed))
+
+
 def test_interrupted_plan_exits_130_and_resume_completes(site, capsys, monkeypatch):
     out_file = site / "p.h5"
-    monkeypatch.setattr(commands.StopFlag, "__call__", lambda self: True)
+    stop_after_the_greedy(monkeypatch)
     code, out, err = run(capsys, "plan", site / "tiny.toml", "--out", out_file)
     assert code == 130, err
     assert "INTERRUPTED" in out and "--resume" in out
@@ -399,9 +414,19 @@ def test_interrupted_plan_exits_130_and_resume_completes(site, capsys, monkeypat
     assert resumed.score.value >= stopped.score.value - 1e-9
 
 
+def test_plan_stopped_before_any_layout_exits_130_and_writes_nothing(site, capsys, monkeypatch):
+    monkeypatch.setattr(commands.StopFlag, "__call__", lambda self: True)
+    code, out, err = run(capsys, "plan", site / "tiny.toml", "--out", site / "p.h5", "--quiet")
+    assert code == 130
+    assert err.strip() == (
+        "probeplan: interrupted before the search had a layout; no result file was written."
+    )
+    assert sorted(p.name for p in site.iterdir()) == ["layout.csv", "tiny.toml"]
+
+
 def test_resume_with_a_different_count_is_bad_input(site, capsys, monkeypatch):
     out_file = site / "p.h5"
-    monkeypatch.setattr(commands.StopFlag, "__call__", lambda self: True)
+    stop_after_the_greedy(monkeypatch)
     assert run(capsys, "plan", site / "tiny.toml", "--out", out_file)[0] == 130
     write_site(site / "five.toml", TINY, probes={"count": 5})
     code, _, err = run(capsys, "plan", site / "five.toml", "--resume", out_file)

@@ -17,7 +17,7 @@ from hypothesis import strategies as st
 from sites import ALL, make_config, point_source, rectangle
 
 from probeplan.fisher import d_ratio
-from probeplan.problem import build_problem
+from probeplan.problem import Problem, build_problem
 from probeplan.search import GridObjective, exchange, greedy, plan, relaxation_bound
 
 
@@ -330,3 +330,105 @@ def test_same_seed_same_layout_to_the_bit():
     assert [b.positions_m.tobytes() for b in first.info.baselines] == [
         b.positions_m.tobytes() for b in second.info.baselines
     ]
+
+
+# --------------------------------------------------------------------------------------------
+# Stopping: within one step, wherever the search is
+# --------------------------------------------------------------------------------------------
+
+STAGES = ("candidate grid", "greedy", "exchange", "bound", "refine", "baselines")
+
+
+class CountingStop:
+    """A stop request that turns true at poll ``k`` (never when None); it notes the stage the
+    search reported last at every poll, and counts the heavy work done after the stop."""
+
+    def __init__(self, k: int | None) -> None:
+        self.k = k
+        self.stage = None
+        self.stages: list[str] = []  # the stage at each poll
+        self.stopped = False
+        self.work = {"sweeps": 0, "relaxed": 0, "rows": 0}  # after the stop only
+
+    def __call__(self) -> bool:
+        self.stages.append(self.stage)
+        self.stopped = self.k is not None and len(self.stages) > self.k
+        return self.stopped
+
+    def progress(self, stage: str, done: int, total: int) -> None:
+        self.stage = stage
+
+    def count(self, kind: str, fn):
+        def counted(*args, **kwargs):
+            self.work[kind] += self.stopped
+            return fn(*args, **kwargs)
+
+        return counted
+
+
+def _stop_at(problem, k: int | None, monkeypatch) -> tuple[object, CountingStop]:
+    import probeplan.search.bound as bound
+    import probeplan.search.grid as grid
+
+    stop = CountingStop(k)
+    with monkeypatch.context() as m:
+        m.setattr(
+            grid.GridObjective, "add_values", stop.count("sweeps", grid.GridObjective.add_values)
+        )
+        m.setattr(bound, "_relaxed", stop.count("relaxed", bound._relaxed))
+        m.setattr(Problem, "rows", stop.count("rows", Problem.rows))
+        out = plan(problem, stop=stop, progress=stop.progress, candidate_target=300)
+    return out, stop
+
+
+def test_a_stop_at_any_poll_ends_the_search_within_one_step(monkeypatch):
+    import probeplan.search.stages as stages
+
+    cfg = parse_config(config_text(scenarios=4, evaluations=8, **RULES), "stop.toml")
+    problem = build_problem(cfg)
+    # Several candidate-row chunks and random-baseline batches on this small site.
+    per_point = problem.n_scenarios * 3 * problem.scene.n_params * 8
+    monkeypatch.setattr(stages, "ROW_CHUNK_BYTES", 80 * per_point)
+    monkeypatch.setattr(stages, "RANDOM_BATCH", 16)
+
+    full, never = _stop_at(problem, None, monkeypatch)
+    # Polling changes nothing: the same plan as without a stop request, to the bit.
+    plain = plan(problem, candidate_target=300)
+    assert full.complete and full.positions_m.tobytes() == plain.positions_m.tobytes()
+    assert full.info.history.tobytes() == plain.info.history.tobytes()
+    assert full.info.bound == plain.info.bound
+    # Every stage polls, and the long ones poll inside their loops.
+    polls = {s: [i for i, at in enumerate(never.stages) if at == s] for s in STAGES}
+    for stage in STAGES:
+        assert len(polls[stage]) >= 2, (stage, never.stages)
+
+    # The work a stopped search may still do: the exact value of the layout it has, and
+    # the score of the result (rows of the forward model; no sweep, no relaxation step).
+    closing = CountingStop(None)
+    closing.stopped = True
+    with monkeypatch.context() as m:
+        m.setattr(Problem, "rows", closing.count("rows", Problem.rows))
+        problem.score(full.positions_m, full.gain)
+        stages.exact(problem, full.positions_m, full.gain)
+    # The first, middle and last poll of every stage.
+    ks = sorted(
+        {i for s in STAGES for i in (polls[s][0], polls[s][len(polls[s]) // 2], polls[s][-1])}
+    )
+    no_layout = 0
+    for k in ks:
+        out, stop = _stop_at(problem, k, monkeypatch)
+        stage = never.stages[k]
+        assert len(stop.stages) == k + 1, stage  # polled up to the stop, never again after it
+        assert not out.complete
+        assert stop.work["sweeps"] == 0 and stop.work["relaxed"] == 0, (stage, stop.work)
+        if out.has_layout:
+            assert stage != "candidate grid"
+            assert_follows_the_rules(problem, out.positions_m)
+            assert np.isfinite(out.score.value)
+            assert out.info.history.size >= 1
+        else:
+            no_layout += 1
+            assert stage in ("candidate grid", "greedy"), stage
+            assert out.positions_m is None and out.gain is None and out.score is None
+        assert stop.work["rows"] <= closing.work["rows"], (stage, stop.work)
+    assert 0 < no_layout < len(ks)
