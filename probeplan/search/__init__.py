@@ -43,7 +43,7 @@ from .grid import (
     greedy_steps,
 )
 from .outcome import PlanOutcome, d_efficiency, make_outcome, plan
-from .refine import BO_BATCH, REFINE_RADIUS_CELLS, RefineStep, refine, refine_steps
+from .refine import BO_BATCH, REFINE_RADIUS_CELLS, RefineStep, refine_steps
 from .stages import Layout, Step, search_steps
 
 __all__ = [
@@ -65,7 +65,6 @@ __all__ = [
     "greedy_steps",
     "make_outcome",
     "plan",
-    "refine",
     "refine_steps",
     "relaxation_bound",
     "relaxation_steps",

@@ -88,9 +88,28 @@ def relaxation_steps(
     max_iter: int = 400,
     gap_tol: float | None = None,
 ) -> Iterator[Relaxation]:
-    """Projected gradient ascent on the relaxation, one objective evaluation a step: yields
-    the certificate of the best weights so far after every evaluation (the last one is the
-    bound of :func:`relaxation_bound`). Parameters as :func:`relaxation_bound`."""
+    """Upper bound on the D-criterion (mean log det) over candidate subsets, by projected
+    gradient ascent on the relaxation, one objective evaluation a step.
+
+    Parameters
+    ----------
+    info : (n_scenarios, n_candidates, n_params, n_params) float
+        Information of one probe at each candidate.
+    base : (n_scenarios, n_params, n_params) float
+        Information that every layout has (installed probes).
+    count : int
+        Probes to place.
+    max_iter : int
+        Projected-gradient iterations at most.
+    gap_tol : float or None
+        Stop when the duality gap is below this (default n_params × BOUND_GAP_PER_PARAM).
+
+    Yields
+    ------
+    Relaxation
+        The certificate of the best weights so far, after every evaluation: each is a valid
+        bound; the last one is the tightest.
+    """
     n_c, p = info.shape[1], info.shape[2]
     gap_tol = p * BOUND_GAP_PER_PARAM if gap_tol is None else gap_tol
     w = np.full(n_c, count / n_c)
@@ -126,34 +145,7 @@ def relaxation_steps(
         yield _certificate(f, gap, w, it)
 
 
-def relaxation_bound(
-    info: np.ndarray,
-    base: np.ndarray,
-    count: int,
-    max_iter: int = 400,
-    gap_tol: float | None = None,
-    stop: Callable[[], bool] | None = None,
-) -> Relaxation:
-    """Upper bound on the D-criterion (mean log det) over candidate subsets.
-
-    Parameters
-    ----------
-    info : (n_scenarios, n_candidates, n_params, n_params) float
-        Information of one probe at each candidate.
-    base : (n_scenarios, n_params, n_params) float
-        Information that every layout has (installed probes).
-    count : int
-        Probes to place.
-    max_iter : int
-        Projected-gradient iterations at most.
-    gap_tol : float or None
-        Stop when the duality gap is below this (default n_params × BOUND_GAP_PER_PARAM).
-    stop : callable() -> bool or None
-        Polled after every objective evaluation; when it returns True the bound so far (valid,
-        only looser) is returned.
-
-    Returns
-    -------
-    Relaxation
-    """
-    return drain(relaxation_steps(info, base, count, max_iter, gap_tol), stop)
+def relaxation_bound(*args, stop: Callable[[], bool] | None = None, **kwargs) -> Relaxation:
+    """The bound of :func:`relaxation_steps` (same parameters) run to the end; or, when
+    ``stop()`` (polled after every evaluation) returns True, the bound so far (valid, looser)."""
+    return drain(relaxation_steps(*args, **kwargs), stop)

@@ -152,8 +152,8 @@ def greedy_steps(
     installed_m: np.ndarray,
     start: np.ndarray | None = None,
 ) -> Iterator[np.ndarray]:
-    """Greedy selection, one pick a step: yields the chosen candidates ``(k,) int`` after
-    each pick, until ``k = count``.
+    """Greedy selection, one pick a step: yields the chosen candidates ``(k,) int`` (first
+    ``start``, then after each pick), until ``k = count``.
 
     ``start`` (k,) int: candidates already chosen (kept, counted in ``count``).
 
@@ -164,6 +164,7 @@ def greedy_steps(
     """
     chosen = list(start) if start is not None else []
     maximise = obj.problem.criterion.maximise
+    yield np.array(chosen, dtype=int)
     while len(chosen) < count:
         fixed = np.concatenate([installed_m, positions[chosen]])
         allowed = _spacing_mask(positions, fixed, min_spacing)
@@ -181,23 +182,11 @@ def greedy_steps(
         yield np.array(chosen, dtype=int)
 
 
-def greedy(
-    obj: GridObjective,
-    count: int,
-    positions: np.ndarray,
-    min_spacing: float,
-    installed_m: np.ndarray,
-    start: np.ndarray | None = None,
-    stop: Callable[[], bool] | None = None,
-) -> np.ndarray:
-    """Greedy selection of ``count`` candidates (indices ``(count,) int``).
-
-    ``start`` (k,) int: candidates already chosen (kept, counted in ``count``). ``stop``:
-    polled after every pick; when it returns True the picks so far are returned (fewer than
-    ``count``).
-    """
-    first = np.array(list(start) if start is not None else [], dtype=int)
-    return drain(greedy_steps(obj, count, positions, min_spacing, installed_m, start), stop, first)
+def greedy(*args, stop: Callable[[], bool] | None = None, **kwargs) -> np.ndarray:
+    """Greedy selection of ``count`` candidates: :func:`greedy_steps` (same parameters) run
+    to the end, ``(count,) int``; or, when ``stop()`` (polled after every pick) returns True,
+    the picks so far."""
+    return drain(greedy_steps(*args, **kwargs), stop)
 
 
 def exchange_steps(
@@ -209,11 +198,12 @@ def exchange_steps(
     rtol: float = 1e-10,
 ) -> Iterator[np.ndarray]:
     """Fedorov exchange, one chosen probe tried a step: yields the chosen candidates
-    ``(count,) int`` after each try, improved or not.
+    ``(count,) int`` (first as given, then after each try, improved or not).
 
     Each pass tries every chosen probe; a pass without an improving swap ends the search.
     """
     chosen = chosen.copy()
+    yield chosen.copy()
     maximise = obj.problem.criterion.maximise
     current = obj.value(chosen)
     improved = True
@@ -235,27 +225,17 @@ def exchange_steps(
             yield chosen.copy()
 
 
-def exchange(
-    obj: GridObjective,
-    chosen: np.ndarray,
-    positions: np.ndarray,
-    min_spacing: float,
-    installed_m: np.ndarray,
-    stop: Callable[[], bool] | None = None,
-    rtol: float = 1e-10,
-) -> np.ndarray:
-    """Fedorov exchange: swap chosen candidates while a swap improves the criterion.
-
-    Returns the improved ``(count,) int`` indices. ``stop``: polled after every probe tried;
-    when it returns True the layout so far is returned.
-    """
-    steps = exchange_steps(obj, chosen, positions, min_spacing, installed_m, rtol)
-    return drain(steps, stop, chosen.copy())
+def exchange(*args, stop: Callable[[], bool] | None = None, **kwargs) -> np.ndarray:
+    """Fedorov exchange: :func:`exchange_steps` (same parameters) run to the end, the improved
+    ``(count,) int`` indices; or, when ``stop()`` (polled after every try) returns True, the
+    layout so far."""
+    return drain(exchange_steps(*args, **kwargs), stop)
 
 
-def drain(steps: Iterator, stop: Callable[[], bool] | None, last=None):
+def drain(steps: Iterator, stop: Callable[[], bool] | None):
     """Run a generator of steps to its end, or until ``stop()`` (polled after every step)
-    returns True; the last step (``last`` when there was none)."""
+    returns True; the last step."""
+    last = None
     for last in steps:  # noqa: B007 - the loop variable is the result
         if stop is not None and stop():
             break

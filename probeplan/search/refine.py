@@ -4,12 +4,12 @@ scikit-optimize's ``Optimizer`` (ask/tell) moves one probe at a time in the cont
 coordinates of its mounting region, the others fixed — a 1–2-dimensional problem, the size at
 which a Gaussian-process optimiser converges in tens of calls. A move is kept only if it
 improves the criterion. :func:`refine_steps` yields after every batch of evaluations, so the
-search can stop between any two; :func:`refine` runs it to the end.
+search can stop between any two.
 """
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterator
+from collections.abc import Iterator
 from dataclasses import dataclass
 
 import numpy as np
@@ -213,39 +213,3 @@ class _ProbeSearch:
     @property
     def value(self) -> float:
         return self.best_val if self.problem.better(self.best_val, self.current) else self.current
-
-
-def refine(
-    problem: Problem,
-    layout: np.ndarray,
-    gain: np.ndarray,
-    regions: np.ndarray,
-    budget: int,
-    rng: np.random.Generator,
-    stop: Callable[[], bool] | None = None,
-    record: Callable[[float], None] | None = None,
-    progress: Callable[[int], None] | None = None,
-    radius_m: float | None = None,
-) -> tuple[np.ndarray, float, int]:
-    """Run :func:`refine_steps` to the end, or until ``stop()`` (polled after every batch).
-
-    ``record(value)`` gets the criterion of every legal proposal, ``progress(used)`` the
-    evaluations spent after every batch; the other parameters are those of
-    :func:`refine_steps`.
-
-    Returns
-    -------
-    layout : (count, 3) float
-    value : float
-    used : int
-        Evaluations spent.
-    """
-    last = None
-    for last in refine_steps(problem, layout, gain, regions, budget, rng, radius_m):
-        for v in last.recorded if record is not None else ():
-            record(v)
-        if progress is not None and last.used:
-            progress(last.used)
-        if stop is not None and stop():
-            break
-    return last.layout, last.value, last.used

@@ -225,8 +225,6 @@ def _greedy_stage(grid: _Grid, start: np.ndarray | None, halt: Halt) -> Iterator
     stopped before the last pick)."""
     p = grid.problem
     count = p.count
-    chosen = np.array([] if start is None else start, dtype=int)
-    yield Step("greedy", chosen.size, count)
     picks = greedy_steps(
         grid.objective, count, grid.positions_m, grid.min_spacing_m, p.installed_m, start
     )
@@ -282,7 +280,6 @@ def _warm_stage(grid: _Grid, warm_start_m: np.ndarray, best: Layout, halt: Halt)
     if warm.shape[0] < p.count:
         if halt():
             return best
-        extra = np.zeros(0, dtype=int)
         n_extra = p.count - warm.shape[0]
         picks = extension_steps(
             p, grid.objective, grid.positions_m, warm, gain, p.count, grid.min_spacing_m
