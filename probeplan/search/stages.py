@@ -79,7 +79,7 @@ class Step:
         The stage's final value, on its last step (``SearchInfo.stages``).
     baselines : tuple of Baseline
     bound : Relaxation or None
-        The certified bound so far (valid at every step of the bound stage).
+        The certified bound, on the last step of a finished bound stage.
     grid : Candidates or None
         The candidate grid, once its rows are computed.
     """
@@ -298,14 +298,16 @@ def _warm_stage(grid: _Grid, warm_start_m: np.ndarray, best: Layout, halt: Halt)
 
 
 def _bound_stage(grid: _Grid, halt: Halt) -> Iterator[Step]:
-    """The relaxation bound, one evaluation a step; every step's bound is certified."""
+    """The relaxation bound, one evaluation a step. Every step's bound is certified, but one
+    cut short can be far from the best layout: only a finished bound is kept."""
     p = grid.problem
     yield Step("bound", 0, 1)
-    for relax in relaxation_steps(grid.objective.info, p.fisher_installed, p.count):
-        yield Step("bound", 0, 1, bound=relax)
+    relax = None
+    for relax in relaxation_steps(grid.objective.info, p.fisher_installed, p.count):  # noqa: B007
+        yield Step("bound", 0, 1)
         if halt():
-            break
-    yield Step("bound", 1, 1)
+            return
+    yield Step("bound", 1, 1, bound=relax)
 
 
 def _refine_stage(
