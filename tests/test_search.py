@@ -384,7 +384,7 @@ def _stop_at(problem, k: int | None, monkeypatch) -> tuple[object, CountingStop]
 def test_a_stop_at_any_poll_ends_the_search_within_one_step(monkeypatch):
     import probeplan.search.stages as stages
 
-    cfg = parse_config(config_text(scenarios=4, evaluations=8, **RULES), "stop.toml")
+    cfg = search_config("stop.toml", scenarios=4, evaluations=8, **RULES)
     problem = build_problem(cfg)
     # Several candidate-row chunks and random-baseline batches on this small site.
     per_point = problem.n_scenarios * 3 * problem.scene.n_params * 8
