@@ -385,6 +385,69 @@ def test_adding_a_probe_never_lowers_information(layout, extra):
     assert v_more >= v_n or not np.isfinite(v_n)
 
 
+# Meter axes and grades on a small invented site.
+def axes_config(
+    count=4, component="z", spacing=0.0, installed=(), source=None, background=None, grades=None
+):
+    site = dict(
+        seed=4,
+        title=None,
+        probes={"count": count, "component": component, "min_spacing_m": spacing},
+        region=[rectangle(3000.0)],
+        source=[source or point_source(center_m=(0.0, 0.0, 4000.0))],
+        background=background,
+        design={
+            "scenarios": 3,
+            "evaluations": 0,
+            "random_layouts": 10,
+            "grid_spacing_m": 500.0,
+        },
+        grade=grades,
+    )
+    if installed:
+        site["probes"]["installed"] = list(installed)
+    return make_config("axes.toml", **site)
+
+
+def test_tilted_meters_estimate_only_the_background_they_can_separate():
+    # Every reading sees 0.6 B_y + 0.8 B_z: one number, so one background component.
+    bg = {"field_v_per_m": [0.0, 0.0, -120.0], "estimate": True}
+    problem = build_problem(axes_config(count=6, component=[0.0, 0.6, 0.8], background=bg))
+    assert [n for n in problem.names if n.startswith("bg.")] == ["bg.z_v_per_m"]
+    layout = np.array(
+        [
+            [-2500, -2500, 0],
+            [2500, -2500, 0],
+            [0, 0, 0],
+            [-2500, 2500, 0],
+            [2500, 2500, 0],
+            [0, 2500, 0],
+        ],
+        dtype=float,
+    )
+    assert np.isfinite(problem.score(layout).value)
+    # Axis-aligned meters: exactly the components they read.
+    both = build_problem(
+        axes_config(
+            count=6,
+            background=bg,
+            installed=[{"position_m": [100.0, 0.0, 0.0], "component": "x"}],
+        )
+    )
+    assert [n for n in both.names if n.startswith("bg.")] == ["bg.x_v_per_m", "bg.z_v_per_m"]
+
+
+def test_a_budget_grade_does_not_change_the_installed_meters():
+    grades = [meter_grade("coarse", 200.0, 1.0)]
+    inst = [{"position_m": [500.0, 500.0, 0.0]}]
+    cfg = axes_config(installed=inst, grades=grades)
+    plain = build_problem(cfg)
+    coarse = build_problem(cfg, grade=cfg.grades[0])
+    np.testing.assert_array_equal(plain.fisher_installed, coarse.fisher_installed)
+    assert coarse.noise.noise_v_per_m == 200.0
+    assert coarse.grades[coarse.installed_grade[0]].noise_v_per_m == 20.0
+
+
 def test_probe_order_does_not_matter():
     problem = build_problem(problem_config(relative=0.02, background=BACKGROUND, ranges=True))
     perm = np.random.default_rng(0).permutation(len(LAYOUT5))

@@ -241,6 +241,80 @@ RULES = dict(
 )
 
 
+# Regressions of the search on a small invented site (each test names the failure).
+def review_config(
+    count=4, component="z", spacing=0.0, installed=(), source=None, background=None, grades=None
+):
+    site = dict(
+        seed=4,
+        title=None,
+        probes={"count": count, "component": component, "min_spacing_m": spacing},
+        region=[rectangle(3000.0)],
+        source=[source or point_source(center_m=(0.0, 0.0, 4000.0))],
+        background=background,
+        design={
+            "scenarios": 3,
+            "evaluations": 0,
+            "random_layouts": 10,
+            "grid_spacing_m": 500.0,
+        },
+        grade=grades,
+    )
+    if installed:
+        site["probes"]["installed"] = list(installed)
+    return make_config("review.toml", **site)
+
+
+def test_plan_survives_a_parameter_no_candidate_can_see():
+    # Outside a uniform ball the field does not depend on its radius (shell theorem), so no
+    # layout of outside probes resolves it: the relaxation used to crash on its singular start.
+    ball = {
+        "kind": "sphere",
+        "charge_c": -20.0,
+        "center_m": [0.0, 0.0, 4000.0],
+        "radius_m": 500.0,
+        "estimate": ["charge", "z", "radius"],
+    }
+    outcome = plan(build_problem(review_config(source=ball)), random_layouts=0)
+    assert outcome.info.bound == -np.inf
+    assert outcome.score.value == -np.inf
+    assert any("radius" in d.text for d in outcome.score.unresolved)
+
+
+def test_a_warm_start_that_breaks_spacing_is_thinned_first():
+    cfg = review_config(count=4, spacing=1500.0)
+    problem = build_problem(cfg)
+    warm = np.array([[0, 0, 0], [500, 0, 0], [1000, 0, 0], [-2500, 2500, 0]], dtype=float)
+    outcome = plan(problem, warm_start_m=warm, random_layouts=0)
+    for b in outcome.info.baselines:
+        assert problem.site.spacing_ok(b.positions_m[None])[0], b.name
+    assert problem.site.spacing_ok(outcome.positions_m[None])[0]
+
+
+def test_the_automatic_grid_is_not_finer_than_the_field_changes():
+    # An 18 m rail 3-7 m from a charge: the count target alone gave 1.2 cm spacing.
+    from probeplan.search.grid import GRID_FRACTION_OF_DISTANCE, _candidates
+
+    rail = {"kind": "segment", "start_m": [-9.0, 5.0, 2.5], "end_m": [9.0, 5.0, 2.5]}
+    site = dict(
+        seed=1,
+        title=None,
+        probes={"count": 3, "component": "vector", "noise_v_per_m": 50.0},
+        region=[rail],
+        source=[point_source(2e-6, (0.0, 0.0, 3.0))],
+        design={"scenarios": 2, "evaluations": None},
+    )
+    problem = build_problem(make_config("rail.toml", **site))
+    cand = _candidates(problem, None, 1500)
+    dist = np.linalg.norm(cand.positions_m - [0.0, 0.0, 3.0], axis=1)
+    # A segment is split into equal steps, so the spacing may come out a little under the
+    # floor asked for (here 18 m / 134 steps against 0.136 m).
+    assert cand.spacing_m >= 0.95 * GRID_FRACTION_OF_DISTANCE * np.median(dist)
+    assert cand.positions_m.shape[0] < 1500
+    # A spacing the config sets is kept as it is.
+    assert _candidates(problem, 0.05, 1500).spacing_m == 0.05
+
+
 def assert_follows_the_rules(problem, layout):
     site = problem.site
     assert layout.shape == (problem.count, 3)
