@@ -116,3 +116,28 @@ def write_site(path: str | Path, *layers: dict, **overrides: Any) -> Path:
     path = Path(path)
     path.write_text(site_toml(*layers, **overrides), encoding="utf-8")
     return path
+
+
+def small_site(
+    count=4, component="z", spacing=0.0, installed=(), source=None, background=None, grades=None
+):
+    """A 6 km square of ground meters, one point charge 4 km up, three scenarios, no
+    refinement: a small invented site whose arguments vary it per test."""
+    site = dict(
+        seed=4,
+        title=None,
+        probes={"count": count, "component": component, "min_spacing_m": spacing},
+        region=[rectangle(3000.0)],
+        source=[source or point_source(center_m=(0.0, 0.0, 4000.0))],
+        background=background,
+        design={
+            "scenarios": 3,
+            "evaluations": 0,
+            "random_layouts": 10,
+            "grid_spacing_m": 500.0,
+        },
+        grade=grades,
+    )
+    if installed:
+        site["probes"]["installed"] = list(installed)
+    return make_config("small.toml", **site)

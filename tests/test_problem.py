@@ -18,7 +18,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 from scipy.optimize import least_squares
-from sites import ALL, make_config, meter_grade, point_source, rectangle
+from sites import ALL, make_config, meter_grade, point_source, rectangle, small_site
 
 from probeplan.probes import axes_table, component_axes, draw_readings, readings
 from probeplan.problem import build_problem, draw_scenarios
@@ -385,34 +385,10 @@ def test_adding_a_probe_never_lowers_information(layout, extra):
     assert v_more >= v_n or not np.isfinite(v_n)
 
 
-# Meter axes and grades on a small invented site.
-def axes_config(
-    count=4, component="z", spacing=0.0, installed=(), source=None, background=None, grades=None
-):
-    site = dict(
-        seed=4,
-        title=None,
-        probes={"count": count, "component": component, "min_spacing_m": spacing},
-        region=[rectangle(3000.0)],
-        source=[source or point_source(center_m=(0.0, 0.0, 4000.0))],
-        background=background,
-        design={
-            "scenarios": 3,
-            "evaluations": 0,
-            "random_layouts": 10,
-            "grid_spacing_m": 500.0,
-        },
-        grade=grades,
-    )
-    if installed:
-        site["probes"]["installed"] = list(installed)
-    return make_config("axes.toml", **site)
-
-
 def test_tilted_meters_estimate_only_the_background_they_can_separate():
     # Every reading sees 0.6 B_y + 0.8 B_z: one number, so one background component.
     bg = {"field_v_per_m": [0.0, 0.0, -120.0], "estimate": True}
-    problem = build_problem(axes_config(count=6, component=[0.0, 0.6, 0.8], background=bg))
+    problem = build_problem(small_site(count=6, component=[0.0, 0.6, 0.8], background=bg))
     assert [n for n in problem.names if n.startswith("bg.")] == ["bg.z_v_per_m"]
     layout = np.array(
         [
@@ -428,7 +404,7 @@ def test_tilted_meters_estimate_only_the_background_they_can_separate():
     assert np.isfinite(problem.score(layout).value)
     # Axis-aligned meters: exactly the components they read.
     both = build_problem(
-        axes_config(
+        small_site(
             count=6,
             background=bg,
             installed=[{"position_m": [100.0, 0.0, 0.0], "component": "x"}],
@@ -440,7 +416,7 @@ def test_tilted_meters_estimate_only_the_background_they_can_separate():
 def test_a_budget_grade_does_not_change_the_installed_meters():
     grades = [meter_grade("coarse", 200.0, 1.0)]
     inst = [{"position_m": [500.0, 500.0, 0.0]}]
-    cfg = axes_config(installed=inst, grades=grades)
+    cfg = small_site(installed=inst, grades=grades)
     plain = build_problem(cfg)
     coarse = build_problem(cfg, grade=cfg.grades[0])
     np.testing.assert_array_equal(plain.fisher_installed, coarse.fisher_installed)

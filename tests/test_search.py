@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from sites import ALL, make_config, point_source, rectangle
+from sites import ALL, make_config, point_source, rectangle, small_site
 
 from probeplan.fisher import d_ratio
 from probeplan.problem import Problem, build_problem
@@ -242,27 +242,6 @@ RULES = dict(
 
 
 # Regressions of the search on a small invented site (each test names the failure).
-def review_config(
-    count=4, component="z", spacing=0.0, installed=(), source=None, background=None, grades=None
-):
-    site = dict(
-        seed=4,
-        title=None,
-        probes={"count": count, "component": component, "min_spacing_m": spacing},
-        region=[rectangle(3000.0)],
-        source=[source or point_source(center_m=(0.0, 0.0, 4000.0))],
-        background=background,
-        design={
-            "scenarios": 3,
-            "evaluations": 0,
-            "random_layouts": 10,
-            "grid_spacing_m": 500.0,
-        },
-        grade=grades,
-    )
-    if installed:
-        site["probes"]["installed"] = list(installed)
-    return make_config("review.toml", **site)
 
 
 def test_plan_survives_a_parameter_no_candidate_can_see():
@@ -275,14 +254,14 @@ def test_plan_survives_a_parameter_no_candidate_can_see():
         "radius_m": 500.0,
         "estimate": ["charge", "z", "radius"],
     }
-    outcome = plan(build_problem(review_config(source=ball)), random_layouts=0)
+    outcome = plan(build_problem(small_site(source=ball)), random_layouts=0)
     assert outcome.info.bound == -np.inf
     assert outcome.score.value == -np.inf
     assert any("radius" in d.text for d in outcome.score.unresolved)
 
 
 def test_a_warm_start_that_breaks_spacing_is_thinned_first():
-    cfg = review_config(count=4, spacing=1500.0)
+    cfg = small_site(count=4, spacing=1500.0)
     problem = build_problem(cfg)
     warm = np.array([[0, 0, 0], [500, 0, 0], [1000, 0, 0], [-2500, 2500, 0]], dtype=float)
     outcome = plan(problem, warm_start_m=warm, random_layouts=0)
