@@ -152,7 +152,9 @@ class Frame:
         problem = self.check_lonlat(lon, lat, h)
         if problem is not None:
             k, reason = problem
-            raise InputError(f"{what} {k} (lon, lat) = ({lon[k]!r}, {lat[k]!r}): {reason}.")
+            raise InputError(
+                f"{what} {k} (lon, lat) = ({float(lon[k])!r}, {float(lat[k])!r}): {reason}."
+            )
         return self._to_local(lon, lat, h)
 
     def to_lonlat(self, points_m) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -210,10 +212,13 @@ class Frame:
         finite = np.isfinite(lon) & np.isfinite(lat) & np.isfinite(h)
         checks = (
             (~finite, lambda k: "a coordinate is not a finite number"),
-            (finite & (np.abs(lat) > 90.0), lambda k: f"latitude {lat[k]!r} is beyond ±90 degrees"),
+            (
+                finite & (np.abs(lat) > 90.0),
+                lambda k: f"latitude {float(lat[k])!r} is beyond ±90 degrees",
+            ),
             (
                 finite & (np.abs(lon) > 180.0),
-                lambda k: f"longitude {lon[k]!r} is beyond ±180 degrees",
+                lambda k: f"longitude {float(lon[k])!r} is beyond ±180 degrees",
             ),
         )
         for bad, reason in checks:

@@ -5,8 +5,10 @@ Read: a FeatureCollection whose features carry a property ``role``:
 ========== ========================= ===============================================
 role       geometry                  becomes
 ========== ========================= ===============================================
-region     Polygon, MultiPolygon     a mounting region (each part one region)
-keepout    Polygon, MultiPolygon     a keep-out
+region     Polygon, MultiPolygon     a mounting region (each part one region);
+           LineString, MultiPoint    a LineString one segment per pair of positions,
+                                     a MultiPoint a points region
+keepout    as region                 a keep-out
 structure  Polygon, MultiPolygon     a structure footprint; property ``height_m`` > 0
 installed  Point                     an installed meter: ``name``, ``component``, ``grade``
 ========== ========================= ===============================================
@@ -31,6 +33,7 @@ import re
 import tempfile
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
+from functools import partial
 from pathlib import Path
 from types import MappingProxyType
 from typing import Any
@@ -42,8 +45,8 @@ from .frame import Frame
 
 #: Feature roles a site file may use, and the geometry types each takes.
 ROLES: dict[str, tuple[str, ...]] = {
-    "region": ("Polygon", "MultiPolygon"),
-    "keepout": ("Polygon", "MultiPolygon"),
+    "region": ("Polygon", "MultiPolygon", "LineString", "MultiPoint"),
+    "keepout": ("Polygon", "MultiPolygon", "LineString", "MultiPoint"),
     "structure": ("Polygon", "MultiPolygon"),
     "installed": ("Point",),
 }
@@ -81,10 +84,14 @@ class MapFeature:
         The property ``name``, else the feature's ``id``, else "".
     role : str
         One of :data:`ROLES`.
+    kind : str
+        "polygon" (a Polygon or one part of a MultiPolygon), "segment" (two consecutive
+        positions of a LineString), "points" (a MultiPoint) or "point" (a Point).
     coords_m : (k, 2) or (k, 3) float
-        A polygon's outer ring without its closing position, or a point (k = 1), m: x east,
-        y north, and z when the file gave heights (height above the ellipsoid minus the frame
-        origin's height).
+        A polygon's outer ring without its closing position, a segment's two ends, the points,
+        or the point (k = 1), m: x east, y north, and z when the file gave heights (height
+        above the ellipsoid minus the frame origin's height). Points and segments always have
+        a height: z here or ``height_m``.
     height_m : float or None
         The property ``height_m``: height above the ground, m.
     properties : Mapping
@@ -97,6 +104,7 @@ class MapFeature:
     part: int
     name: str
     role: str
+    kind: str
     coords_m: np.ndarray
     height_m: float | None
     properties: Mapping[str, Any]
@@ -287,29 +295,76 @@ def _read_feature(feat: Any, k: int, frame: Frame, where: str) -> list[MapFeatur
         height_m=height,
         properties=MappingProxyType(dict(props)),
     )
-    coords = geom.get("coordinates")
-    if gtype == "Point":
-        pos = _positions([coords], frame, f"{label}: the Point")
-        if pos.shape[1] == 3 and height is not None:
-            raise InputError(
-                f"{label} gives both a height in its coordinates (above the WGS84 ellipsoid) "
-                "and property `height_m` (above the ground); give one of them."
-            )
-        if pos.shape[1] == 2 and height is None:
-            raise InputError(
-                f"{label} has no height: give property `height_m` (the meter's height above the "
-                "ground, m) or a third coordinate (height above the WGS84 ellipsoid, m)."
-            )
-        return [MapFeature(part=0, coords_m=pos, label=label, **common)]
-    polygons = [coords] if gtype == "Polygon" else coords
-    if not isinstance(polygons, list) or not polygons:
-        raise InputError(f"{label}: a MultiPolygon needs a non-empty list of polygons.")
+    pieces = _GEOMETRY_READERS[gtype](geom.get("coordinates"), frame, label, height)
+    return [
+        MapFeature(part=j, kind=kind, coords_m=c, label=what, **common)
+        for j, (kind, c, what) in enumerate(pieces)
+    ]
+
+
+def _read_points(
+    coords: Any, frame: Frame, label: str, height: float | None, *, single: bool
+) -> list:
+    """A Point (an installed meter) or a MultiPoint (a points region)."""
+    if not single and (not isinstance(coords, list) or not coords):
+        raise InputError(f"{label}: a MultiPoint needs a list of positions; got {coords!r:.80}.")
+    what = f"{label}: the Point" if single else f"{label}: the MultiPoint"
+    pos = _positions([coords] if single else coords, frame, what)
+    _one_height(pos, height, label)
+    return [("point" if single else "points", pos, label)]
+
+
+def _read_line(coords: Any, frame: Frame, label: str, height: float | None) -> list:
+    """A LineString (a fence, a rail): one segment per pair of consecutive positions."""
+    if not isinstance(coords, list) or len(coords) < 2:
+        raise InputError(f"{label}: a LineString needs at least 2 positions; got {coords!r:.80}.")
+    pos = _positions(coords, frame, f"{label}: the LineString")
+    _one_height(pos, height, label)
+    many = len(pos) > 2
+    return [
+        ("segment", pos[j : j + 2], f"{label} segment {j}" if many else label)
+        for j in range(len(pos) - 1)
+    ]
+
+
+def _read_polygons(
+    coords: Any, frame: Frame, label: str, height: float | None, *, multi: bool
+) -> list:
+    """A Polygon, or each part of a MultiPolygon, by its outer ring."""
+    del height  # optional for outlines: a keep-out footprint has none
+    if not isinstance(coords, list) or not coords:
+        raise InputError(
+            f"{label}: a Polygon or MultiPolygon needs coordinates; got {coords!r:.80}."
+        )
+    polygons = coords if multi else [coords]
     out = []
     for j, rings in enumerate(polygons):
-        what = label if gtype == "Polygon" else f"{label} part {j}"
-        ring = _outer_ring(rings, frame, what)
-        out.append(MapFeature(part=j, coords_m=ring, label=what, **common))
+        what = f"{label} part {j}" if multi else label
+        out.append(("polygon", _outer_ring(rings, frame, what), what))
     return out
+
+
+def _one_height(pos: np.ndarray, height: float | None, label: str) -> None:
+    """A point or line needs exactly one height: in its coordinates or as ``height_m``."""
+    if pos.shape[1] == 3 and height is not None:
+        raise InputError(
+            f"{label} gives both a height in its coordinates (above the WGS84 ellipsoid) "
+            "and property `height_m` (above the ground); give one of them."
+        )
+    if pos.shape[1] == 2 and height is None:
+        raise InputError(
+            f"{label} has no height: give property `height_m` (the height above the ground, m) "
+            "or a third coordinate (height above the WGS84 ellipsoid, m)."
+        )
+
+
+_GEOMETRY_READERS = {
+    "Point": partial(_read_points, single=True),
+    "MultiPoint": partial(_read_points, single=False),
+    "LineString": _read_line,
+    "Polygon": partial(_read_polygons, multi=False),
+    "MultiPolygon": partial(_read_polygons, multi=True),
+}
 
 
 def _height(props: dict, role: str, label: str) -> float | None:
@@ -376,7 +431,9 @@ def _positions(positions: list, frame: Frame, what: str) -> np.ndarray:
     if problem is not None:
         j, reason = problem
         raise InputError(f"{what}: position {j} {positions[j]!r}: {reason}.")
-    local = frame._to_local(a[:, 0], a[:, 1], frame.origin_height_m if h is None else h)
+    local = frame._to_local(
+        a[:, 0], a[:, 1], np.full(len(a), frame.origin_height_m) if h is None else h
+    )
     return local if h is not None else local[:, :2]
 
 
@@ -533,8 +590,11 @@ def _shape_feature(frame: Frame, shape: MapShape, ground: float) -> dict:
     xyz = np.column_stack([lon, lat] if flat else [lon, lat, h])
     if shape.kind == "polygon" and shapely.Polygon(xyz[:, :2]).area > 0.0:
         geom = shapely.Polygon(xyz)
-    elif shape.kind in ("polygon", "segment"):
-        geom = shapely.LineString(xyz)  # a vertical wall has no area on the map: its trace
+    elif shape.kind == "polygon":
+        # A vertical wall has no area on a map: its closed trace; read back, its edges.
+        geom = shapely.LineString(np.vstack([xyz, xyz[:1]]))
+    elif shape.kind == "segment":
+        geom = shapely.LineString(xyz)
     else:
         geom = shapely.MultiPoint(xyz)
     return {"type": "Feature", "geometry": _geometry(_cut_antimeridian(geom)), "properties": props}
