@@ -7,6 +7,8 @@ from __future__ import annotations
 import numpy as np
 import pyproj
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from probeplan.errors import InputError
 from probeplan.geo import ACCURACY_RADIUS_M, Frame, rounding_for, site_extent_m
@@ -221,3 +223,23 @@ def test_to_lonlat_refusals():
         frame.to_lonlat(np.array([[np.nan, 0.0, 0.0]]))
     with pytest.raises(InputError, match=r"must have shape \(n_points, 3\); got \(2,\)"):
         frame.to_lonlat(np.array([1.0, 2.0]))
+
+
+@settings(max_examples=40, deadline=None)
+@given(
+    lon0=st.floats(-180.0, 180.0),
+    lat0=st.floats(-89.5, 89.5),
+    r=st.floats(0.0, 140_000.0),
+    az=st.floats(0.0, 360.0),
+    h=st.floats(-400.0, 9_000.0),
+)
+def test_round_trip_anywhere(lon0, lat0, r, az, h):
+    # A point placed on the ellipsoid by the direct geodesic problem (Geod.fwd) lands at the
+    # geodesic distance and azimuth in the frame, and converts back within a millimetre.
+    frame = Frame(lon0, lat0)
+    lon, lat, _ = GEOD.fwd(lon0, lat0, az, r)
+    p = frame.to_local([lon], [lat], [h])
+    assert np.hypot(p[0, 0], p[0, 1]) == pytest.approx(r, abs=1e-3)
+    assert p[0, 2] == pytest.approx(h, abs=1e-9)
+    lon2, lat2, h2 = frame.to_lonlat(p)
+    assert GEOD.inv(lon, lat, lon2[0], lat2[0])[2] < 1e-3

@@ -242,6 +242,10 @@ def test_refusals_name_the_file_and_feature(tmp_path, case):
 
 def test_refusals_of_the_file_itself(tmp_path):
     path = tmp_path / "site.geojson"
+    path.write_text(json.dumps({"type": "FeatureCollection", "crs": {"type": "link"}}))
+    with pytest.raises(InputError, match=r'a `crs` member \{"type": "link"\} is not WGS84;'):
+        read_geojson(path, FRAME)
+    path.unlink()
     with pytest.raises(InputError, match=r"site\.geojson: no such file\.$"):
         read_geojson(path, FRAME)
     path.write_text('{"type": "FeatureCollection",\n "features": [}')

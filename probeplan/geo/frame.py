@@ -23,6 +23,7 @@ would pass 1e-4 (1 cm in 100 m) and a flat site stops being a fair picture of th
 from __future__ import annotations
 
 import math
+import numbers
 from dataclasses import dataclass
 from functools import lru_cache
 
@@ -108,7 +109,7 @@ class Frame:
     def __post_init__(self) -> None:
         for key in ("origin_lon_deg", "origin_lat_deg", "origin_height_m"):
             value = getattr(self, key)
-            if isinstance(value, bool) or not isinstance(value, int | float | np.floating):
+            if isinstance(value, bool) or not isinstance(value, numbers.Real):
                 raise InputError(f"frame `{key}` must be a number; got {value!r}.")
             if not math.isfinite(value):
                 raise InputError(f"frame `{key}` must be a finite number; got {value!r}.")

@@ -183,7 +183,7 @@ def read_geojson(
     if not features:
         raise InputError(
             f"{where}: the FeatureCollection has no features; a site file needs at least one "
-            "feature with property `role` = 'region'."
+            f"feature with property `role` = {need or 'region'!r}."
         )
     chosen = _select(features, select, where)
     out: dict[str, list[MapFeature]] = {role: [] for role in ROLES}
@@ -230,7 +230,8 @@ def _check_crs(obj: dict, where: str) -> None:
     if "crs" not in obj:
         return
     crs = obj["crs"]
-    name = crs.get("properties", {}).get("name") if isinstance(crs, dict) else None
+    props = crs.get("properties") if isinstance(crs, dict) else None
+    name = props.get("name") if isinstance(props, dict) else None
     if crs is None or (isinstance(name, str) and name.strip() in WGS84_CRS_NAMES):
         return
     raise InputError(
