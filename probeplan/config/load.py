@@ -16,8 +16,10 @@ from pathlib import Path
 from ..errors import InputError
 from .background import parse_background
 from .design import check_estimates, parse_design
+from .frame import parse_frame
 from .grades import check_installed_grades, parse_budget, parse_grades
 from .ground import parse_ground
+from .maps import check_installed_names, parse_map_regions
 from .model import Config
 from .probes import parse_probes
 from .reader import Checker, Table, syntax_message
@@ -31,6 +33,7 @@ ROOT_KEYS = (
     "seed",
     "caution",
     "ground",
+    "frame",
     "probes",
     "region",
     "keepout",
@@ -144,9 +147,12 @@ def _check(data: dict, text: str, path: str, base: Path) -> Config:
     title = root.string("title", default="")
     seed = root.integer("seed", default=0, ge=0)
     ground_z_m = parse_ground(root)
-    probes, installed = parse_probes(root, ground_z_m)
-    regions = parse_regions(root, "region", ground_z_m)
-    keepouts = parse_regions(root, "keepout", ground_z_m)
+    frame = parse_frame(root)
+    probes, installed = parse_probes(root, ground_z_m, frame)
+    mapped = parse_map_regions(root, frame, ground_z_m, base)
+    installed = check_installed_names(ck, installed + mapped.installed)
+    regions = parse_regions(root, "region", ground_z_m) + mapped.regions
+    keepouts = parse_regions(root, "keepout", ground_z_m) + mapped.keepouts
     sources = parse_sources(root, ground_z_m, base)
     background = parse_background(root)
     design = parse_design(root)
@@ -177,6 +183,7 @@ def _check(data: dict, text: str, path: str, base: Path) -> Config:
         budget=budget,
         storm_watch=caution == "lightning",
         caution=caution,
+        frame=frame,
     )
     check_feasible(ck, config)
     return config

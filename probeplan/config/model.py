@@ -12,6 +12,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..geo import Frame
 from ..site import Region, Site
 from ..sources import Source
 
@@ -223,6 +224,8 @@ class Config:
         :data:`STORM_HEIGHT_M` above it, or ``caution = "lightning"``.
     caution : str
         One of :data:`CAUTIONS`: the caution line the summary carries.
+    frame : Frame or None
+        The ``[frame]``: the site's WGS84 origin, for longitudes and latitudes in and out.
     """
 
     path: str
@@ -241,6 +244,7 @@ class Config:
     budget: BudgetSpec | None
     storm_watch: bool
     caution: str = "general"
+    frame: Frame | None = None
 
     @property
     def installed_m(self) -> np.ndarray:

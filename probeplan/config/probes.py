@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import math
 
+from ..geo import Frame
+from .frame import lonlat_position, one_of
 from .ground import check_at_or_above_ground
 from .model import InstalledProbe, ProbeSpec
 from .reader import XYZ, Table, show
@@ -18,13 +20,13 @@ PROBE_KEYS = (
     "gain",
     "installed",
 )
-INSTALLED_KEYS = ("position_m", "name", "component", "gain", "grade")
+INSTALLED_KEYS = ("position_m", "position_lonlat", "name", "component", "gain", "grade")
 
 
-def parse_probes(root: Table, ground_z_m: float | None):
+def parse_probes(root: Table, ground_z_m: float | None, frame: Frame | None = None):
     t = root.table("probes", required=True, hint="give at least `count` and `noise_v_per_m`")
     t.check_keys(PROBE_KEYS)
-    installed = _parse_installed(t, ground_z_m)
+    installed = _parse_installed(t, ground_z_m, frame)
     count = t.integer("count", ge=0)
     if count == 0 and not installed:
         t.ck.fail(f"`{t.key('count')}` must be >= 1 when no [[probes.installed]] is given; got 0.")
@@ -40,13 +42,19 @@ def parse_probes(root: Table, ground_z_m: float | None):
     return spec, installed
 
 
-def _parse_installed(probes: Table, ground_z_m: float | None) -> tuple[InstalledProbe, ...]:
+def _parse_installed(
+    probes: Table, ground_z_m: float | None, frame: Frame | None
+) -> tuple[InstalledProbe, ...]:
     out: list[InstalledProbe] = []
     seen: dict[str, int] = {}
     for k, t in enumerate(probes.array_of_tables("installed")):
         t.check_keys(INSTALLED_KEYS)
-        pos = t.vector("position_m", 3, what=XYZ)
-        check_at_or_above_ground(t.ck, t.key("position_m"), pos[2], ground_z_m)
+        key = one_of(t, "position_m", "position_lonlat")
+        if key == "position_m":
+            pos = t.vector("position_m", 3, what=XYZ)
+        else:
+            pos = lonlat_position(t, key, frame, ground_z_m)
+        check_at_or_above_ground(t.ck, t.key(key), pos[2], ground_z_m)
         name = t.string("name", default=f"installed-{k}", nonempty=True)
         if name in seen:
             t.ck.fail(

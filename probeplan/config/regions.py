@@ -12,7 +12,7 @@ from ..site import Region, make_region
 from .ground import check_at_or_above_ground
 from .model import Config
 from .reader import REQUIRED, XYZ, Checker, Table, all_keys
-from .vocab import REGION_KINDS
+from .vocab import MAP_KIND, REGION_KINDS
 
 REGION_KIND_KEYS = {
     "rectangle": ("min_m", "max_m", "z_m"),
@@ -38,9 +38,12 @@ def parse_regions(root: Table, which: str, ground_z_m: float | None) -> tuple[Re
         required=mounting,
         hint='where a probe may be mounted, e.g. kind = "rectangle", min_m, max_m, z_m',
     )
+    kinds = (*REGION_KINDS, MAP_KIND) if mounting else REGION_KINDS
     out = []
     for t in tables:
-        kind = t.choice("kind", REGION_KINDS)
+        kind = t.choice("kind", kinds)
+        if kind == MAP_KIND:
+            continue  # expanded by .maps, with the frame
         allowed = ("kind", *REGION_KIND_KEYS[kind], *REGION_COMMON[which][1:])
         elsewhere = (*all_keys(REGION_KIND_KEYS), "gain", "buffer_m")
         t.check_keys(allowed, elsewhere=elsewhere, owner=f"a {kind} {which}")

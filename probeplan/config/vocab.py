@@ -32,6 +32,8 @@ AGGREGATES: tuple[str, ...] = AGGREGATE_NAMES
 CAUTIONS: tuple[str, ...] = ("lightning", "esd", "high-voltage", "general", "none")
 #: Mounting-region and keep-out kinds, in the site's order.
 REGION_KINDS: tuple[str, ...] = tuple(_SITE_REGION_KINDS)
+#: The ``[[region]]`` kind that reads a GeoJSON site file (regions, keep-outs, meters).
+MAP_KIND: str = "geojson"
 #: Source kinds, in the order of :data:`probeplan.sources.KINDS`.
 SOURCE_KINDS: tuple[str, ...] = tuple(KINDS)
 
