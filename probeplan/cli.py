@@ -5,8 +5,9 @@ Commands (the contract's "Command line"):
 * ``probeplan plan [CONFIG] [--out FILE.h5] [--force] [--resume FILE.h5] [--quiet]``
 * ``probeplan score CONFIG (--layout LAYOUT.csv | --from OLD.h5) [--out FILE.h5] [--force]``
 * ``probeplan budget CONFIG [--out FILE.h5] [--force] [--from OLD.h5 [--from-as MODE]]``
-* ``probeplan show FILE.h5 [--layout-csv LAYOUT.csv [--force]]`` — the summary; optionally the
-  new probes as a layout CSV (what ``score --layout`` reads)
+* ``probeplan show FILE.h5 [--layout-csv LAYOUT.csv] [--geojson OUT.geojson] [--force]`` — the
+  summary; optionally the new probes as a layout CSV (what ``score --layout`` reads) and every
+  meter with the site as GeoJSON (with a ``[frame]``)
 * ``probeplan simulate FILE.h5 [--trials N] [--seed S]`` — fits of simulated readings beside
   the bounds, stored back into FILE.h5
 * ``probeplan plot FILE.h5 [--format png|svg] [--folder DIR]`` — site map, coverage map,
@@ -199,7 +200,15 @@ def _add_show(sub) -> None:
         help="also write the new probes to this CSV (name, x_m, y_m, z_m, component, grade, "
         "gain: the file `score --layout` reads), e.g. for the installers",
     )
-    w.add_argument("--force", action="store_true", help="overwrite an existing --layout-csv file")
+    w.add_argument(
+        "--geojson",
+        metavar="LAYOUT.geojson",
+        help="also write every meter and the site's regions and keep-outs as GeoJSON (RFC 7946, "
+        "WGS84 longitude/latitude) for a GIS program; needs a [frame] in the config",
+    )
+    w.add_argument(
+        "--force", action="store_true", help="overwrite an existing --layout-csv or --geojson file"
+    )
 
 
 def _add_simulate(sub) -> None:

@@ -282,10 +282,28 @@ def cmd_budget(args: argparse.Namespace, written: list[Path]) -> int:
 
 
 def cmd_show(args: argparse.Namespace, written: list[Path]) -> int:
-    """``probeplan show``: the summary of a stored result (and its layout as a CSV)."""
-    from .store import check_writable, read_result, write_layout_csv
+    """``probeplan show``: the summary of a stored result (and its layout as a CSV or on a
+    map)."""
+    from .store import check_writable, read_result, write_layout_csv, write_layout_geojson
 
     result = read_result(args.file)
+    site = None
+    if args.geojson:
+        if result.frame is None:
+            raise InputError(
+                f"{args.file}: the result has no [frame], so --geojson has no longitude or "
+                "latitude to write; add a [frame] table (origin_lon_deg, origin_lat_deg) to the "
+                "config and run it again."
+            )
+        check_writable(
+            args.geojson,
+            force=args.force,
+            option="--geojson",
+            suffix=".geojson",
+            reading=[args.file],
+        )
+        # The site's outlines come from the stored config (its GeoJSON files must be found).
+        site = reruns.parse_config_text(result.config_text, result.config_path)
     if args.layout_csv:
         check_writable(
             args.layout_csv,
@@ -298,6 +316,18 @@ def cmd_show(args: argparse.Namespace, written: list[Path]) -> int:
     if args.layout_csv:
         path = record_write(
             lambda: write_layout_csv(result, args.layout_csv, force=args.force), written
+        )
+        report.print_layout_written(path)
+    if args.geojson:
+        path = record_write(
+            lambda: write_layout_geojson(
+                result,
+                args.geojson,
+                regions=site.regions,
+                keepouts=site.keepouts,
+                force=args.force,
+            ),
+            written,
         )
         report.print_layout_written(path)
     return EXIT_OK

@@ -14,6 +14,7 @@ import numpy as np
 # The sections live in the leaf module so that the stages that make them need not import
 # this one; they are importable from here too.
 from ._version import package_version
+from .geo import Frame
 from .resulttypes import Baseline as Baseline
 from .resulttypes import BudgetTable, Changes, Score, SearchInfo
 
@@ -90,6 +91,8 @@ class Result:
     notes : tuple of str
         Things the user must know about this result (rule violations of a scored layout, which
         budget option the layout is), printed with the summary.
+    frame : Frame or None
+        The config's ``[frame]``: the WGS84 origin of the local metres (maps, lon/lat out).
     """
 
     command: str
@@ -110,6 +113,7 @@ class Result:
     simulation: object | None = None
     probe_names: tuple[str, ...] | None = None
     notes: tuple[str, ...] = ()
+    frame: Frame | None = None
 
 
 def make_result(
@@ -137,6 +141,7 @@ def make_result(
         created_utc=_dt.datetime.now(_dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
         caution=getattr(config, "caution", "none"),
         ground_z_m=config.ground_z_m,
+        frame=getattr(config, "frame", None),
         score=score,
         search=search,
         budget=budget,

@@ -559,7 +559,7 @@ def write_geojson(path: str | os.PathLike, collection: dict, *, force: bool = Fa
         raise InputError(f"{target} exists; pass --force to overwrite it, or choose another name.")
     if target.is_dir() or not target.parent.is_dir():
         raise InputError(f"{target}: the folder {target.parent} does not exist or is not a folder.")
-    text = json.dumps(collection, indent=1, ensure_ascii=False, allow_nan=False) + "\n"
+    text = geojson_text(collection)
     tmp = None
     try:
         with tempfile.NamedTemporaryFile(
@@ -574,6 +574,14 @@ def write_geojson(path: str | os.PathLike, collection: dict, *, force: bool = Fa
         if tmp is not None and tmp.exists():
             tmp.unlink()
     return target
+
+
+def geojson_text(collection: dict) -> str:
+    """A FeatureCollection as UTF-8 JSON text, one feature a line (no NaN: JSON has none)."""
+    rest = {k: v for k, v in collection.items() if k != "features"}
+    head = json.dumps(rest, ensure_ascii=False, allow_nan=False)[:-1]
+    lines = [json.dumps(f, ensure_ascii=False, allow_nan=False) for f in collection["features"]]
+    return head + ', "features": [\n' + ",\n".join(lines) + "\n]}\n"
 
 
 def _shape_feature(frame: Frame, shape: MapShape, ground: float) -> dict:

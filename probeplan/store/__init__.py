@@ -12,7 +12,8 @@ Map of this package (every name below is importable from ``probeplan.store``):
    every file, and :func:`free_name` / :func:`free_names`, the default output names
    (``demo.h5``, ``demo-2.h5`` …).
 3. :func:`read_layout_csv` / :func:`write_layout_csv` (:mod:`.layout_csv`): a layout of new
-   probes, one probe a row.
+   probes, one probe a row; :func:`write_layout_geojson` (:mod:`.layout_map`): every meter and
+   the site on a map (RFC 7946), for results with a frame.
 4. Re-exported from :mod:`probeplan.resulttypes`: :func:`param_unit`, :func:`value_unit`,
    :func:`probe_names`.
 
@@ -21,6 +22,8 @@ File layout (beyond the contract's paths)::
     /                      attrs probeplan_version, created_utc, command, config_toml, seed,
                            complete, title, config_path, caution, sign_convention,
                            [ground_z_m] (absent: free space)
+    /frame                 attrs datum, local, origin_lon_deg, origin_lat_deg, origin_height_m
+                           (only with a [frame]: the WGS84 origin of the local metres)
     /layout/positions_m    (n_probes, 3)  m        all probes, installed first
     /layout/installed      (n_probes,)    bool
     /layout/names          (n_probes,)    str      installed names from the config, then new-k
@@ -56,6 +59,7 @@ from __future__ import annotations
 from ..resulttypes import param_unit, probe_names, value_unit
 from .files import check_writable, free_name, free_names
 from .layout_csv import LAYOUT_COLUMNS, LayoutFile, read_layout_csv, write_layout_csv
+from .layout_map import write_layout_geojson
 from .read import read_result
 from .write import SIGN_CONVENTION, write_result
 
@@ -72,5 +76,6 @@ __all__ = [
     "read_result",
     "value_unit",
     "write_layout_csv",
+    "write_layout_geojson",
     "write_result",
 ]

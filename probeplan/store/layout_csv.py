@@ -13,13 +13,25 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError
+from ..geo import rounding_for, site_extent_m
 from ..probes import COMPONENTS
 from ..result import Result
 from ..resulttypes import probe_names
 from .files import check_writable, os_reason, write_atomically
 
-#: Columns a layout CSV may hold; the first three are required.
-LAYOUT_COLUMNS: tuple[str, ...] = ("x_m", "y_m", "z_m", "name", "component", "grade", "gain")
+#: Columns a layout CSV may hold; the first three are required. ``lon_deg`` and ``lat_deg``
+#: (written when the result has a frame) are for people and are not read back: x, y, z are.
+LAYOUT_COLUMNS: tuple[str, ...] = (
+    "x_m",
+    "y_m",
+    "z_m",
+    "name",
+    "component",
+    "grade",
+    "gain",
+    "lon_deg",
+    "lat_deg",
+)
 _REQUIRED = ("x_m", "y_m", "z_m")
 
 
@@ -208,11 +220,15 @@ def _component_cell(name: str, line: int, text: str):
 
 def write_layout_csv(result: Result, path: str | os.PathLike, *, force: bool = False) -> Path:
     """Write the new probes of a result as a layout CSV, atomically: the file ``score --layout``
-    reads (one probe a row: name, x_m, y_m, z_m, component, grade, gain), to hand to the
-    installers or to rescore later. Installed probes are left out: they come from the config.
+    reads (one probe a row: name, x_m, y_m, z_m, component, grade, gain, and lon_deg, lat_deg
+    when the result has a frame), to hand to the installers or to rescore later. Installed
+    probes are left out: they come from the config.
 
-    Coordinates and gains are written with every digit (``repr``), so scoring the file gives
-    the stored score exactly. A first comment line says where the layout came from.
+    Positions are rounded for people (:func:`probeplan.geo.rounding_for`): to the centimetre,
+    or the millimetre when all meters lie within 100 m; longitude and latitude to a matching
+    7 or 8 decimals. Scoring the file therefore moves each meter by at most half that unit;
+    ``score --from FILE.h5`` rescores the stored layout exactly. Gains keep every digit. A
+    first comment line says where the layout came from.
 
     Parameters
     ----------
@@ -225,20 +241,25 @@ def write_layout_csv(result: Result, path: str | os.PathLike, *, force: bool = F
     -------
     Path
     """
-    from ..probes import component_of
-
     target = check_writable(path, force=force, option="--layout-csv", suffix=".csv")
     s = result.score
     new = ~np.asarray(s.installed, dtype=bool)
     names = probe_names(result)
+    rounding = rounding_for(site_extent_m(s.positions_m))
+    xyz = rounding.metres(s.positions_m)
+    lonlat = None
+    if result.frame is not None:
+        lon, lat, _ = result.frame.to_lonlat(s.positions_m)
+        lonlat = rounding.degrees(np.column_stack([lon, lat]))
     rows = []
     for k in np.flatnonzero(new):
-        comp = "" if s.axes is None else component_of(s.axes[k])
-        if isinstance(comp, tuple):
-            comp = " ".join(repr(a) for a in comp)
+        comp = component_text(s, k)
         grade = "" if s.grade is None else s.grade[k]
-        x, y, z = (repr(float(v)) for v in s.positions_m[k])
-        rows.append([names[k], x, y, z, comp, grade, repr(float(s.gain[k]))])
+        x, y, z = (repr(float(v)) for v in xyz[k])
+        row = [names[k], x, y, z, comp, grade, repr(float(s.gain[k]))]
+        rows.append(row if lonlat is None else row + [repr(float(v)) for v in lonlat[k]])
+    header = ["name", "x_m", "y_m", "z_m", "component", "grade", "gain"]
+    header += [] if lonlat is None else ["lon_deg", "lat_deg"]
     title = " ".join(result.title.split()) or "untitled"
 
     def write(tmp: Path) -> None:
@@ -248,7 +269,15 @@ def write_layout_csv(result: Result, path: str | os.PathLike, *, force: bool = F
                 f"by probeplan {result.version}; installed probes come from the config\n"
             )
             writer = csv.writer(fh, lineterminator="\n")
-            writer.writerow(["name", "x_m", "y_m", "z_m", "component", "grade", "gain"])
+            writer.writerow(header)
             writer.writerows(rows)
 
     return write_atomically(target, write, "the layout file", force=force, option="--layout-csv")
+
+
+def component_text(score, k: int) -> str:
+    """What meter ``k`` of a score reads, as a layout cell: "z", "vector", or "ax ay az"."""
+    from ..probes import component_of
+
+    comp = "" if score.axes is None else component_of(score.axes[k])
+    return " ".join(repr(a) for a in comp) if isinstance(comp, tuple) else comp

@@ -13,6 +13,7 @@ import h5py
 import numpy as np
 
 from ..errors import InputError
+from ..geo import Frame
 from ..result import Result
 from ..resulttypes import Baseline, BudgetTable, Changes, Direction, Score, SearchInfo
 
@@ -186,6 +187,9 @@ def _read(r: _Reader) -> Result:
         score = dataclasses.replace(score, grade=grade)
     ground = r.f.attrs.get("ground_z_m")
     sections = {}
+    if r.has("frame"):
+        keys = ("origin_lon_deg", "origin_lat_deg", "origin_height_m")
+        sections["frame"] = Frame(*(r.attr("frame", k, float) for k in keys))
     if r.has("changes"):
         sections["changes"] = _read_dataclass(r, "changes", Changes)
     if r.has("simulation"):

@@ -100,6 +100,12 @@ def _write(f: h5py.File, result: Result) -> None:
     f.attrs["sign_convention"] = SIGN_CONVENTION
     if result.ground_z_m is not None:
         f.attrs["ground_z_m"] = float(result.ground_z_m)
+    if result.frame is not None:
+        frame = f.create_group("frame")
+        frame.attrs["datum"] = "WGS84"
+        frame.attrs["local"] = "east-north-up, azimuthal equidistant at the origin"
+        for key in ("origin_lon_deg", "origin_lat_deg", "origin_height_m"):
+            frame.attrs[key] = float(getattr(result.frame, key))
 
     names = list(score.names)
     units = [param_unit(n) for n in names]
