@@ -198,6 +198,8 @@ def _header(result: Result) -> Text:
     g = result.ground_z_m
     ground = "free space" if g is None else f"ground plane at z = {g:g} m"
     text.append(f"config {result.config_path}, seed {result.seed}, {ground}\n")
+    if result.frame is not None:
+        text.append(_frame_line(result))
     text.append(f"written {result.created_utc} by probeplan {result.version}\n")
     if result.complete:
         text.append("status: complete")
@@ -207,6 +209,19 @@ def _header(result: Result) -> Text:
             style="bold yellow",
         )
     return text
+
+
+def _frame_line(result: Result) -> str:
+    """The map frame and what its flat metres leave out over the meters."""
+    d = result.frame.distortion(result.score.positions_m)
+    err = d.distance_error_m
+    err_text = f"{err * 1000:.0f} mm" if err < 1.0 else f"{err:.2f} m"
+    return (
+        f"map frame: {result.frame.describe()}; over the meters ({d.radius_m / 1000:.2f} km "
+        f"from the origin) scale error <= {d.scale_error:.1e}, distances within {err_text}; "
+        f"the curved ground falls {d.ground_drop_m:.2f} m below the flat model's at that "
+        "distance\n"
+    )
 
 
 def _notes_text(result: Result) -> Text:

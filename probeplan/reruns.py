@@ -363,10 +363,7 @@ def score_names(config, score, layout, n_installed: int) -> tuple[str, ...] | No
     (None: no CSV names, the defaults)."""
     if layout is None or layout.names is None:
         return None
-    from types import SimpleNamespace
-
-    from .store import probe_names
-
-    # A bare result carrying just what ``store.probe_names`` reads (config text, layout).
-    bare = SimpleNamespace(probe_names=None, config_text=config.text, score=score)
-    return probe_names(bare)[:n_installed] + tuple(layout.names)
+    # The config's own names: meters from a GeoJSON site file are not in its text.
+    installed = tuple(p.name for p in config.installed)
+    installed += tuple(f"installed-{k}" for k in range(len(installed), n_installed))
+    return installed[:n_installed] + tuple(layout.names)

@@ -14,6 +14,7 @@ from pathlib import Path
 import numpy as np
 import pyproj
 import pytest
+from geojson_rules import check_rfc7946
 
 from probeplan.errors import InputError
 from probeplan.geo import Frame, MapShape, layout_collection, read_geojson, write_geojson
@@ -263,44 +264,6 @@ def test_refusals_of_the_file_itself(tmp_path):
 # --------------------------------------------------------------------------------------------
 
 
-def _positions(geom) -> list:
-    """Every position of a geometry, flattened."""
-    c = geom["coordinates"]
-    depth = {"Point": 0, "MultiPoint": 1, "LineString": 1, "Polygon": 2, "MultiPolygon": 3}
-    out = [c]
-    for _ in range(depth[geom["type"]]):
-        out = [q for p in out for q in p]
-    return out
-
-
-def _outer_rings(geom) -> list:
-    if geom["type"] == "Polygon":
-        return [geom["coordinates"][0]]
-    if geom["type"] == "MultiPolygon":
-        return [poly[0] for poly in geom["coordinates"]]
-    return []
-
-
-def _shoelace(ring) -> float:
-    """Twice the signed area of a closed ring in (lon, lat); > 0 is counter-clockwise."""
-    a = np.asarray(ring)[:, :2]
-    return float(np.sum(a[:-1, 0] * a[1:, 1] - a[1:, 0] * a[:-1, 1]))
-
-
-def _check_rfc7946(doc: dict) -> None:
-    """The RFC 7946 rules a writer must keep (sections named in the module docstring)."""
-    assert doc["type"] == "FeatureCollection" and "crs" not in doc
-    for feat in doc["features"]:
-        assert feat["type"] == "Feature" and "crs" not in feat and "crs" not in feat["geometry"]
-        for pos in _positions(feat["geometry"]):
-            assert len(pos) in (2, 3)
-            assert -180.0 <= pos[0] <= 180.0 and -90.0 <= pos[1] <= 90.0  # lon first
-            assert all(round(v, 7) == v for v in pos[:2])  # 7 decimals
-        for ring in _outer_rings(feat["geometry"]):
-            assert len(ring) >= 4 and ring[0] == ring[-1]
-            assert _shoelace(ring) > 0.0
-
-
 def _layout(frame: Frame, tmp_path: Path, shapes, positions_m):
     n = len(positions_m)
     doc = layout_collection(
@@ -331,7 +294,7 @@ def test_written_layout_keeps_rfc7946_and_geodesic_distances(tmp_path):
         MapShape("region", "fence", "segment", np.array([[0, 0, 1.0], [300, 40, 1.0]])),
     ]
     path, doc = _layout(frame, tmp_path, shapes, meters)
-    _check_rfc7946(doc)
+    check_rfc7946(doc)
     points = [f for f in doc["features"] if f["geometry"]["type"] == "Point"]
     assert [f["properties"]["kind"] for f in points] == ["installed", "new", "new"]
     assert [f["properties"]["height_m"] for f in points] == [2.0, 3.5, 10.0]
@@ -363,7 +326,7 @@ def test_antimeridian_cut(tmp_path):
     frame = Frame(179.99, -17.0)  # a fictional site across the date line
     square = np.array([[-5000.0, -5000, 0], [5000, -5000, 0], [5000, 5000, 0], [-5000, 5000, 0]])
     _, doc = _layout(frame, tmp_path, [MapShape("region", "pad", "polygon", square)], square[:1])
-    _check_rfc7946(doc)
+    check_rfc7946(doc)
     geom = doc["features"][1]["geometry"]
     assert geom["type"] == "MultiPolygon" and len(geom["coordinates"]) == 2
     # The two pieces' ellipsoidal area adds up to the square's 1e8 m² (to the distortion).
