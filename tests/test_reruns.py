@@ -53,8 +53,9 @@ def test_score_from_an_old_result_reproduces_its_score(planned, capsys):
 
 
 def test_planned_layout_exported_as_csv_scores_the_same(planned, capsys):
-    # The hand-over file: `show --layout-csv` writes the new probes in the layout format, with
-    # every digit, so `score --layout` of it reproduces the plan's Fisher information exactly.
+    # The hand-over file: `show --layout-csv` writes the new probes in the layout format,
+    # rounded to the centimetre for people; this plan's positions are whole centimetres (grid
+    # points), so `score --layout` of it reproduces the plan's Fisher information exactly.
     assert main(["show", "old.h5", "--layout-csv", "layout.csv"]) == 0
     assert capsys.readouterr().out.strip().endswith("Layout written to layout.csv")
     text = open("layout.csv", encoding="utf-8").read().splitlines()
