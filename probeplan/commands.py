@@ -295,23 +295,16 @@ def cmd_show(args: argparse.Namespace, written: list[Path]) -> int:
                 "latitude to write; add a [frame] table (origin_lon_deg, origin_lat_deg) to the "
                 "config and run it again."
             )
-        check_writable(
-            args.geojson,
-            force=args.force,
-            option="--geojson",
-            suffix=".geojson",
-            reading=[args.file],
-        )
         # The site's outlines come from the stored config (its GeoJSON files must be found).
         site = reruns.parse_config_text(result.config_text, result.config_path)
-    if args.layout_csv:
-        check_writable(
-            args.layout_csv,
-            force=args.force,
-            option="--layout-csv",
-            suffix=".csv",
-            reading=[args.file],
-        )
+    for option, target, suffix in (
+        ("--layout-csv", args.layout_csv, ".csv"),
+        ("--geojson", args.geojson, ".geojson"),
+    ):
+        if target:
+            check_writable(
+                target, force=args.force, option=option, suffix=suffix, reading=[args.file]
+            )
     report.print_result(result)
     if args.layout_csv:
         path = record_write(
