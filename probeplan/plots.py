@@ -33,6 +33,7 @@ from matplotlib.ticker import FuncFormatter, NullFormatter
 from .fisher import CRITERIA, covariance, fisher_from_rows
 from .probes import whitened_rows
 from .problem import draw_scenarios
+from .resulttypes import probe_names
 from .store.files import write_atomically
 
 #: Output formats.
@@ -196,7 +197,7 @@ def site_map(config, result_or_score, path) -> Path:
     pos = np.asarray(score.positions_m, dtype=float).reshape(-1, 3)
     installed = np.asarray(score.installed, dtype=bool).reshape(-1)
     x0, y0, x1, y1 = _extent(config, pos, margin=0.06)
-    scale, unit = _scale(x0, y0, x1, y1)
+    scale, unit = _scale(x0, y0, x1, y1, config)
 
     fig, ax = _figure()
     handles = []
@@ -222,8 +223,10 @@ def site_map(config, result_or_score, path) -> Path:
     ax.set_xlim(x0 / scale, x1 / scale)
     ax.set_ylim(y0 / scale, y1 / scale)
     ax.set_aspect("equal")
-    ax.set_xlabel(f"x ({unit})")
-    ax.set_ylabel(f"y ({unit})")
+    _axis_labels(ax, config, unit)
+    if getattr(config, "frame", None) is not None:
+        names = probe_names(result_or_score) if hasattr(result_or_score, "score") else None
+        _map_furniture(ax, config, pos, names, scale)
     ax.set_title(f"{config.title}\nsite map: {int((~installed).sum())} new meter(s)", fontsize=11)
     shadow = "Walls and 3-D keep-outs are drawn as their shadows on the ground plan."
     _legend_and_caption(fig, handles, f"{shadow}\n{SIGN_CAPTION}")
@@ -258,7 +261,7 @@ def coverage_map(
     cov = coverage_grid(problem, positions_m, gain, resolution, axes=axes, grades=grades)
     meters = problem.meters(positions_m, gain, axes, grades)
     config = problem.config
-    scale, unit = _scale(cov.x_m[0], cov.y_m[0], cov.x_m[-1], cov.y_m[-1])
+    scale, unit = _scale(cov.x_m[0], cov.y_m[0], cov.x_m[-1], cov.y_m[-1], config)
 
     fig, ax = _figure()
     ax.set_facecolor("0.8")  # unresolved grid points stay grey
@@ -294,8 +297,9 @@ def coverage_map(
     ax.set_xlim(cov.x_m[0] / scale, cov.x_m[-1] / scale)
     ax.set_ylim(cov.y_m[0] / scale, cov.y_m[-1] / scale)
     ax.set_aspect("equal")
-    ax.set_xlabel(f"x ({unit})")
-    ax.set_ylabel(f"y ({unit})")
+    _axis_labels(ax, config, unit)
+    if getattr(config, "frame", None) is not None:
+        _map_furniture(ax, config, meters.positions_m, None, scale)
     ax.set_title(f"{config.title}\ncoverage: where a charge is located how well", fontsize=11)
     note = (
         f"Source 0 at z = {cov.z_m:g} m, q = {cov.charge_c:g} C, other parameters nominal; "
@@ -649,8 +653,72 @@ def _extent(config, probes_m: np.ndarray, margin: float) -> tuple[float, float, 
     return x0 - pad, y0 - pad, x1 + pad, y1 + pad
 
 
-def _scale(x0, y0, x1, y1) -> tuple[float, str]:
-    return (1000.0, "km") if max(x1 - x0, y1 - y0) >= KM_SPAN_M else (1.0, "m")
+def _scale(x0, y0, x1, y1, config=None) -> tuple[float, str]:
+    """Kilometres for wide sites and for every site on a map (a ``[frame]``), else metres."""
+    on_map = getattr(config, "frame", None) is not None
+    return (1000.0, "km") if on_map or max(x1 - x0, y1 - y0) >= KM_SPAN_M else (1.0, "m")
+
+
+def _axis_labels(ax, config, unit: str) -> None:
+    if getattr(config, "frame", None) is not None:
+        ax.set_xlabel(f"east of the frame origin ({unit})")
+        ax.set_ylabel(f"north of the frame origin ({unit})")
+    else:
+        ax.set_xlabel(f"x ({unit})")
+        ax.set_ylabel(f"y ({unit})")
+
+
+def _map_furniture(ax, config, pos: np.ndarray, names, scale: float) -> None:
+    """A scale bar, a north arrow (grid north of the frame: true north at its origin), and
+    the names of the meters and keep-outs."""
+    from mpl_toolkits.axes_grid1.anchored_artists import AnchoredSizeBar
+
+    lo, hi = ax.get_xlim()
+    span = (hi - lo) / 5.0  # about a fifth of the width, rounded to 1, 2 or 5 × 10^k
+    step = 10.0 ** np.floor(np.log10(span))
+    length = step * max(m for m in (1.0, 2.0, 5.0) if m * step <= span)
+    label = f"{length:g} km" if length >= 1.0 else f"{length * 1000:g} m"
+    bar = AnchoredSizeBar(
+        ax.transData,
+        length,
+        label,
+        "lower left",
+        pad=0.5,
+        frameon=True,
+        size_vertical=length / 40.0,
+    )
+    ax.add_artist(bar)
+    ax.annotate(
+        "N",
+        xy=(0.95, 0.95),
+        xytext=(0.95, 0.83),
+        xycoords="axes fraction",
+        ha="center",
+        va="center",
+        fontsize=10,
+        fontweight="bold",
+        arrowprops={"arrowstyle": "-|>", "color": "black", "lw": 1.5},
+    )
+    for k, name in enumerate(names or ()):
+        ax.annotate(
+            name,
+            pos[k, :2] / scale,
+            xytext=(4, 4),
+            textcoords="offset points",
+            fontsize=7,
+            zorder=6,
+        )
+    for r in config.keepouts:
+        if r.name:
+            c = shapely.centroid(_xy_geometry(r))
+            ax.annotate(
+                r.name,
+                (c.x / scale, c.y / scale),
+                ha="center",
+                fontsize=7,
+                color=_KEEPOUT_EDGE,
+                zorder=6,
+            )
 
 
 def _decade_levels(lo: float, hi: float) -> np.ndarray:
