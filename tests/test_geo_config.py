@@ -242,3 +242,39 @@ def test_the_fictional_example_loads():
     c = load_config(root)
     assert c.frame is not None and len(c.regions) == 1 and len(c.keepouts) == 2
     assert [p.name for p in c.installed] == ["north mast", "gatehouse"]
+
+
+def test_a_source_centre_by_longitude_and_latitude(tmp_path):
+    source = {
+        "kind": "point",
+        "charge_c": -20.0,
+        "center_lonlat": [*_lonlat(300.0, 400.0), 7000.0],
+        "estimate": ["charge", "x", "y", "z"],
+    }
+    config = config_from_mapping(site_mapping(frame=FRAME, source=[source]), "c.toml")
+    assert config.sources[0].source.center_m == pytest.approx((300.0, 400.0, 7000.0), abs=1e-6)
+
+
+def test_map_furniture_on_a_site_with_a_frame(tmp_path):
+    import matplotlib.pyplot as plt
+    from mpl_toolkits.axes_grid1.anchored_artists import AnchoredSizeBar
+
+    from probeplan import plots
+
+    _site_file(tmp_path)
+    config = config_from_mapping(
+        site_mapping(frame=FRAME, region=[MAP_REGION]), str(tmp_path / "c.toml")
+    )
+    assert plots._scale(0.0, 0.0, 500.0, 500.0, config) == (1000.0, "km")  # km on a map
+    fig, ax = plt.subplots()
+    ax.set_xlim(-3.0, 3.0)
+    ax.set_ylim(-3.0, 3.0)
+    pos = np.array([[-1500.0, -1500.0, 2.0], [100.0, 200.0, 0.0]])
+    plots._axis_labels(ax, config, "km")
+    plots._map_furniture(ax, config, pos, ("gate", "new-0"), 1000.0)
+    texts = [t.get_text() for t in ax.texts]
+    assert {"N", "gate", "new-0", "tank"} <= set(texts)
+    (bar,) = [a for a in ax.artists if isinstance(a, AnchoredSizeBar)]
+    assert bar.txt_label.get_text() == "1 km"  # a fifth of 6 km, rounded down to 1-2-5
+    assert ax.get_xlabel() == "east of the frame origin (km)"
+    plt.close(fig)

@@ -153,7 +153,7 @@ def _check(data: dict, text: str, path: str, base: Path) -> Config:
     installed = check_installed_names(ck, installed + mapped.installed)
     regions = parse_regions(root, "region", ground_z_m) + mapped.regions
     keepouts = parse_regions(root, "keepout", ground_z_m) + mapped.keepouts
-    sources = parse_sources(root, ground_z_m, base)
+    sources = parse_sources(root, ground_z_m, base, frame)
     background = parse_background(root)
     design = parse_design(root)
     check_estimates(ck, sources, background, design)

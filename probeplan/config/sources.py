@@ -6,31 +6,37 @@ from pathlib import Path
 
 import numpy as np
 
+from ..geo import Frame
 from ..sources import BASE_PARAMS, KINDS, Source
+from .frame import lonlat_position, one_of
 from .model import SourceSpec
 from .reader import XYZ, Table, all_keys, did_you_mean, found, show
 from .vocab import ESTIMATE_NAMES, PARAM_TO_ESTIMATE, SOURCE_KINDS
 
 SOURCE_KIND_KEYS = {
-    "point": ("charge_c", "center_m"),
+    "point": ("charge_c", "center_m", "center_lonlat"),
     "line": ("charge_c", "start_m", "end_m"),
-    "sphere": ("charge_c", "center_m", "radius_m", "radius_range_m"),
-    "gaussian": ("charge_c", "center_m", "sigma_m", "sigma_range_m"),
+    "sphere": ("charge_c", "center_m", "center_lonlat", "radius_m", "radius_range_m"),
+    "gaussian": ("charge_c", "center_m", "center_lonlat", "sigma_m", "sigma_range_m"),
     "grid": ("density_path", "origin_m", "spacing_m"),
 }
 SOURCE_COMMON = ("kind", "estimate", "charge_range_c", "center_range_m")
 
 
-def parse_sources(root: Table, ground_z_m: float | None, base: Path) -> tuple[SourceSpec, ...]:
+def parse_sources(
+    root: Table, ground_z_m: float | None, base: Path, frame: Frame | None = None
+) -> tuple[SourceSpec, ...]:
     tables = root.array_of_tables(
         "source",
         required=True,
         hint='a charge distribution, e.g. kind = "point", charge_c, center_m',
     )
-    return tuple(_parse_source(t, ground_z_m, base) for t in tables)
+    return tuple(_parse_source(t, ground_z_m, base, frame) for t in tables)
 
 
-def _parse_source(t: Table, ground_z_m: float | None, base: Path) -> SourceSpec:
+def _parse_source(
+    t: Table, ground_z_m: float | None, base: Path, frame: Frame | None = None
+) -> SourceSpec:
     kind = t.choice("kind", SOURCE_KINDS)
     t.check_keys(
         ("kind", *SOURCE_KIND_KEYS[kind], *SOURCE_COMMON[1:]),
@@ -51,7 +57,11 @@ def _parse_source(t: Table, ground_z_m: float | None, base: Path) -> SourceSpec:
             t.vector("end_m", 3, what=XYZ),
         )
     else:
-        args = (t.number("charge_c"), t.vector("center_m", 3, what=XYZ))
+        if one_of(t, "center_m", "center_lonlat") == "center_m":
+            center = t.vector("center_m", 3, what=XYZ)
+        else:  # [lon, lat, height above the ground], with the [frame]
+            center = lonlat_position(t, "center_lonlat", frame, ground_z_m, need_height=True)
+        args = (t.number("charge_c"), center)
         if kind == "sphere":
             args += (t.number("radius_m", what="the radius in metres"),)
         elif kind == "gaussian":
