@@ -42,6 +42,7 @@ def write_layout_geojson(
     Returns
     -------
     Path
+        The file written.
 
     Raises
     ------
