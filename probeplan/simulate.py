@@ -10,18 +10,15 @@ user would meet it in the field. For each simulated scenario it
 2. drops the readings that came back at the end of the range (saturated: they carry no
    information, and a user would discard them), and unused axes;
 3. fits the estimated parameters to each trial's readings by nonlinear least squares
-   (:func:`scipy.optimize.least_squares`, trust-region reflective) on whitened residuals
-   (m_obs − h(θ))/σ, with the analytic Jacobian of the forward model; σ is the noise of the
-   *model* reading (additive floor and proportional part), reweighted until it settles —
-   weights from the noisy readings would favour readings that fell low and bias the fit;
+   (:class:`probeplan.fit.ReadingFit`: whitened residuals (m_obs − h(θ))/σ, the analytic
+   Jacobian of the forward model, σ of the *model* reading reweighted until it settles);
 4. reports the achieved RMS errors beside the bounds at the same scenario.
 
 The fit starts from the truth plus a draw from the Cramér–Rao covariance: this models a user
 with a reasonable first guess, about as good as the data themselves (a previous fit, a forecast,
 the plant drawing). It does not test whether a fit from a poor first guess finds the global
-minimum. Box bounds keep each source above the grounded plane — below it, a charge (q, z) and
-the sign-flipped (−q, 2g − z) give the same field above the ground, a mirror solution no user
-would accept — and sizes (sigma, radius) positive.
+minimum (:mod:`probeplan.locate` does, for recorded readings). Box bounds keep each source above
+the grounded plane and sizes positive (:func:`probeplan.fit.fit_bounds`).
 
 At high signal-to-noise the least-squares estimate is efficient: its covariance reaches J⁻¹
 (Kay, Fundamentals of Statistical Signal Processing, vol. 1, §7.5: the maximum-likelihood
@@ -38,19 +35,16 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.optimize import least_squares
 
 from .fisher import covariance
-from .probes import Meters, readings
+from .fit import ReadingFit, fit_bounds, inside
+from .probes import readings
 
 #: Scenarios simulated by default: scenario 0 (nominal) and up to this many in all.
 DEFAULT_SCENARIOS = 8
 
 #: Least trials per scenario (an RMS from fewer means nothing).
 MIN_TRIALS = 2
-
-#: Reweighting passes of the fit when the noise is proportional to the reading.
-IRLS_PASSES = 3
 
 
 @dataclass(frozen=True, eq=False)
@@ -190,20 +184,20 @@ def simulate(
     z = rng.standard_normal((n_sim, trials, p))
     start = truth[:, None, :] + np.einsum("spq,stq->stp", _sqrt_cov(cov, singular), z)
 
-    lower, upper = _bounds(problem, theta_all)
+    lower, upper = fit_bounds(problem, theta_all)
     fitted = np.array(start)
     converged = np.zeros((n_sim, trials), dtype=bool)
     for k in range(n_sim):
         if singular[k] or not np.all(np.isfinite(crb[k]) & (crb[k] > 0)):
             fitted[k] = truth[k]  # nothing to fit: the layout cannot resolve this scenario
             continue
-        fit = _Fit(problem, theta_all[k], meters)
+        fit = ReadingFit.of_problem(problem, theta_all[k], meters)
         lo, hi = lower[k], upper[k]
         for t in range(trials):
             keep = usable[k, t]
             if keep.sum() < p:
                 continue  # fewer readings than unknowns: counted as a failed fit
-            x0 = _inside(start[k, t], lo, hi)
+            x0 = inside(start[k, t], lo, hi)
             fitted[k, t], converged[k, t] = fit.solve(x0, noisy[k, t][keep], keep, crb[k], lo, hi)
 
     err = fitted - truth[:, None, :]
@@ -213,22 +207,7 @@ def simulate(
         ms = np.where(w, err**2, 0.0).sum(axis=1) / n_ok[:, None]
     rms = np.where(n_ok[:, None] > 0, np.sqrt(ms), np.inf)
 
-    ix, iy, iq = (names.index(n) if n in names else -1 for n in ("s0.x_m", "s0.y_m", "s0.charge_c"))
-    has_loc = ix >= 0 and iy >= 0
-    has_q = iq >= 0
-    minus = np.full(n_sim, -1.0)
-    if has_loc:
-        loc_rms = np.sqrt(rms[:, ix] ** 2 + rms[:, iy] ** 2)
-        loc_crb = np.sqrt(cov[:, ix, ix] + cov[:, iy, iy])
-    else:
-        loc_rms, loc_crb = minus, minus.copy()
-    if has_q:
-        q = np.abs(truth[:, iq])
-        with np.errstate(divide="ignore", invalid="ignore"):
-            q_rms = np.where(q > 0, rms[:, iq] / q, np.inf)
-            q_crb = np.where(q > 0, crb[:, iq] / q, np.inf)
-    else:
-        q_rms, q_crb = minus.copy(), minus.copy()
+    loc_rms, loc_crb, q_rms, q_crb = _source0_figures(names, truth, rms, crb, cov)
     return Simulation(
         trials=trials,
         scenarios=sel,
@@ -238,10 +217,10 @@ def simulate(
         converged=converged,
         rms_error=rms,
         crb_std=crb,
-        has_location=has_loc,
+        has_location="s0.x_m" in names and "s0.y_m" in names,
         location_rms_m=loc_rms,
         location_crb_m=loc_crb,
-        has_charge=has_q,
+        has_charge="s0.charge_c" in names,
         charge_rms_rel=q_rms,
         charge_crb_rel=q_crb,
         saturated=saturated,
@@ -309,64 +288,25 @@ def summary_rows(sim: Simulation) -> list[dict]:
 # --------------------------------------------------------------------------------------------
 
 
-class _Fit:
-    """Residuals and Jacobian of one scenario's fit, sharing one forward evaluation per point."""
-
-    def __init__(self, problem, theta_full: np.ndarray, meters: Meters) -> None:
-        self.scene = problem.scene
-        self.cols = problem.est_cols
-        self.theta = np.array(theta_full, dtype=float)
-        self.meters = meters
-        self._x = None
-        self._m = None
-        self._dm = None
-
-    def _eval(self, x: np.ndarray) -> None:
-        if self._x is not None and np.array_equal(x, self._x):
-            return
-        theta = self.theta.copy()
-        theta[self.cols] = x
-        e, jac = self.scene.evaluate(theta[None], self.meters.positions_m, columns=self.cols)
-        mt = self.meters
-        self._m = readings(e, mt.axes, mt.gain)[0]  # (n_probes, n_axes)
-        self._dm = np.einsum("nip,nai->nap", jac[0], mt.axes) * mt.gain[:, None, None]
-        self._x = np.array(x)
-
-    def solve(self, x0, observed, keep, x_scale, lo, hi) -> tuple[np.ndarray, bool]:
-        """Fit one trial; returns (parameters (n_params,), converged).
-
-        Iteratively reweighted least squares: the weights come from the noise of the *model*
-        readings at the current estimate, refitted until they settle. Weights from the noisy
-        readings themselves would favour readings that happened to fall low when the noise is
-        proportional, and bias the fit.
-        """
-        x = np.asarray(x0, dtype=float)
-        for _ in range(IRLS_PASSES):
-            self._eval(x)
-            sigma = self.meters.sigma(self._m)[keep]
-
-            def fun(x, sigma=sigma):
-                self._eval(x)
-                return (observed - self._m[keep]) / sigma
-
-            def jac(x, sigma=sigma):
-                self._eval(x)
-                return -self._dm[keep] / sigma[:, None]
-
-            with np.errstate(all="ignore"):
-                try:
-                    res = least_squares(
-                        fun, x, jac=jac, bounds=(lo, hi), x_scale=x_scale, method="trf"
-                    )
-                except (ValueError, np.linalg.LinAlgError):
-                    return np.asarray(x0, dtype=float), False
-            ok = bool(res.success) and bool(np.all(np.isfinite(res.x))) and np.isfinite(res.cost)
-            if not ok:
-                return np.asarray(x0, dtype=float), False
-            x = res.x
-            if not np.any(self.meters.relative_noise):
-                break  # constant weights: one pass is the fit
-        return x, True
+def _source0_figures(names, truth, rms, crb, cov) -> tuple[np.ndarray, ...]:
+    """Location (m) and relative charge figures of source 0, achieved and bound, ``(n_sim,)``
+    each; −1 where the parameters are not estimated."""
+    n_sim = truth.shape[0]
+    ix, iy, iq = (names.index(n) if n in names else -1 for n in ("s0.x_m", "s0.y_m", "s0.charge_c"))
+    minus = np.full(n_sim, -1.0)
+    if ix >= 0 and iy >= 0:
+        loc_rms = np.sqrt(rms[:, ix] ** 2 + rms[:, iy] ** 2)
+        loc_crb = np.sqrt(cov[:, ix, ix] + cov[:, iy, iy])
+    else:
+        loc_rms, loc_crb = minus, minus.copy()
+    if iq >= 0:
+        q = np.abs(truth[:, iq])
+        with np.errstate(divide="ignore", invalid="ignore"):
+            q_rms = np.where(q > 0, rms[:, iq] / q, np.inf)
+            q_crb = np.where(q > 0, crb[:, iq] / q, np.inf)
+    else:
+        q_rms, q_crb = minus.copy(), minus.copy()
+    return loc_rms, loc_crb, q_rms, q_crb
 
 
 def _check_scenarios(scenarios, n_scenarios: int) -> np.ndarray:
@@ -400,47 +340,6 @@ def _sqrt_cov(cov: np.ndarray, singular: np.ndarray) -> np.ndarray:
     val, vec = np.linalg.eigh(corr)
     root = d[:, :, None] * vec * np.sqrt(np.clip(val, 0.0, None))[:, None, :]
     return np.where(singular[:, None, None], 0.0, root)
-
-
-def _bounds(problem, theta_all: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Box bounds on the estimated parameters of each simulated scenario, ``(n_sim, p)`` each.
-
-    Sizes stay positive; with a ground plane every source stays above it (its lowest point,
-    for the kinds whose extent below the centre is fixed during the fit).
-    """
-    scene = problem.scene
-    names_all = scene.param_names
-    n_sim = theta_all.shape[0]
-    lo = np.full((n_sim, scene.n_params), -np.inf)
-    hi = np.full((n_sim, scene.n_params), np.inf)
-    est = set(problem.names)
-    start = 0
-    for i, src in enumerate(scene.sources):
-        n_p = len(src.param_names)
-        block = theta_all[:, start : start + n_p]
-        for name in ("radius_m", "sigma_m"):
-            col = names_all.index(f"s{i}.{name}") if f"s{i}.{name}" in names_all else -1
-            if col >= 0:
-                lo[:, col] = 1e-3 * np.abs(theta_all[:, col])
-        if scene.ground_z_m is not None:
-            zc = names_all.index(f"s{i}.z_m")
-            size_free = src.kind == "sphere" and f"s{i}.radius_m" in est
-            below = np.array(
-                [0.0 if size_free else row[3] - src.with_params(row).lowest_z_m() for row in block]
-            )
-            floor = scene.ground_z_m + below
-            # A truth at or under the floor (a sampled size) leaves the fit unbounded there.
-            lo[:, zc] = np.where(theta_all[:, zc] > floor, floor, -np.inf)
-        start += n_p
-    cols = problem.est_cols
-    return lo[:, cols], hi[:, cols]
-
-
-def _inside(x: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
-    """x moved strictly inside [lo, hi] (least_squares needs a feasible start)."""
-    span = np.where(np.isfinite(hi - lo), hi - lo, np.abs(x) + 1.0)
-    margin = 1e-6 * span
-    return np.clip(x, lo + margin, hi - margin)
 
 
 def _unit(name: str) -> str:
