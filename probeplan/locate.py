@@ -96,7 +96,9 @@ class Delivery:
     ratio : (n_compared,) float
         sqrt(mean((error/σ_CRB)²)): 1 when the network delivers its bound.
     ratio_low, ratio_high : (n_compared,) float
-        The sampling band of ``ratio`` for this many steps (two-sided, level ``alpha``).
+        The sampling band of ``ratio`` for this many steps: two-sided, level
+        ``alpha / n_compared`` per parameter, so that the verdict on the network as a whole
+        errs with probability at most ``alpha`` when it delivers.
     delivers : (n_compared,) bool
         ``ratio <= ratio_high``.
     alpha : float
@@ -347,8 +349,11 @@ def check_delivery(
     ratio = np.sqrt(np.where(use, (err[:, cols] / safe) ** 2, 0.0).sum(axis=0) / n)
     rms = np.sqrt(np.where(use, err[:, cols] ** 2, 0.0).sum(axis=0) / n)
     brms = np.sqrt(np.where(use, safe**2, 0.0).sum(axis=0) / n)
-    lo = np.sqrt(stats.chi2.ppf(alpha / 2, n) / n)
-    hi = np.sqrt(stats.chi2.ppf(1 - alpha / 2, n) / n)
+    # Each parameter at alpha / n_compared (Bonferroni): the verdict on the whole network is
+    # wrong at most with probability alpha.
+    each = alpha / cols.size
+    lo = np.sqrt(stats.chi2.ppf(each / 2, n) / n)
+    hi = np.sqrt(stats.chi2.ppf(1 - each / 2, n) / n)
     return Delivery(
         names=tuple(location.names[c] for c in cols),
         steps=n,
@@ -394,6 +399,13 @@ def _planned_bounds(problem, meters: Meters, known: np.ndarray) -> np.ndarray:
     return out
 
 
+def _covariance(rows: np.ndarray) -> tuple[np.ndarray, bool]:
+    """J⁻¹ of whitened rows ``(n_used, n_params)`` and whether J is singular (the planner's
+    test); batched as :func:`~probeplan.fisher.covariance` expects its input."""
+    cov, singular = covariance((rows.T @ rows)[None])
+    return cov[0], bool(singular[0])
+
+
 @dataclass(frozen=True)
 class _Step:
     x: np.ndarray
@@ -410,8 +422,9 @@ class _Try:
     ok: bool
     keep: np.ndarray  # readings in the fit
     chi2: float
-    worst: float  # largest |standardised residual| among them
+    worst: float  # largest |studentised residual| among them
     flagged: np.ndarray
+    std: np.ndarray  # 1-sigma from the Fisher information at x, +inf where singular
 
 
 class _Stepper:
@@ -439,6 +452,7 @@ class _Stepper:
         e, _ = problem.scene.evaluate(full, meters.positions_m, jacobian=False)
         self.pool_m = readings(e, meters.axes, meters.gain)
         self.pool_sigma = meters.sigma(self.pool_m)
+        self._last_cov = None
 
     def step(self, obs: np.ndarray, keep: np.ndarray, prev: np.ndarray | None) -> _Step:
         n = int(keep.sum())
@@ -459,11 +473,8 @@ class _Stepper:
             best = self._better(best, cold)
         if not best.ok:
             return _Step(x0, False, np.zeros_like(keep), 0.0, 0, np.full(self.p, np.inf))
-        _, rows = self.fit.whitened(best.x, obs, best.keep)
-        cov, singular = covariance(rows.T @ rows)
-        std = np.full(self.p, np.inf) if singular else np.sqrt(np.diagonal(cov))
         dof = int(best.keep.sum()) - self.p
-        return _Step(best.x, True, best.flagged, best.chi2, dof, std)
+        return _Step(best.x, True, best.flagged, best.chi2, dof, best.std)
 
     # -- pieces ---------------------------------------------------------------------------------
 
@@ -476,7 +487,7 @@ class _Stepper:
         """
         x0 = inside(np.asarray(x0, dtype=float), self.lo, self.hi)
         r, rows = self.fit.whitened(x0, obs, keep)
-        cov, singular = covariance(rows.T @ rows)
+        cov, singular = self._covariance(x0, keep, rows)
         scale = np.sqrt(np.diagonal(cov))
         if singular or not np.all(np.isfinite(scale) & (scale > 0)):
             scale = "jac"
@@ -494,10 +505,28 @@ class _Stepper:
             tol=_TOL,
             method="auto",
         )
-        r, _ = self.fit.whitened(x, obs, keep)
+        r, rows = self.fit.whitened(x, obs, keep)
+        cov, singular = self._covariance(x, keep, rows)
         rk = r[keep]
+        # Studentised residuals r/sqrt(1 − h), h the leverage of each reading (the diagonal of
+        # the hat matrix R J⁻¹ Rᵀ): a fit pulls towards a reading by its leverage, so a bad
+        # reading on a meter that alone pins a parameter hides its error in the fit. With the
+        # noise known this is also the residual of a fit without the reading (Cook & Weisberg,
+        # Residuals and Influence in Regression, 1982 — from memory). A reading with h = 1
+        # cannot be checked by the others and counts 0.
+        room = np.ones(rk.shape) if singular else 1.0 - np.einsum("ip,pq,iq->i", rows, cov, rows)
+        student = np.where(room > 1e-9, rk / np.sqrt(np.maximum(room, 1e-9)), 0.0)
+        std = np.full(self.p, np.inf) if singular else np.sqrt(np.diagonal(cov))
         flagged = np.zeros_like(keep) if flagged is None else flagged
-        return _Try(x, ok, keep, float(rk @ rk), float(np.abs(rk).max()), flagged)
+        return _Try(x, ok, keep, float(rk @ rk), float(np.abs(student).max()), flagged, std)
+
+    def _covariance(self, x, keep, rows) -> tuple[np.ndarray, bool]:
+        """:func:`_covariance`, remembered for the last (x, keep): a step's final fit is the
+        next step's start."""
+        key = (np.asarray(x).tobytes(), keep.tobytes())
+        if self._last_cov is None or self._last_cov[0] != key:
+            self._last_cov = (key, _covariance(rows))
+        return self._last_cov[1]
 
     def _robust(self, x0, obs, keep) -> _Try | None:
         """The health pass: robust refit, flag readings beyond the threshold, refit without."""
