@@ -78,14 +78,15 @@ class ReadingFit:
         gradient : (n_probes, n_axes, n_params) float
             ∂m/∂θ, V/m per unit of θ.
         """
-        if self._x is None or not np.array_equal(x, self._x):
+        key = np.asarray(x, dtype=float).tobytes()  # cheaper than array_equal, called often
+        if key != self._x:
             theta = self.theta.copy()
             theta[self.cols] = x
             e, jac = self.scene.evaluate(theta[None], self.meters.positions_m, columns=self.cols)
             mt = self.meters
             self._m = readings(e, mt.axes, mt.gain)[0]
             self._dm = np.einsum("nip,nai->nap", jac[0], mt.axes) * mt.gain[:, None, None]
-            self._x = np.array(x)
+            self._x = key
         return self._m, self._dm
 
     def whitened(

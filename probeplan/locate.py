@@ -41,7 +41,9 @@ Shapes: ``n_times`` steps, ``n_probes`` meters (installed first), ``n_axes`` rea
 from __future__ import annotations
 
 from collections.abc import Callable
+from concurrent.futures import Executor, ProcessPoolExecutor, as_completed
 from dataclasses import dataclass, replace
+from typing import NamedTuple
 
 import numpy as np
 from scipy import stats
@@ -64,6 +66,11 @@ STARTS = 4
 
 #: A meter flagged in more than this fraction of its steps is suspect.
 SUSPECT_FRACTION = 0.5
+
+#: Steps fitted as one chain: the first from the prior pool, each next from the previous
+#: estimate. Chains are the unit of parallel work; the result does not depend on how many
+#: processes share them.
+CHUNK_STEPS = 1000
 
 #: Test level of the delivery check's sampling band.
 DELIVERY_ALPHA = 0.01
@@ -196,6 +203,8 @@ def locate(
     alpha: float = ALPHA,
     suspect_fraction: float = SUSPECT_FRACTION,
     seed: int | None = None,
+    workers: int = 1,
+    executor: Executor | None = None,
     progress: Callable[[int, int], None] | None = None,
 ) -> Location:
     """Fit every time step of a readings table (see the module docstring).
@@ -224,8 +233,12 @@ def locate(
         Share of its steps a meter must be flagged in to be suspect (0 to 1).
     seed : int or None
         Seeds the prior pool (default: the config's seed).
+    workers : int
+        Processes that fit chunks of :data:`CHUNK_STEPS` steps side by side (1: here).
+    executor : concurrent.futures.Executor or None
+        Runs the chunks instead (e.g. a dask client); ``workers`` is then ignored.
     progress : callable(done, total) or None
-        Called now and then with the steps done.
+        Called with the steps done after each chunk.
 
     Returns
     -------
@@ -236,7 +249,7 @@ def locate(
     InputError
         A truth table whose times match no step, or whose times are of another kind.
     """
-    _check_settings(starts, pool, threshold, alpha, suspect_fraction)
+    _check_settings(starts, pool, threshold, alpha, suspect_fraction, workers)
     vals = readings_table.values_v_per_m
     if vals.shape[1:] != meters.axes.shape[:2]:
         raise ValueError(
@@ -244,26 +257,14 @@ def locate(
             f"{meters.axes.shape[:2]}."
         )
     seed = problem.config.seed if seed is None else seed
-    stepper = _Stepper(problem, meters, starts, pool, threshold, alpha, seed)
-    n_t, p = vals.shape[0], problem.n_params
-    est = np.empty((n_t, p))
-    std = np.full((n_t, p), np.inf)
-    chi2 = np.zeros(n_t)
-    dof = np.zeros(n_t, dtype=int)
-    ok = np.zeros(n_t, dtype=bool)
-    flagged = np.zeros(vals.shape, dtype=bool)
+    settings = (bool(warm), int(starts), int(pool), float(threshold), float(alpha), int(seed))
     sat = readings_table.present & meters.used & (np.abs(vals) >= meters.range_v_per_m)
     usable = readings_table.present & meters.used & ~sat
-    prev = None
-    every = max(1, n_t // 200)
-    for t in range(n_t):
-        s = stepper.step(vals[t], usable[t], prev)
-        est[t], ok[t], flagged[t], chi2[t], dof[t] = s.x, s.ok, s.flagged, s.chi2, s.dof
-        std[t] = s.std
-        if s.ok and warm:
-            prev = s.x
-        if progress is not None and ((t + 1) % every == 0 or t + 1 == n_t):
-            progress(t + 1, n_t)
+    n_t = vals.shape[0]
+    bounds = [(a, min(a + CHUNK_STEPS, n_t)) for a in range(0, n_t, CHUNK_STEPS)]
+    tasks = [(problem, meters, vals[a:b], usable[a:b], settings) for a, b in bounds]
+    parts = _run_chunks(tasks, workers, executor, progress, [b - a for a, b in bounds])
+    est, std, chi2, dof, ok, flagged = (np.concatenate(x) for x in zip(*parts, strict=True))
     outliers = flagged.any(axis=-1)
     reported = usable.any(axis=-1)
     counts = outliers.sum(axis=0)
@@ -372,8 +373,8 @@ def check_delivery(
 # --------------------------------------------------------------------------------------------
 
 
-def _check_settings(starts, pool, threshold, alpha, suspect_fraction) -> None:
-    for name, value in (("starts", starts), ("pool", pool)):
+def _check_settings(starts, pool, threshold, alpha, suspect_fraction, workers) -> None:
+    for name, value in (("starts", starts), ("pool", pool), ("workers", workers)):
         if isinstance(value, bool) or not isinstance(value, int | np.integer) or value < 1:
             raise ValueError(f"`{name}` must be a whole number >= 1; got {value!r}.")
     if not (np.isfinite(threshold) and threshold > 0):
@@ -382,6 +383,72 @@ def _check_settings(starts, pool, threshold, alpha, suspect_fraction) -> None:
         raise ValueError(f"`alpha` must lie strictly between 0 and 1; got {alpha}.")
     if not 0 <= suspect_fraction <= 1:
         raise ValueError(f"`suspect_fraction` must lie in [0, 1]; got {suspect_fraction}.")
+
+
+def fit_chunk(problem, meters: Meters, values, usable, settings) -> tuple[np.ndarray, ...]:
+    """Fit consecutive steps, the first from the prior pool and each next from the previous
+    estimate (the unit of work of :func:`locate`, run in a worker process when parallel).
+
+    Parameters
+    ----------
+    problem, meters
+        As :func:`locate` takes them.
+    values : (n, n_probes, n_axes) float
+    usable : (n, n_probes, n_axes) bool
+    settings : tuple
+        (warm, starts, pool, threshold, alpha, seed).
+
+    Returns
+    -------
+    tuple
+        estimate (n, n_params), std (n, n_params), chi2 (n,), dof (n,) int, converged (n,)
+        bool, flagged (n, n_probes, n_axes) bool.
+    """
+    warm, starts, pool, threshold, alpha, seed = settings
+    stepper = _Stepper(problem, meters, starts, pool, threshold, alpha, seed)
+    n, p = values.shape[0], problem.n_params
+    est = np.empty((n, p))
+    std = np.full((n, p), np.inf)
+    chi2 = np.zeros(n)
+    dof = np.zeros(n, dtype=int)
+    ok = np.zeros(n, dtype=bool)
+    flagged = np.zeros(values.shape, dtype=bool)
+    prev = None
+    for t in range(n):
+        s = stepper.step(values[t], usable[t], prev)
+        est[t], std[t], chi2[t], dof[t], ok[t], flagged[t] = s
+        if s.ok and warm:
+            prev = s.x
+    return est, std, chi2, dof, ok, flagged
+
+
+def _run_chunks(tasks, workers: int, executor, progress, sizes) -> list:
+    """:func:`fit_chunk` of every task, in order: here, or on ``executor``, or on a pool of
+    ``workers`` processes."""
+    total = sum(sizes)
+    done = 0
+    if executor is None and (workers <= 1 or len(tasks) <= 1):
+        out = []
+        for task, size in zip(tasks, sizes, strict=True):
+            out.append(fit_chunk(*task))
+            done += size
+            if progress is not None:
+                progress(done, total)
+        return out
+    own = executor is None
+    if own:
+        executor = ProcessPoolExecutor(max_workers=min(workers, len(tasks)))
+    try:
+        futures = [executor.submit(fit_chunk, *task) for task in tasks]
+        size_of = dict(zip(futures, sizes, strict=True))
+        for fut in as_completed(futures):
+            done += size_of[fut]
+            if progress is not None:
+                progress(done, total)
+        return [f.result() for f in futures]
+    finally:
+        if own:
+            executor.shutdown(wait=True, cancel_futures=True)
 
 
 def _planned_bounds(problem, meters: Meters, known: np.ndarray) -> np.ndarray:
@@ -406,14 +473,15 @@ def _covariance(rows: np.ndarray) -> tuple[np.ndarray, bool]:
     return cov[0], bool(singular[0])
 
 
-@dataclass(frozen=True)
-class _Step:
+class _Step(NamedTuple):
+    """One step's outcome, in the order :func:`fit_chunk` stores it."""
+
     x: np.ndarray
-    ok: bool
-    flagged: np.ndarray  # (n_probes, n_axes) bool
+    std: np.ndarray
     chi2: float
     dof: int
-    std: np.ndarray
+    ok: bool
+    flagged: np.ndarray  # (n_probes, n_axes) bool
 
 
 @dataclass(frozen=True)
@@ -458,7 +526,7 @@ class _Stepper:
         n = int(keep.sum())
         x0 = self.pool[0] if prev is None else prev
         if n < self.p:  # fewer readings than unknowns
-            return _Step(x0, False, np.zeros_like(keep), 0.0, 0, np.full(self.p, np.inf))
+            return _Step(x0, np.full(self.p, np.inf), 0.0, 0, False, np.zeros_like(keep))
         best = None
         if prev is not None:
             best = self._plain(prev, obs, keep, predict=True)
@@ -472,9 +540,9 @@ class _Stepper:
                 cold = self._better(cold, self._robust(cold.x, obs, keep))
             best = self._better(best, cold)
         if not best.ok:
-            return _Step(x0, False, np.zeros_like(keep), 0.0, 0, np.full(self.p, np.inf))
+            return _Step(x0, np.full(self.p, np.inf), 0.0, 0, False, np.zeros_like(keep))
         dof = int(best.keep.sum()) - self.p
-        return _Step(best.x, True, best.flagged, best.chi2, dof, best.std)
+        return _Step(best.x, best.std, best.chi2, dof, True, best.flagged)
 
     # -- pieces ---------------------------------------------------------------------------------
 

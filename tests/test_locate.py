@@ -290,6 +290,26 @@ def test_same_seed_same_result_and_progress_is_reported(tmp_path):
     assert calls[-1] == (30, 30) and all(d <= n for d, n in calls)
 
 
+def test_chains_in_parallel_give_the_same_result(monkeypatch):
+    from concurrent.futures import ThreadPoolExecutor
+
+    import probeplan.locate as locate_module
+
+    monkeypatch.setattr(locate_module, "CHUNK_STEPS", 10)  # 3 chains of 10 steps
+    problem, meters = site()
+    t, q, c = storm(30)
+    table = readings_of(t, record(meters, q, c, np.random.default_rng(6)), meters)
+    here = locate(problem, meters, table)
+    calls = []
+    with ThreadPoolExecutor(2) as pool:
+        threads = locate(problem, meters, table, executor=pool, progress=lambda *a: calls.append(a))
+    processes = locate(problem, meters, table, workers=2)
+    for other in (threads, processes):
+        for name in ("estimate", "std", "chi2", "dof", "converged", "outliers"):
+            np.testing.assert_array_equal(getattr(here, name), getattr(other, name))
+    assert sorted(calls) == [(10, 30), (20, 30), (30, 30)]
+
+
 def test_truth_must_meet_the_readings_in_time(fitted):
     problem, meters, loc, truth = fitted
     shifted = _truth(loc.time_s + 0.5, truth)
@@ -307,6 +327,7 @@ def test_truth_must_meet_the_readings_in_time(fitted):
         ({"threshold": -1.0}, r"`threshold` must be a finite number of sigmas > 0"),
         ({"alpha": 1.0}, r"`alpha` must lie strictly between 0 and 1"),
         ({"suspect_fraction": 2.0}, r"`suspect_fraction` must lie in \[0, 1\]"),
+        ({"workers": 0}, r"`workers` must be a whole number >= 1"),
     ],
 )
 def test_bad_settings(kwargs, match):
