@@ -30,8 +30,8 @@ import numpy as np
 import pytest
 import scipy.constants as sc
 from scipy import stats
+from sites import box, make_config, point_source, rectangle
 
-from probeplan.config import parse_config
 from probeplan.errors import InputError
 from probeplan.locate import Location, check_delivery, locate
 from probeplan.problem import build_problem
@@ -39,43 +39,23 @@ from probeplan.readings import Readings, Truth, read_readings
 
 K = 1.0 / (4.0 * np.pi * sc.epsilon_0)
 
-SITE = """
-title = "fictional storm-watch test site"
-seed = 4
-
-[ground]
-z_m = 0.0
-
-[probes]
-count = 11
-component = "z"
-noise_v_per_m = 20.0
-relative_noise = 0.01
-range_v_per_m = {range}
-
-[[probes.installed]]
-name = "mast"
-position_m = [1500.0, -2000.0, 30.0]
-component = "vector"
-
-[[region]]
-kind = "rectangle"
-min_m = [-15000.0, -15000.0]
-max_m = [15000.0, 15000.0]
-z_m = 0.0
-
-[[source]]
-kind = "point"
-charge_c = -20.0
-center_m = [0.0, 0.0, 7000.0]
-estimate = ["charge", "x", "y", "z"]
-charge_range_c = [-40.0, -10.0]
-center_range_m = [[-6000, 6000], [-6000, 6000], [5000, 9500]]
-
-[background]
-field_v_per_m = [0.0, 0.0, -120.0]
-estimate = true
-"""
+# A storm-watch site (fictional): eleven new ground meters and an installed 3-axis meter on a
+# mast, one storm charge and the fair-weather background as nuisance parameters.
+SITE = {
+    "seed": 4,
+    "probes": {"count": 11, "noise_v_per_m": 20.0, "relative_noise": 0.01},
+    "region": [rectangle(15000.0)],
+    "source": [
+        point_source(
+            -20.0,
+            (0.0, 0.0, 7000.0),
+            charge_range_c=[-40.0, -10.0],
+            center_range_m=box(6000.0, 5000.0, 9500.0),
+        )
+    ],
+    "background": {"field_v_per_m": [0.0, 0.0, -120.0], "estimate": True},
+}
+MAST_TABLE = {"name": "mast", "position_m": [1500.0, -2000.0, 30.0], "component": "vector"}
 
 # Eleven ground meters: an outer ring of 10 km, an inner ring of 4 km and one at the centre.
 _A = np.linspace(0.0, 2.0 * np.pi, 6, endpoint=False)
@@ -91,7 +71,8 @@ BACKGROUND = np.array([0.0, 0.0, -120.0])
 
 
 def site(range_v_per_m=1e5):
-    problem = build_problem(parse_config(SITE.format(range=range_v_per_m), "<locate test>"))
+    probes = {"range_v_per_m": range_v_per_m, "installed": [MAST_TABLE]}
+    problem = build_problem(make_config("<locate test>", SITE, probes=probes))
     return problem, problem.meters(GROUND)
 
 
