@@ -238,7 +238,8 @@ def locate(
     executor : concurrent.futures.Executor or None
         Runs the chunks instead (e.g. a dask client); ``workers`` is then ignored.
     progress : callable(done, total) or None
-        Called with the steps done after each chunk.
+        Called with the steps done: every half per cent of them in this process, after each
+        chain on workers.
 
     Returns
     -------
@@ -385,7 +386,9 @@ def _check_settings(starts, pool, threshold, alpha, suspect_fraction, workers) -
         raise ValueError(f"`suspect_fraction` must lie in [0, 1]; got {suspect_fraction}.")
 
 
-def fit_chunk(problem, meters: Meters, values, usable, settings) -> tuple[np.ndarray, ...]:
+def fit_chunk(
+    problem, meters: Meters, values, usable, settings, on_step=None
+) -> tuple[np.ndarray, ...]:
     """Fit consecutive steps, the first from the prior pool and each next from the previous
     estimate (the unit of work of :func:`locate`, run in a worker process when parallel).
 
@@ -397,6 +400,8 @@ def fit_chunk(problem, meters: Meters, values, usable, settings) -> tuple[np.nda
     usable : (n, n_probes, n_axes) bool
     settings : tuple
         (warm, starts, pool, threshold, alpha, seed).
+    on_step : callable(k) or None
+        Called after step k (0-based) of the chain.
 
     Returns
     -------
@@ -419,6 +424,8 @@ def fit_chunk(problem, meters: Meters, values, usable, settings) -> tuple[np.nda
         est[t], std[t], chi2[t], dof[t], ok[t], flagged[t] = s
         if s.ok and warm:
             prev = s.x
+        if on_step is not None:
+            on_step(t)
     return est, std, chi2, dof, ok, flagged
 
 
@@ -428,12 +435,16 @@ def _run_chunks(tasks, workers: int, executor, progress, sizes) -> list:
     total = sum(sizes)
     done = 0
     if executor is None and (workers <= 1 or len(tasks) <= 1):
+        every = max(1, total // 200)
         out = []
         for task, size in zip(tasks, sizes, strict=True):
-            out.append(fit_chunk(*task))
+
+            def tick(k: int, before: int = done, size: int = size) -> None:
+                if progress is not None and ((before + k + 1) % every == 0 or k + 1 == size):
+                    progress(before + k + 1, total)
+
+            out.append(fit_chunk(*task, on_step=tick))
             done += size
-            if progress is not None:
-                progress(done, total)
         return out
     own = executor is None
     if own:
