@@ -125,6 +125,7 @@ class ReadingFit:
         loss: str = "linear",
         settle: float = 0.0,
         tol: float = 1e-8,
+        gtol: float = 1e-8,
         method: str = "trf",
     ) -> tuple[np.ndarray, bool]:
         """Fit the kept readings; returns (parameters (n_params,), converged).
@@ -147,8 +148,8 @@ class ReadingFit:
             Stop reweighting once no reading's σ changes by more than this fraction between
             passes (0: always all :data:`IRLS_PASSES` passes). Weights off by a fraction ε
             move the estimate by about ε of its own 1-sigma.
-        tol : float
-            ``least_squares``' ``ftol`` and ``xtol`` (its default 1e-8).
+        tol, gtol : float
+            ``least_squares``' ``ftol`` and ``xtol``, and its ``gtol`` (its defaults 1e-8).
         method : {"trf", "auto"}
             "auto": Levenberg–Marquardt without bounds (MINPACK: its loop is compiled, about
             half the overhead of the trust-region loop, a quarter of its bounded form) when
@@ -168,9 +169,9 @@ class ReadingFit:
                 return -self.evaluate(x)[1][keep] / sigma[:, None]
 
             free = method == "auto" and loss == "linear" and self._far(x, x_scale, lo, hi)
-            res = _least_squares(fun, jac, x, (lo, hi), x_scale, loss, tol, free)
+            res = _least_squares(fun, jac, x, (lo, hi), x_scale, loss, (tol, gtol), free)
             if res is not None and free and not np.all((res.x >= lo) & (res.x <= hi)):
-                res = _least_squares(fun, jac, x, (lo, hi), x_scale, loss, tol, False)
+                res = _least_squares(fun, jac, x, (lo, hi), x_scale, loss, (tol, gtol), False)
             if res is None:
                 return np.asarray(x0, dtype=float), False
             x = res.x
@@ -190,12 +191,15 @@ class ReadingFit:
         return bool(np.all(room > FAR_FROM_BOUNDS * x_scale))
 
 
-def _least_squares(fun, jac, x, bounds, x_scale, loss, tol, free: bool):
+def _least_squares(fun, jac, x, bounds, x_scale, loss, tols, free: bool):
     """One ``least_squares`` run; None when it fails or ends on a non-finite point."""
     kwargs = {"method": "lm"} if free else {"method": "trf", "bounds": bounds, "loss": loss}
     with np.errstate(all="ignore"):
         try:
-            res = least_squares(fun, x, jac=jac, x_scale=x_scale, ftol=tol, xtol=tol, **kwargs)
+            tol, gtol = tols
+            res = least_squares(
+                fun, x, jac=jac, x_scale=x_scale, ftol=tol, xtol=tol, gtol=gtol, **kwargs
+            )
         except (ValueError, np.linalg.LinAlgError):
             return None
     ok = bool(res.success) and bool(np.all(np.isfinite(res.x))) and np.isfinite(res.cost)

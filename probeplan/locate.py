@@ -82,6 +82,10 @@ _SETTLE = 0.02
 #: thousandth of a sigma, far inside the noise.
 _TOL = 1e-6
 
+#: ``least_squares``' gtol: the gradient of χ² scaled by 1-sigma steps; a fit whose remaining
+#: step is about a thousandth of a sigma stops there (often at the Gauss–Newton prediction).
+_GTOL = 1e-3
+
 #: Time steps whose delivery bounds are computed together (memory of one batch ~ a few MB).
 _BATCH = 2048
 
@@ -582,6 +586,7 @@ class _Stepper:
             loss=loss,
             settle=_SETTLE,
             tol=_TOL,
+            gtol=_GTOL,
             method="auto",
         )
         r, rows = self.fit.whitened(x, obs, keep)
