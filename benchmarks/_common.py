@@ -42,6 +42,13 @@ TARGETS: dict[str, tuple] = {
     "plan_seconds": ("<=", 60.0, "≤ 60"),
     "scaling_exponent_candidates": ("<=", 1.2, "report; ≤ 1.2"),
     "scaling_exponent_candidates_per_call": ("report", None, "reported"),
+    "locate_seconds_10k": ("<=", 30.0, "≤ 30"),
+    "locate_steps_per_s": ("report", None, "reported"),
+    "locate_cpu_seconds_10k": ("report", None, "reported"),
+    "locate_speedup_vs_plain": ("report", None, "reported"),
+    "locate_plain_agreement": ("report", None, "reported"),
+    "locate_coverage_1sigma": ("band", (0.66, 0.70), "≈ 0.683"),
+    "locate_chi2_per_dof": ("band", (0.95, 1.05), "≈ 1"),
 }
 
 

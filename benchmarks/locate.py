@@ -35,20 +35,17 @@ locate_chi2_per_dof
 from __future__ import annotations
 
 import resource
-import sys
 import time
-from pathlib import Path
 
 import numpy as np
+from _common import site_problem, standalone
 
-from probeplan.config import load_config
 from probeplan.fit import ReadingFit, fit_bounds, inside
 from probeplan.locate import locate
 from probeplan.probes import readings
-from probeplan.problem import build_problem
 from probeplan.readings import Readings
 
-SITE = Path(__file__).resolve().parent / "sites" / "locate12.toml"
+SITE = "locate12.toml"
 N_STEPS = 10_000
 WORKERS = 2
 
@@ -133,10 +130,8 @@ def run(quick: bool = False) -> dict:
     dict
         Flat figures, plus ``_notes`` (figure → short text) for the table.
     """
-    problem = build_problem(load_config(SITE))
+    problem = site_problem(SITE, expect=(5, 64, 12))
     meters = problem.meters(_network(problem))
-    if (problem.n_params, meters.gain.size) != (5, 12):
-        raise RuntimeError(f"{SITE.name} must give 5 parameters and 12 meters.")
     t, truth = _storm(problem, N_STEPS)
     values = _record(problem, meters, truth, np.random.default_rng(5))
     names = tuple(f"m{k}" for k in range(12))
@@ -190,16 +185,4 @@ def run(quick: bool = False) -> dict:
 
 
 if __name__ == "__main__":
-    sys.path.insert(0, str(Path(__file__).resolve().parent))
-    from run import TARGETS, standalone
-
-    TARGETS.update(
-        {
-            "locate_seconds_10k": ("<=", 30.0, "≤ 30"),
-            "locate_speedup_vs_plain": ("report", None, "reported"),
-            "locate_plain_agreement": ("report", None, "reported"),
-            "locate_coverage_1sigma": ("band", (0.66, 0.70), "≈ 0.683"),
-            "locate_chi2_per_dof": ("band", (0.95, 1.05), "≈ 1"),
-        }
-    )
     standalone("locate", run)
