@@ -27,7 +27,8 @@ import datetime as _dt
 import difflib
 import math
 import os
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
 
 import numpy as np
@@ -255,23 +256,28 @@ def _read_table(
     max_bytes: int,
 ) -> _Table:
     """Read a CSV of a time column and data columns named in ``allowed``, row by row."""
-    try:
+    with csv_errors(path, what):
         size = os.path.getsize(path)
-    except FileNotFoundError:
-        raise InputError(f"{path}: no such {what} file.") from None
-    except OSError as exc:
-        raise InputError(f"{path}: cannot read the {what} file ({exc.strerror}).") from None
-    if size > max_bytes:
-        raise InputError(
-            f"{path}: the {what} file has {size:,} bytes, more than the {max_bytes:,} this "
-            "command reads at once; split it into shorter periods."
-        )
-    try:
+        if size > max_bytes:
+            raise InputError(
+                f"{path}: the {what} file has {size:,} bytes, more than the {max_bytes:,} this "
+                "command reads at once; split it into shorter periods."
+            )
         with open(path, encoding="utf-8-sig", newline="") as fh:
             parser = _Parser(path, what, allowed, unknown, max_rows)
             for row in (reader := csv.reader(fh)):
                 parser.add(reader.line_num, row)
             return parser.table()
+
+
+@contextmanager
+def csv_errors(path: str, what: str) -> Iterator[None]:
+    """Turn what opening and reading a CSV file can raise into one :class:`InputError` that
+    names the file (``what``: "layout", "readings", … as the message calls the file)."""
+    try:
+        yield
+    except FileNotFoundError:
+        raise InputError(f"{path}: no such {what} file.") from None
     except IsADirectoryError:
         raise InputError(f"{path}: is a folder, not a {what} CSV file.") from None
     except UnicodeDecodeError as exc:
@@ -279,7 +285,8 @@ def _read_table(
     except csv.Error as exc:
         raise InputError(f"{path}: not a readable CSV file: {exc}.") from None
     except OSError as exc:
-        raise InputError(f"{path}: cannot read the {what} file ({exc.strerror}).") from None
+        reason = exc.strerror or str(exc) or type(exc).__name__
+        raise InputError(f"{path}: cannot read the {what} file: {reason}.") from None
 
 
 class _Parser:

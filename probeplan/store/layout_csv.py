@@ -15,9 +15,10 @@ import numpy as np
 from ..errors import InputError
 from ..geo import rounding_for, site_extent_m
 from ..probes import COMPONENTS
+from ..readings import csv_errors
 from ..result import Result
 from ..resulttypes import probe_names
-from .files import check_writable, os_reason, write_atomically
+from .files import check_writable, write_atomically
 
 #: Columns a layout CSV may hold; the first three are required. ``lon_deg`` and ``lat_deg``
 #: (written when the result has a frame) are for people and are not read back: x, y, z are.
@@ -87,21 +88,10 @@ def read_layout_csv(path: str | os.PathLike) -> LayoutFile:
         a cell that is not a finite number, an empty file, no probe rows.
     """
     name = os.fspath(path)
-    try:
-        with open(name, encoding="utf-8-sig", newline="") as fh:
-            reader = csv.reader(fh)
-            # line_num after a read is the file line the row ended on: what a user sees.
-            rows = [(reader.line_num, row) for row in reader]
-    except FileNotFoundError:
-        raise InputError(f"{name}: no such layout file.") from None
-    except IsADirectoryError:
-        raise InputError(f"{name}: is a folder, not a layout CSV file.") from None
-    except UnicodeDecodeError as exc:
-        raise InputError(f"{name}: not UTF-8 text (byte {exc.start}).") from None
-    except csv.Error as exc:
-        raise InputError(f"{name}: not a readable CSV file: {exc}.") from None
-    except OSError as exc:
-        raise InputError(f"{name}: cannot read the layout file: {os_reason(exc)}.") from None
+    with csv_errors(name, "layout"), open(name, encoding="utf-8-sig", newline="") as fh:
+        reader = csv.reader(fh)
+        # line_num after a read is the file line the row ended on: what a user sees.
+        rows = [(reader.line_num, row) for row in reader]
     return _parse_layout(name, rows)
 
 
