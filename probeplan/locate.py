@@ -261,6 +261,8 @@ def locate(
             f"the readings hold {vals.shape[1:]} (meters, axes) per step; the meters read "
             f"{meters.axes.shape[:2]}."
         )
+    if vals.shape[0] == 0:
+        raise ValueError("the readings hold no time step; give at least one.")
     seed = problem.config.seed if seed is None else seed
     settings = (bool(warm), int(starts), int(pool), float(threshold), float(alpha), int(seed))
     sat = readings_table.present & meters.used & (np.abs(vals) >= meters.range_v_per_m)
@@ -522,8 +524,9 @@ class _Stepper:
         self.threshold = float(threshold)
         self.starts = int(starts)
         n_read = int(meters.used.sum())
+        # With no redundancy (dof 0) the fit should pass through every reading; a nonlinear
+        # model may not quite, so it is judged as with one degree of freedom.
         self.limit = stats.chi2.isf(alpha, np.maximum(np.arange(n_read + 1), 1))
-        self.limit[0] = 1e-12  # no redundancy: a fit through every reading has χ² = 0
         # The prior pool: its model readings and noise once, for every cold start's screening.
         cfg = problem.config
         cfg = replace(cfg, design=replace(cfg.design, scenarios=int(pool)))

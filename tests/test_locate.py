@@ -239,14 +239,18 @@ def test_missing_saturated_and_too_few_readings():
     present = r.present.copy()
     present[1, 3, 0] = False  # one reading missing
     present[2, 1:, 0] = False  # only the mast: 3 readings for 7 unknowns
+    present[3, 1:, 0] = False  # the mast and four ground meters: 7 readings, 7 unknowns
+    present[3, [6, 7, 8, 9], 0] = True  # new-5 (outer ring), new-6 … new-8 (inner ring)
     loc = locate(problem, meters, Readings("<t>", t, False, values, present, NAMES, ()))
     centre = NAMES.index("new-10")
-    # Saturated wherever the centre meter reported (step 2 has the mast alone).
-    np.testing.assert_array_equal(loc.saturated[:, centre], [1, 1, 0, 1, 1, 1])
-    assert loc.saturated.sum() == loc.n_times - 1
+    # Saturated wherever the centre meter reported (not in steps 2 and 3).
+    np.testing.assert_array_equal(loc.saturated[:, centre], [1, 1, 0, 0, 1, 1])
+    assert loc.saturated.sum() == loc.n_times - 2
     assert loc.dof[0] == 14 - 1 - 7 and loc.dof[1] == 14 - 2 - 7
     assert not loc.converged[2] and loc.dof[2] == 0 and np.all(np.isinf(loc.std[2]))
     assert loc.converged[[0, 1, 3, 4, 5]].all()
+    # No redundancy: the fit passes (nearly) through every reading and is still resolved.
+    assert loc.dof[3] == 0 and loc.chi2[3] < 1.0 and np.all(np.isfinite(loc.std[3]))
     for name in ("estimate", "std", "chi2"):
         assert not np.isnan(getattr(loc, name)).any()
 
