@@ -7,12 +7,15 @@ step of a :class:`~probeplan.readings.Readings` table :func:`locate`
    saturated reading carries no information, as in the planner) and unused axes;
 2. fits the estimated parameters by weighted nonlinear least squares on the stored noise model
    (:class:`~probeplan.fit.ReadingFit`: additive and proportional noise of each meter's grade,
-   σ of the model reading, reweighted), starting from the previous step's estimate; when that
-   start gives no acceptable fit (below), from the best few of a pool of points drawn from the
-   scenario prior (the config's ranges, seeded), screened by their misfit in one batched pass;
+   σ of the model reading, reweighted), starting from the previous step's estimate moved by
+   one Gauss–Newton step on the new readings; when that start gives no acceptable fit (below),
+   from the best few of a pool of points drawn from the scenario prior (the config's ranges,
+   seeded), screened by their misfit in one batched pass. Tolerances stop a fit within about
+   a hundredth of a sigma of the fully converged one;
 3. judges the fit by χ² = Σ ((m_obs − h(θ̂))/σ)² with dof = readings − parameters, and by the
-   largest standardised residual: a fit is acceptable when χ² is below the 1 − ``alpha`` quantile
-   of χ²_dof and no residual exceeds ``threshold`` sigmas;
+   largest studentised residual r/sqrt(1 − h) (h the reading's leverage, so that a bad reading
+   cannot hide by pulling the fit towards itself): a fit is acceptable when χ² is below the
+   1 − ``alpha`` quantile of χ²_dof and no studentised residual exceeds ``threshold``;
 4. when it is not, runs the meter-health pass: a robust refit (soft-L1 loss on the whitened
    residuals, which lets a few gross errors pull far less than squares do) from which the
    readings beyond ``threshold`` sigmas are flagged, then a plain refit without them. At most
@@ -22,6 +25,9 @@ step of a :class:`~probeplan.readings.Readings` table :func:`locate`
    the readings that entered the fit (Kay, Fundamentals of Statistical Signal Processing,
    vol. 1, §7.5: at high signal-to-noise the least-squares estimate is efficient).
 
+Steps are fitted in chains of :data:`CHUNK_STEPS`, each starting from the prior pool, so that
+chains can run side by side on worker processes with the same result as in one.
+
 A meter flagged in more than ``suspect_fraction`` of the steps in which it gave a reading is
 *suspect*: stuck, drifting, miscalibrated or mis-mounted.
 
@@ -29,8 +35,10 @@ With known truths (:class:`~probeplan.readings.Truth`, a calibration or a simula
 delivery check compares each estimate's error with the plan's Cramér–Rao bound at the true
 parameters (all the planned meters, saturated readings out): if the network delivers, the
 normalised errors e/σ_CRB have unit variance, so N·ratio² with ratio = sqrt(mean (e/σ_CRB)²)
-is χ²_N (independent noise from step to step), and the ratio must fall within that
-distribution's two-sided 1 − ``alpha`` band.
+is χ²_N (independent noise from step to step), and the ratio must not exceed that
+distribution's upper two-sided band (level ``alpha`` shared among the compared parameters).
+At low signal-to-noise the fit is nonlinear over the noise and misses its bound: the verdict
+is then honestly "does not deliver".
 
 The estimate is not a warning system and does not decide when to stop work outdoors.
 
@@ -54,7 +62,7 @@ from .fit import ReadingFit, fit_bounds, inside
 from .probes import Meters, readings, whitened_rows
 from .problem import draw_scenarios
 
-#: Standardised residual (sigmas) beyond which a reading is flagged.
+#: Studentised / standardised residual (sigmas) beyond which a reading is flagged.
 THRESHOLD = 4.0
 
 #: Test level of the χ² acceptance of a fit (restart or robust pass below it).
