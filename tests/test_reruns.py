@@ -328,7 +328,7 @@ def test_plot_folder_that_is_a_file_is_bad_input(planned, site, capsys):
     ("module", "function", "argv"),
     [
         ("probeplan.budget", "pareto_front", ["budget", "site.toml", "--quiet"]),
-        ("probeplan.simulate", "_bounds", ["simulate", "old.h5", "--trials", "3"]),
+        ("probeplan.simulate", "fit_bounds", ["simulate", "old.h5", "--trials", "3"]),
         ("probeplan.plots", "coverage_grid", ["plot", "old.h5"]),
     ],
 )
