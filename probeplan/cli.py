@@ -11,7 +11,10 @@ Commands (the contract's "Command line"):
 * ``probeplan simulate FILE.h5 [--trials N] [--seed S]`` — fits of simulated readings beside
   the bounds, stored back into FILE.h5
 * ``probeplan plot FILE.h5 [--format png|svg] [--folder DIR]`` — site map, coverage map,
-  budget curve
+  budget curve (and the estimates of a file with /locate)
+* ``probeplan locate FILE.h5 --readings READINGS.csv [--truth TRUTH.csv] [--out FILE.h5]
+  [--force]`` — fits of recorded readings, meter health and the delivery check, stored as
+  /locate
 
 ``--from OLD.h5`` (plan, budget) reruns after the geometry changed: the old probes are kept
 fixed as installed ones (``--from-as installed``) or start the search (``--from-as start``,
@@ -250,6 +253,39 @@ def _add_plot(sub) -> None:
     )
 
 
+def _add_locate(sub) -> None:
+    loc = sub.add_parser(
+        "locate",
+        help="fit the charge from recorded readings of a stored layout",
+        description=(
+            "Fit the estimated parameters at every time step of a readings CSV with the model "
+            "of a stored result (its meters, axes, grades, sources and background): weighted "
+            "least squares, 1-sigma from the Fisher information, chi-square, readings beyond "
+            "range left out; flag readings far beyond their noise and name the meters flagged "
+            "in most steps (stuck, drifting, miscalibrated). With --truth, say whether the "
+            "network delivers the plan's Cramér–Rao bounds. Stored as /locate in FILE.h5 (or "
+            "--out). The estimate is not a warning system and does not decide when to stop "
+            "work outdoors."
+        ),
+    )
+    loc.add_argument("file", metavar="FILE.h5", help="result file written by plan, score or budget")
+    loc.add_argument(
+        "--readings",
+        required=True,
+        metavar="READINGS.csv",
+        help="header row: time_s (seconds) or time (ISO 8601 UTC), then one column per meter "
+        "reading named as in the result: NAME for a one-axis meter, NAME.x, NAME.y, NAME.z for "
+        "a 3-axis one (V/m); an empty cell is a missing reading",
+    )
+    loc.add_argument(
+        "--truth",
+        metavar="TRUTH.csv",
+        help="known parameters (calibration or simulation): the same time column, then columns "
+        "named as the result's parameters (s0.charge_c, s0.x_m, …, SI units)",
+    )
+    _add_out(loc, "write the result with /locate here instead of back into FILE.h5")
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of ``probeplan`` (exposed for documentation and tests)."""
     from ._version import package_version
@@ -265,7 +301,8 @@ def build_parser() -> argparse.ArgumentParser:
     )
     parser.add_argument("--version", action="version", version=f"probeplan {package_version()}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
-    for add in (_add_plan, _add_score, _add_budget, _add_show, _add_simulate, _add_plot):
+    commands = (_add_plan, _add_score, _add_budget, _add_show, _add_simulate, _add_plot)
+    for add in (*commands, _add_locate):
         add(sub)
     return parser
 
@@ -275,7 +312,8 @@ def parse_args(argv: list[str] | None) -> argparse.Namespace:
     args = build_parser().parse_args(argv)
     if args.command is None:
         raise InputError(
-            "choose a command: plan, score, budget, show, simulate or plot (see `probeplan --help`)"
+            "choose a command: plan, score, budget, show, simulate, plot or locate (see "
+            "`probeplan --help`)"
         )
     if getattr(args, "from_as", None) and not getattr(args, "from_file", None):
         raise InputError("--from-as goes with --from OLD.h5 (see `probeplan plan --help`)")

@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import argparse
 import contextlib
+import os
 import signal
 from collections.abc import Callable, Iterator
 from dataclasses import replace
@@ -377,6 +378,45 @@ def cmd_plot(args: argparse.Namespace, written: list[Path]) -> int:
     return EXIT_OK
 
 
+def cmd_locate(args: argparse.Namespace, written: list[Path]) -> int:
+    """``probeplan locate``: fit the charge from recorded readings of a stored layout, check
+    the meters and, with a truth, whether the network delivers; stored in FILE.h5 (or --out)."""
+    from .locate import locate
+    from .readings import read_readings, read_truth
+    from .store import check_writable, probe_names, read_result, write_result
+
+    result = read_result(args.file)
+    others = [args.readings, *([args.truth] if args.truth else [])]
+    if args.out is None:  # stored back into the file it read, as `simulate` does
+        out, force, option, reading = args.file, True, None, others
+    else:
+        out, force, option, reading = args.out, args.force, "--out", [args.file, *others]
+    check_writable(out, force=force, option=option, reading=reading)
+    _, problem, (positions, gain, axes, grades) = reruns.stored_problem(result, args.file)
+    meters = problem.meters(positions, gain, axes, grades)
+    if meters.gain.size == 0:
+        raise InputError(
+            f"{args.file}: the result holds no meters; `locate` needs the layout that recorded "
+            "the readings (a result of `plan`, `score` or `budget`)."
+        )
+    table = read_readings(args.readings, probe_names(result), meters.axes)
+    truth = read_truth(args.truth, problem.names) if args.truth else None
+    with report.progress_bar() as progress:
+        location = locate(
+            problem,
+            meters,
+            table,
+            truth=truth,
+            workers=os.cpu_count() or 1,
+            progress=lambda done, total: progress("fitting steps", done, total),
+        )
+    result = replace(result, location=location)
+    report.print_result(result)
+    path = record_write(lambda: write_result(result, out, force=force, option=option), written)
+    report.print_written(path)
+    return EXIT_OK
+
+
 #: Command name -> its body.
 COMMANDS: dict[str, Callable[[argparse.Namespace, list[Path]], int]] = {
     "plan": cmd_plan,
@@ -385,4 +425,5 @@ COMMANDS: dict[str, Callable[[argparse.Namespace, list[Path]], int]] = {
     "show": cmd_show,
     "simulate": cmd_simulate,
     "plot": cmd_plot,
+    "locate": cmd_locate,
 }

@@ -86,6 +86,9 @@ DELIVERY_ALPHA = 0.01
 #: The reweighting stops when no reading's noise changes by more than this fraction.
 _SETTLE = 0.02
 
+#: Readings of largest residual tried in each round of the health pass.
+_SUSPECTS = 3
+
 #: ``least_squares``' ftol and xtol: a relative change of χ² of 1e-6 is a move of about a
 #: thousandth of a sigma, far inside the noise.
 _TOL = 1e-6
@@ -518,6 +521,7 @@ class _Try:
     worst: float  # largest |studentised residual| among them
     flagged: np.ndarray
     std: np.ndarray  # 1-sigma from the Fisher information at x, +inf where singular
+    student: np.ndarray  # (n_probes, n_axes) studentised residuals of the kept readings, else 0
 
 
 class _Stepper:
@@ -613,7 +617,10 @@ class _Stepper:
         student = np.where(room > 1e-9, rk / np.sqrt(np.maximum(room, 1e-9)), 0.0)
         std = np.full(self.p, np.inf) if singular else np.sqrt(np.diagonal(cov))
         flagged = np.zeros_like(keep) if flagged is None else flagged
-        return _Try(x, ok, keep, float(rk @ rk), float(np.abs(student).max()), flagged, std)
+        full = np.zeros(keep.shape)
+        full[keep] = student
+        worst = float(np.abs(student).max())
+        return _Try(x, ok, keep, float(rk @ rk), worst, flagged, std, full)
 
     def _covariance(self, x, keep, rows) -> tuple[np.ndarray, bool]:
         """:func:`_covariance`, remembered for the last (x, keep): a step's final fit is the
@@ -624,17 +631,40 @@ class _Stepper:
         return self._last_cov[1]
 
     def _robust(self, x0, obs, keep) -> _Try | None:
-        """The health pass: robust refit, flag readings beyond the threshold, refit without."""
+        """The health pass: a robust refit, then a reading beyond the threshold left out and the
+        rest refitted, one reading at a time while one is still beyond it.
+
+        Each round tries the :data:`_SUSPECTS` readings of largest residual (at the robust fit
+        first, then studentised at each refit) and keeps the refit that fits best: with little
+        redundancy a bad reading also pushes up the residuals of good ones, so the largest is
+        not always the culprit. At most half the redundancy is flagged (at least one reading):
+        a fit that needs more is in the wrong basin, not surrounded by broken meters. None when
+        nothing is flagged.
+        """
         rob = self._plain(x0, obs, keep, loss="soft_l1")
         if not rob.ok:
             return None
         r, _ = self.fit.whitened(rob.x, obs, keep)
-        flagged = keep & (np.abs(r) > self.threshold)
-        n_flag = int(flagged.sum())
-        redundancy = int(keep.sum()) - self.p
-        if n_flag == 0 or n_flag > max(1, redundancy // 2):
-            return None  # nothing to blame, or too much: a wrong basin, not broken meters
-        return self._plain(rob.x, obs, keep & ~flagged, flagged)
+        score = np.where(keep, np.abs(r), 0.0)
+        budget = max(1, (int(keep.sum()) - self.p) // 2)
+        flagged = np.zeros_like(keep)
+        best, x = None, rob.x
+        for _ in range(budget):
+            order = np.argsort(-score, axis=None, kind="stable")[:_SUSPECTS]
+            order = [k for k in order if score.flat[k] > self.threshold]
+            if not order:
+                break
+            round_best = None
+            for k in order:
+                trial = flagged.copy()
+                trial.flat[k] = True
+                round_best = self._better(round_best, self._plain(x, obs, keep & ~trial, trial))
+            best = round_best
+            if not best.ok or self._acceptable(best):
+                break
+            flagged = best.flagged
+            x, score = best.x, np.where(keep & ~flagged, np.abs(best.student), 0.0)
+        return best
 
     def _acceptable(self, t: _Try) -> bool:
         dof = int(t.keep.sum()) - self.p

@@ -420,7 +420,8 @@ def plot_all(result, config, problem, folder, fmt: str = "png") -> list[Path]:
         Built from that config (its installed probes match the result's).
     folder : str or path-like
         Created if missing. Files: ``site_map.<fmt>``, ``coverage_map.<fmt>`` (when x and y of
-        source 0 are estimated), ``budget_curve.<fmt>`` (when the result holds a budget).
+        source 0 are estimated), ``budget_curve.<fmt>`` (when the result holds a budget),
+        ``locate.<fmt>`` (when it holds fits of recorded readings, ``/locate``).
     fmt : {"png", "svg"}
 
     Returns
@@ -456,7 +457,80 @@ def plot_all(result, config, problem, folder, fmt: str = "png") -> list[Path]:
                 result.budget.target,
             )
         )
+    if getattr(result, "location", None) is not None:
+        out.append(locate_plot(result.location, folder / f"locate.{fmt}"))
     return out
+
+
+def locate_plot(location, path) -> Path:
+    """The estimated charge and position against time, with 1-sigma bands and flagged readings.
+
+    Parameters
+    ----------
+    location : probeplan.locate.Location
+    path : str or path-like
+        ``.png`` or ``.svg``.
+
+    Returns
+    -------
+    Path
+        The file written.
+
+    Panels, top to bottom: every estimated charge (C); every estimated position coordinate
+    (km); the background components when estimated (V/m); the meters' flagged readings (one
+    row per meter that was ever flagged, a mark per flagged step). Bands are ±1 sigma from the
+    Fisher information; steps whose fit failed are left out of the lines.
+    """
+    path, fmt = _check_path(path)
+    loc = location
+    groups = [
+        ("charge (C)", [k for k, n in enumerate(loc.names) if n.endswith("_c")], 1.0),
+        ("position (km)", [k for k, n in enumerate(loc.names) if n.endswith("_m")], 1e-3),
+        ("background (V/m)", [k for k, n in enumerate(loc.names) if n.endswith("_v_per_m")], 1.0),
+    ]
+    groups = [g for g in groups if g[1]]
+    flagged = np.flatnonzero(loc.flag_counts > 0)
+    n_rows = len(groups) + 1
+    fig = Figure(figsize=(FIGSIZE_IN[0], 2.0 * n_rows + 0.6), dpi=DPI, layout="constrained")
+    axes = fig.subplots(n_rows, 1, sharex=True, squeeze=False)[:, 0]
+    t, t_label = _locate_times(loc)
+    ok = loc.converged & np.all(np.isfinite(loc.std), axis=1)
+    for ax, (label, cols, scale) in zip(axes, groups, strict=False):
+        for k in cols:
+            est = np.where(loc.converged, loc.estimate[:, k] * scale, np.nan)
+            sd = np.where(ok, loc.std[:, k] * scale, np.nan)
+            (line,) = ax.plot(t, est, lw=1.0, label=loc.names[k])
+            ax.fill_between(t, est - sd, est + sd, color=line.get_color(), alpha=0.25, lw=0)
+        ax.set_ylabel(label, fontsize=8)
+        ax.legend(fontsize=7, frameon=False, loc="upper left", ncols=min(4, len(cols)))
+        ax.grid(True, lw=0.3, color="0.85")
+    ax = axes[-1]
+    if flagged.size:
+        for row, i in enumerate(flagged):
+            steps = np.flatnonzero(loc.outliers[:, i])
+            ax.plot(t[steps], np.full(steps.size, row), "|", ms=8, color="tab:red")
+        ax.set_yticks(range(flagged.size), [loc.meter_names[i] for i in flagged], fontsize=7)
+        ax.set_ylim(-0.7, flagged.size - 0.3)
+    else:
+        ax.set_yticks([])
+        ax.text(0.5, 0.5, "no reading flagged", transform=ax.transAxes, ha="center", va="center")
+    ax.set_ylabel("flagged\nreadings", fontsize=8)
+    ax.set_xlabel(t_label, fontsize=8)
+    fig.suptitle("Estimates from recorded readings (bands: ±1 sigma)", fontsize=10)
+    fig.supxlabel(
+        "Fields: physics sign convention. The estimate is not a warning system and does not "
+        "decide when to stop work outdoors.",
+        fontsize=7,
+        color="0.3",
+    )
+    return _save(fig, path, fmt)
+
+
+def _locate_times(loc) -> tuple[np.ndarray, str]:
+    """Time axis values and label: UTC date-times, or seconds from the first step."""
+    if loc.time_is_utc:
+        return np.round(loc.time_s * 1e6).astype("datetime64[us]"), "time (UTC)"
+    return loc.time_s, "time (s)"
 
 
 # --------------------------------------------------------------------------------------------

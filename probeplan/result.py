@@ -85,6 +85,8 @@ class Result:
         What changed against an earlier result (``--from``).
     simulation : probeplan.simulate.Simulation or None
         Achieved errors of simulated fits beside the bounds (``simulate``).
+    location : probeplan.locate.Location or None
+        Fits of recorded readings, meter health and the delivery check (``locate``).
     probe_names : tuple of n_probes str or None
         Names of all probes, installed first (None: the installed names of the config, then
         ``new-k``).
@@ -114,6 +116,7 @@ class Result:
     probe_names: tuple[str, ...] | None = None
     notes: tuple[str, ...] = ()
     frame: Frame | None = None
+    location: object | None = None
 
 
 def make_result(

@@ -278,7 +278,7 @@ def test_missing_or_wrong_files(site, capsys, argv, message):
 @pytest.mark.parametrize(
     ("argv", "message"),
     [
-        ([], r"choose a command: plan, score, budget, show, simulate or plot"),
+        ([], r"choose a command: plan, score, budget, show, simulate, plot or locate"),
         (["frobnicate"], r"invalid choice: 'frobnicate'"),
         (["score", "x.toml"], r"one of the arguments --layout --from is required"),
         (["plan", "--bogus"], r"unrecognized arguments: --bogus"),

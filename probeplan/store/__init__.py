@@ -52,6 +52,10 @@ File layout (beyond the contract's paths)::
     /notes                 (n_notes,)     str      what the user must know (rule violations …)
     /changes, /simulation  one field a dataset (arrays, floats) or attr (str, int, bool);
                            attr none_fields lists the fields that were None
+    /locate                the same for the fits of recorded readings (``locate``):
+                           time_s (n_times,) s, estimate (n_times, n_params) attr names,
+                           std, chi2, dof, converged, outliers (n_times, n_meters) bool, …;
+    /locate/delivery       the delivery check against a truth, when one was given
 """
 
 from __future__ import annotations

@@ -196,6 +196,14 @@ def _read(r: _Reader) -> Result:
         from ..simulate import Simulation
 
         sections["simulation"] = _read_dataclass(r, "simulation", Simulation)
+    if r.has("locate"):
+        from ..locate import Delivery, Location
+
+        location = _read_dataclass(r, "locate", Location)
+        if r.has("locate/delivery"):
+            delivery = _read_dataclass(r, "locate/delivery", Delivery)
+            location = dataclasses.replace(location, delivery=delivery)
+        sections["location"] = location
     names = r.strings("layout/names") if r.has("layout/names") else None
     notes = r.strings("notes") if r.has("notes") else ()
     return Result(

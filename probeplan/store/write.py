@@ -165,6 +165,24 @@ def _write(f: h5py.File, result: Result) -> None:
         units = {n: per_param for n in ("truth", "fitted", "rms_error", "crb_std")}
         units |= {"charge_rms_rel": "1", "charge_crb_rel": "1", "saturated": "1"}
         _write_dataclass(f.create_group("simulation"), result.simulation, units)
+    if result.location is not None:
+        _write_location(f.create_group("locate"), result.location)
+
+
+def _write_location(g: h5py.Group, loc) -> None:
+    """``/locate``: the :class:`~probeplan.locate.Location` and its delivery check."""
+    per_param = [param_unit(n) for n in loc.names]
+    units = {"time_s": "s", "estimate": per_param, "std": per_param, "chi2": "1"}
+    _write_dataclass(g, dataclasses.replace(loc, delivery=None), units)
+    g["estimate"].attrs["names"] = np.array(loc.names, dtype=_STR)
+    for name in ("dof", "converged", "outliers", "saturated", "reported", "flag_counts"):
+        g[name].attrs["units"] = "1"  # counts and flags: dimensionless
+    if loc.delivery is not None:
+        d = loc.delivery
+        per = [param_unit(n) for n in d.names]
+        units = {"rms_error": per, "bound_rms": per}
+        units |= {n: "1" for n in ("ratio", "ratio_low", "ratio_high", "alpha")}
+        _write_dataclass(g.create_group("delivery"), d, units)
 
 
 def _write_search(g: h5py.Group, s: SearchInfo, vunit: str) -> None:
