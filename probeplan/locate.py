@@ -631,39 +631,50 @@ class _Stepper:
         return self._last_cov[1]
 
     def _robust(self, x0, obs, keep) -> _Try | None:
-        """The health pass: a robust refit, then a reading beyond the threshold left out and the
-        rest refitted, one reading at a time while one is still beyond it.
+        """The health pass: a robust refit, then the readings beyond the threshold left out and
+        the rest refitted. When that is not acceptable (or flags too many), one reading at a
+        time instead, while one is still beyond the threshold.
 
-        Each round tries the :data:`_SUSPECTS` readings of largest residual (at the robust fit
-        first, then studentised at each refit) and keeps the refit that fits best: with little
+        Each round leaves out the reading of largest studentised residual (at the robust fit
+        first, then at each refit); when the refit is still not acceptable, the next largest
+        instead, up to :data:`_SUSPECTS`, keeping the refit that fits best: with little
         redundancy a bad reading also pushes up the residuals of good ones, so the largest is
-        not always the culprit. At most half the redundancy is flagged (at least one reading):
-        a fit that needs more is in the wrong basin, not surrounded by broken meters. None when
-        nothing is flagged.
+        not always the culprit. (Not the best fit of all: leaving out a neighbour can make a
+        bad reading the only one that pins a parameter, and so unverifiable.) At most half the
+        redundancy is flagged (at least one reading): a fit that needs more is in the wrong
+        basin, not surrounded by broken meters. None when nothing is flagged.
         """
         rob = self._plain(x0, obs, keep, loss="soft_l1")
         if not rob.ok:
             return None
         r, _ = self.fit.whitened(rob.x, obs, keep)
-        score = np.where(keep, np.abs(r), 0.0)
         budget = max(1, (int(keep.sum()) - self.p) // 2)
+        beyond = keep & (np.abs(r) > self.threshold)
+        best = None
+        if 0 < beyond.sum() <= budget:  # every reading beyond the threshold at once
+            best = self._plain(rob.x, obs, keep & ~beyond, beyond)
+            if self._acceptable(best):
+                return best
+        score = np.where(keep, np.abs(rob.student), 0.0)
         flagged = np.zeros_like(keep)
-        best, x = None, rob.x
+        x = rob.x
         for _ in range(budget):
             order = np.argsort(-score, axis=None, kind="stable")[:_SUSPECTS]
             order = [k for k in order if score.flat[k] > self.threshold]
             if not order:
                 break
             round_best = None
-            for k in order:
+            for k in order:  # the largest residual first; the next only if its refit fails
                 trial = flagged.copy()
                 trial.flat[k] = True
                 round_best = self._better(round_best, self._plain(x, obs, keep & ~trial, trial))
-            best = round_best
-            if not best.ok or self._acceptable(best):
+                if self._acceptable(round_best):
+                    break
+            best = self._better(best, round_best)
+            if not round_best.ok or self._acceptable(round_best):
                 break
-            flagged = best.flagged
-            x, score = best.x, np.where(keep & ~flagged, np.abs(best.student), 0.0)
+            flagged = round_best.flagged
+            x, score = round_best.x, np.where(keep & ~flagged, np.abs(round_best.student), 0.0)
         return best
 
     def _acceptable(self, t: _Try) -> bool:

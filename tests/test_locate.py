@@ -154,7 +154,8 @@ def test_chi_square_of_the_fits_has_its_degrees_of_freedom(fitted):
     # 3 + 11 readings, 7 parameters: dof 7 each step; the sum over steps is chi-square with
     # the summed degrees of freedom (Kay vol. 1 §8.5).
     _, _, loc, _ = fitted
-    assert np.all(loc.dof == 14 - 7)
+    # (A good reading beyond 4 sigma, p ~ 6e-5 each, may be flagged now and then.)
+    assert np.mean(loc.dof == 14 - 7) > 0.99
     total = loc.dof.sum()
     lo, hi = stats.chi2.ppf([5e-4, 1 - 5e-4], total)
     assert lo < loc.chi2.sum() < hi, loc.chi2.mean()
