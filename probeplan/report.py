@@ -642,13 +642,13 @@ def _locate_quality(loc) -> Text:
         dof = loc.dof[ok]
         ratio = loc.chi2[ok].sum() / max(int(dof.sum()), 1)
         text.append(
-            f"  Fit quality: χ²/dof = {ratio:.2f} over the fitted steps (about 1 when the "
-            "meters' noise is as stored)"
+            f"  Fit quality: χ²/dof = {ratio:.2f} over the fitted steps\n"
+            "  (about 1 when the meters' noise is as stored)"
         )
     if failed:
         text.append(
-            f"\n  {failed:,} step(s) not fitted (fewer usable readings than unknowns, or no fit "
-            "converged); their estimates are not shown."
+            f"\n  {failed:,} step(s) not fitted (fewer usable readings than unknowns, or no\n"
+            "  fit converged); their estimates are left out of the table."
         )
     n_sat = int(loc.saturated.any(axis=1).sum())
     if n_sat:
