@@ -21,6 +21,7 @@ from rich.panel import Panel
 from rich.table import Table
 from rich.text import Text
 
+from .locate_report import locate_parts
 from .probes import axes_label
 from .result import Result
 from .resulttypes import param_unit, probe_names
@@ -57,11 +58,6 @@ CAUTIONS: dict[str, str] = {
 CAUTION_LINE = (
     "probeplan plans instrument positions only; safety decisions follow local codes, the "
     "applicable standards and qualified, licensed practice."
-)
-
-#: The caution every summary of recorded readings carries.
-LOCATE_CAUTION = (
-    "The estimate is not a warning system and does not decide when to stop work outdoors."
 )
 
 _CRITERION_TEXT = {
@@ -187,7 +183,7 @@ def summary_parts(result: Result) -> list:
     if result.simulation is not None:
         parts += [_simulation_table(result), _simulation_notes(), blank]
     if result.location is not None:
-        parts += [*_locate_parts(result), blank]
+        parts += [*locate_parts(result.location, format_quantity), blank]
     parts += [_unresolved_text(result), blank, Text(SIGN_LINE)]
     caution = CAUTIONS.get(result.caution)
     if caution:
@@ -579,144 +575,6 @@ def _simulation_notes() -> Text:
         "  A ratio near 1 means the layout delivers its bound; the RMS of n fits is\n"
         "  itself uncertain by about 1/sqrt(2n)."
     )
-
-
-def _locate_parts(result: Result) -> list:
-    """The summary of ``probeplan locate``: estimates, fit quality, meter health, delivery."""
-    loc = result.location
-    parts = [_locate_estimates(loc), _locate_quality(loc), Text("")]
-    parts += [_locate_health(loc), Text("")]
-    if loc.delivery is not None:
-        parts += [_locate_delivery(loc.delivery), Text("")]
-    parts.append(Text(LOCATE_CAUTION, style="bold"))
-    return parts
-
-
-def _time_text(loc, k: int) -> str:
-    if loc.time_is_utc:
-        import datetime as dt
-
-        return dt.datetime.fromtimestamp(loc.time_s[k], dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
-    return f"{loc.time_s[k]:g} s"
-
-
-def _locate_estimates(loc) -> Table:
-    n_ok = int(loc.converged.sum())
-    span = f"{_time_text(loc, 0)} to {_time_text(loc, -1)}"
-    table = Table(
-        title=f"Recorded readings: {loc.n_times:,} steps, {span}; {n_ok:,} fitted",
-        title_justify="left",
-        box=box.SIMPLE_HEAD,
-        pad_edge=False,
-    )
-    table.add_column("parameter", overflow="fold", max_width=22)
-    table.add_column("first", justify="right")
-    table.add_column("last", justify="right")
-    table.add_column("lowest", justify="right")
-    table.add_column("highest", justify="right")
-    table.add_column("median 1σ", justify="right")
-    ok = loc.converged
-    for k, name in enumerate(loc.names):
-        unit = param_unit(name)
-        est = loc.estimate[ok, k]
-        if est.size == 0:
-            table.add_row(name, "no fit", "", "", "", "")
-            continue
-        sd = loc.std[ok, k]
-        table.add_row(
-            name,
-            format_quantity(float(est[0]), unit),
-            format_quantity(float(est[-1]), unit),
-            format_quantity(float(est.min()), unit),
-            format_quantity(float(est.max()), unit),
-            format_quantity(float(np.median(sd)), unit),
-        )
-    return table
-
-
-def _locate_quality(loc) -> Text:
-    ok = loc.converged
-    text = Text()
-    failed = loc.n_times - int(ok.sum())
-    if ok.any():
-        dof = loc.dof[ok]
-        ratio = loc.chi2[ok].sum() / max(int(dof.sum()), 1)
-        text.append(
-            f"  Fit quality: χ²/dof = {ratio:.2f} over the fitted steps\n"
-            "  (about 1 when the meters' noise is as stored)"
-        )
-    if failed:
-        text.append(
-            f"\n  {failed:,} step(s) not fitted (fewer usable readings than unknowns, or no\n"
-            "  fit converged); their estimates are left out of the table."
-        )
-    n_sat = int(loc.saturated.any(axis=1).sum())
-    if n_sat:
-        text.append(f"\n  {n_sat:,} step(s) had a reading at the end of its range (left out).")
-    return text
-
-
-def _locate_health(loc) -> Table | Text:
-    flagged = np.flatnonzero(loc.flag_counts > 0)
-    if flagged.size == 0:
-        return Text(
-            f"  Meter health: no reading beyond {loc.threshold:g} sigma in any step; no meter "
-            "suspect."
-        )
-    table = Table(
-        title=f"Meter health: readings beyond {loc.threshold:g} sigma (left out of the fit)",
-        title_justify="left",
-        box=box.SIMPLE_HEAD,
-        pad_edge=False,
-    )
-    table.add_column("meter", overflow="fold", max_width=24)
-    table.add_column("flagged", justify="right")
-    table.add_column("of steps", justify="right")
-    table.add_column("share", justify="right")
-    table.add_column("verdict")
-    order = flagged[np.argsort(-loc.flag_counts[flagged], kind="stable")]
-    reported = loc.reported.sum(axis=0)
-    for i in order:
-        share = loc.flag_counts[i] / max(int(reported[i]), 1)
-        table.add_row(
-            Text(loc.meter_names[i]),
-            f"{int(loc.flag_counts[i]):,}",
-            f"{int(reported[i]):,}",
-            f"{100 * share:.0f} %",
-            Text("SUSPECT: stuck, drifting or miscalibrated?", style="bold red")
-            if loc.suspect[i]
-            else Text("occasional"),
-        )
-    return table
-
-
-def _locate_delivery(d) -> Table:
-    verdict = "delivers its plan" if d.all_deliver else "does NOT deliver its plan"
-    table = Table(
-        title=f"Delivery check against the truth: the network {verdict}",
-        title_justify="left",
-        box=box.SIMPLE_HEAD,
-        pad_edge=False,
-    )
-    table.add_column("parameter", overflow="fold", max_width=18)
-    table.add_column("steps", justify="right")
-    table.add_column("RMS error", justify="right")
-    table.add_column("plan's 1σ", justify="right")
-    table.add_column("ratio", justify="right")
-    table.add_column("at most", justify="right")
-    table.add_column("")
-    for k, name in enumerate(d.names):
-        unit = param_unit(name)
-        table.add_row(
-            name,
-            f"{int(d.steps[k]):,}",
-            format_quantity(float(d.rms_error[k]), unit),
-            format_quantity(float(d.bound_rms[k]), unit),
-            f"{d.ratio[k]:.2f}",
-            f"{d.ratio_high[k]:.2f}",
-            "ok" if d.delivers[k] else Text("worse", style="bold red"),
-        )
-    return table
 
 
 # --------------------------------------------------------------------------------------------
