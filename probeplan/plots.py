@@ -33,7 +33,7 @@ from matplotlib.ticker import FuncFormatter, NullFormatter
 from .fisher import CRITERIA, covariance, fisher_from_rows
 from .probes import whitened_rows
 from .problem import draw_scenarios
-from .resulttypes import probe_names
+from .resulttypes import param_unit, probe_names
 from .store.files import write_atomically
 
 #: Output formats.
@@ -463,31 +463,15 @@ def plot_all(result, config, problem, folder, fmt: str = "png") -> list[Path]:
 
 
 def locate_plot(location, path) -> Path:
-    """The estimated charge and position against time, with 1-sigma bands and flagged readings.
-
-    Parameters
-    ----------
-    location : probeplan.locate.Location
-    path : str or path-like
-        ``.png`` or ``.svg``.
-
-    Returns
-    -------
-    Path
-        The file written.
-
-    Panels, top to bottom: every estimated charge (C); every estimated position coordinate
-    (km); the background components when estimated (V/m); the meters' flagged readings (one
-    row per meter that was ever flagged, a mark per flagged step). Bands are ±1 sigma from the
-    Fisher information; steps whose fit failed are left out of the lines.
-    """
+    """Estimates of a :class:`~probeplan.locate.Location` against time: one panel each for
+    charges (C), positions (km) and background (V/m), with ±1-sigma bands (steps not fitted
+    left out), and a panel marking each meter's flagged readings. ``path``: ``.png`` or
+    ``.svg``; returns the file written."""
     path, fmt = _check_path(path)
     loc = location
-    groups = [
-        ("charge (C)", [k for k, n in enumerate(loc.names) if n.endswith("_c")], 1.0),
-        ("position (km)", [k for k, n in enumerate(loc.names) if n.endswith("_m")], 1e-3),
-        ("background (V/m)", [k for k, n in enumerate(loc.names) if n.endswith("_v_per_m")], 1.0),
-    ]
+    units = [param_unit(n) for n in loc.names]
+    kinds = (("charge (C)", "C", 1.0), ("position (km)", "m", 1e-3), ("bg. (V/m)", "V/m", 1.0))
+    groups = [(label, [k for k, u in enumerate(units) if u == unit], s) for label, unit, s in kinds]
     groups = [g for g in groups if g[1]]
     flagged = np.flatnonzero(loc.flag_counts > 0)
     n_rows = len(groups) + 1
