@@ -48,6 +48,7 @@ Shapes: ``n_times`` steps, ``n_probes`` meters (installed first), ``n_axes`` rea
 
 from __future__ import annotations
 
+import signal
 from collections.abc import Callable
 from concurrent.futures import Executor, ProcessPoolExecutor, as_completed
 from dataclasses import dataclass, replace
@@ -465,7 +466,9 @@ def _run_chunks(tasks, workers: int, executor, progress, sizes) -> list:
         return out
     own = executor is None
     if own:
-        executor = ProcessPoolExecutor(max_workers=min(workers, len(tasks)))
+        executor = ProcessPoolExecutor(
+            max_workers=min(workers, len(tasks)), initializer=_workers_ignore_sigint
+        )
     try:
         futures = [executor.submit(fit_chunk, *task) for task in tasks]
         size_of = dict(zip(futures, sizes, strict=True))
@@ -477,6 +480,12 @@ def _run_chunks(tasks, workers: int, executor, progress, sizes) -> list:
     finally:
         if own:
             executor.shutdown(wait=True, cancel_futures=True)
+
+
+def _workers_ignore_sigint() -> None:
+    """Worker initialiser: Ctrl-C reaches the whole process group; only the parent handles it
+    (it stops waiting and cancels the chains not started)."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 
 def _planned_bounds(problem, meters: Meters, known: np.ndarray) -> np.ndarray:
