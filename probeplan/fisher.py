@@ -75,7 +75,8 @@ def _singular_from_scaled(scaled: np.ndarray, d: np.ndarray, sign, logdet) -> np
     pay for an eigendecomposition.
     """
     p = scaled.shape[-1]
-    singular = np.any(d == 0.0, axis=-1) | (sign <= 0)
+    # An array even for one matrix (no batch axis), so the entries to check can be assigned.
+    singular = np.asarray(np.any(d == 0.0, axis=-1) | (sign <= 0))
     if p == 0:
         return singular
     proven = ~singular & (logdet >= np.log(SINGULAR_RTOL) + p * np.log(p))

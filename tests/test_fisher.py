@@ -101,6 +101,16 @@ def test_singular_information_gives_infinite_bounds():
     assert log_det(j2)[0] == -np.inf
 
 
+def test_one_matrix_without_a_batch_axis_keeps_its_shape():
+    # Outputs keep their rank: one (n, n) matrix gives a 0-d flag. A nearly collinear pair
+    # (correlation 1 - 1e-13) must take the eigenvalue test without failing on the 0-d flag.
+    near = np.array([[1.0, 1.0 - 1e-13], [1.0 - 1e-13, 1.0]])
+    cov, singular = covariance(near)
+    assert singular.shape == () and bool(singular)
+    assert np.all(np.isinf(np.diagonal(cov)))
+    assert np.all(np.isinf(crb_std(near)))
+
+
 # --------------------------------------------------------------------------------------------
 # Criteria (contract: exact definitions)
 # --------------------------------------------------------------------------------------------
