@@ -9,9 +9,9 @@ Map of this package (read top to bottom):
    and the numba compilation in :mod:`._common`), on strict arrays with no checks. A kernel
    takes the parameters of *all sources of its kind in all scenarios* at once and returns the
    summed field and the per-source parameter Jacobian. Line and grid kernels are vectorised
-   numpy over blocks of points; the radial kinds (point, ball, Gaussian) share one loop compiled by numba, because
-   their Jacobian costs a few flops per number and only a compiled loop writes it at memory
-   speed. Closed forms from the literature are used everywhere:
+   numpy over blocks of points; the radial kinds (point, ball, Gaussian) share one loop
+   compiled by numba, because their Jacobian costs a few flops per number and only a compiled
+   loop writes it at memory speed. Closed forms from the literature are used everywhere:
 
    * point: Coulomb's law;
    * line: the finite uniform segment in its prolate-spheroidal form,
