@@ -22,6 +22,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .sources import KERNELS, DensityGrid, Source, _SourceBase, grid_entries
+from .sources.potentials import potential_kernel
 
 BACKGROUND_PARAMS: tuple[str, ...] = ("bg.x_v_per_m", "bg.y_v_per_m", "bg.z_v_per_m")
 
@@ -206,6 +207,57 @@ class Scene:
             if not np.shares_memory(full, out):
                 out[...] = full
             full = out
+        return total, full
+
+    def potential(
+        self, theta: np.ndarray, points_m: np.ndarray, *, jacobian: bool = True
+    ) -> tuple[np.ndarray, np.ndarray | None]:
+        """Potential of the sources (with their images) and the background, and ∂φ/∂θ.
+
+        Parameters
+        ----------
+        theta : (n_scenarios, n_params) float
+        points_m : (n_points, 3) float
+            Points in metres (the boundary-element solve's collocation points).
+        jacobian : bool
+
+        Returns
+        -------
+        potential_v : (n_scenarios, n_points) float
+            Volts, zero on the grounded plane (and at infinity in free space). The background
+            field's potential is −E_bg·(x − x_g), x_g the origin's foot on the plane (the origin
+            in free space), so it is zero there too.
+        jacobian : (n_scenarios, n_points, n_params) float or None
+            ∂φ/∂θ in V per unit of θ, columns as :attr:`param_names`.
+        """
+        n_s, n_pts = theta.shape[0], points_m.shape[0]
+        total = np.zeros((n_s, n_pts))
+        full = np.zeros((n_s, n_pts, self.n_params)) if jacobian else None
+        g = self.ground_z_m
+        for grp in self._groups:
+            params = theta[:, grp.columns]
+            n_src = grp.columns.shape[0]
+            if g is None:
+                phi, jac = potential_kernel(grp.kind, params, points_m, grp.geometry, jacobian)
+            else:
+                mirrored = params.copy()
+                mirrored[..., 0] *= -1.0
+                mirrored[..., 3] = 2.0 * g - mirrored[..., 3]
+                both = np.concatenate([params, mirrored], axis=1)
+                phi, jac = potential_kernel(grp.kind, both, points_m, grp.pair_geometry, jacobian)
+                if jacobian:
+                    img = jac[:, :, n_src:]
+                    img[..., 0] *= -1.0  # chain rule through q' = −q, z' = 2g − z
+                    img[..., 3] *= -1.0
+                    jac = jac[:, :, :n_src] + img
+            total += phi
+            if jacobian:
+                full[:, :, grp.columns.ravel()] += jac.reshape(n_s, n_pts, -1)
+        if self.background:
+            rel = points_m - np.array([0.0, 0.0, 0.0 if g is None else g])
+            total -= theta[:, -3:] @ rel.T
+            if jacobian:
+                full[:, :, -3:] -= rel[None]
         return total, full
 
     def _assemble(self, blocks, cols: np.ndarray, n_s: int, n_pts: int) -> np.ndarray:
