@@ -14,6 +14,7 @@ from importlib import import_module
 from typing import TYPE_CHECKING
 
 if TYPE_CHECKING:  # for type checkers and IDEs; at run time see __getattr__
+    from .conductors import Conductor
     from .forward import Scene, field, field_jacobian
     from .sources import (
         K_COULOMB,
@@ -26,6 +27,7 @@ if TYPE_CHECKING:  # for type checkers and IDEs; at run time see __getattr__
 
 #: Public name -> the module that defines it.
 _EXPORTS: dict[str, str] = {
+    "Conductor": ".conductors",
     "Scene": ".forward",
     "field": ".forward",
     "field_jacobian": ".forward",
@@ -39,6 +41,7 @@ _EXPORTS: dict[str, str] = {
 
 __all__ = [
     "K_COULOMB",
+    "Conductor",
     "DensityGrid",
     "GaussianCharge",
     "LineCharge",

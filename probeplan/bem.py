@@ -43,6 +43,7 @@ import numba
 import numpy as np
 from scipy import linalg
 
+from .conductors import check_points
 from .sources import K_COULOMB
 
 #: Bumped whenever the matrix changes meaning, so older cache files are not read.
@@ -331,8 +332,9 @@ class Factorization:
             rhs[n:] = charges_c / self.length_m
         return linalg.lu_solve((self.lu, self.piv), rhs, check_finite=False)[:n]
 
-    def potentials_v(self, sigma: np.ndarray, potential_v: np.ndarray, charges_c=None):
-        """Potential of each floating conductor, V, ``(n_floating, n_rhs)`` (for checks)."""
+    def potentials_v(self, potential_v: np.ndarray, charges_c=None) -> np.ndarray:
+        """Potential of each floating conductor, V, ``(n_floating, n_rhs)``, for the same
+        right-hand sides as :meth:`solve`."""
         n = self.panels.n_panels
         rhs = np.zeros((n + self.n_floating, potential_v.shape[1]))
         rhs[:n] = -potential_v / K_COULOMB
@@ -435,4 +437,114 @@ def _write_atomic(path: Path, **arrays) -> None:
         pass  # a cache that cannot be written only costs the next run the solve again
 
 
-__all__ = ["CACHE_ENV", "Factorization", "Panels", "cache_dir", "factorize", "triangle_integrals"]
+# --------------------------------------------------------------------------------------------
+# Structures: conductors meshed and factored, and the field they add
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, eq=False)
+class Structures:
+    """Conductors over the (optional) grounded plane, meshed and factored once.
+
+    Build with :meth:`build`; then :meth:`induced` gives the field of the induced charge for
+    any scene, scenarios and points, with its parameter Jacobian.
+
+    Attributes
+    ----------
+    conductors : tuple of Conductor
+    ground_z_m : float or None
+    surfaces : tuple of (n_panels_k, 3, 3) float
+        Each conductor's panels, m.
+    factor : Factorization
+    """
+
+    conductors: tuple
+    ground_z_m: float | None
+    surfaces: tuple
+    factor: Factorization
+
+    @classmethod
+    def build(cls, conductors, ground_z_m: float | None = None, *, use_cache: bool = True):
+        """Mesh every conductor, assemble and factor (or load the cached factors)."""
+        conductors = tuple(conductors)
+        surfaces = tuple(c.triangles(ground_z_m) for c in conductors)
+        owner = np.concatenate([np.full(len(s), k) for k, s in enumerate(surfaces)])
+        panels = Panels(np.ascontiguousarray(np.concatenate(surfaces)), owner)
+        floating = tuple(c.floating for c in conductors)
+        return cls(
+            conductors,
+            ground_z_m,
+            surfaces,
+            factorize(panels, ground_z_m, floating, use_cache=use_cache),
+        )
+
+    @property
+    def charges_c(self) -> np.ndarray:
+        """``(n_floating,)`` net charge of every floating conductor, C."""
+        return np.array([c.charge_c for c in self.conductors if c.floating])
+
+    def check_points(self, points_m, *, mounted=None, name: str = "points_m") -> None:
+        """Refuse points inside a structure or nearer its surface than a panel (see
+        :func:`probeplan.conductors.check_points`); ``mounted`` rows are exempt from the
+        distance rule."""
+        check_points(
+            points_m, self.conductors, self.surfaces, self.ground_z_m, mounted=mounted, name=name
+        )
+
+    def charge_density(self, scene, theta: np.ndarray) -> np.ndarray:
+        """Induced σ on every panel for every scenario, ``(n_scenarios, n_panels)`` C/m²."""
+        phi, _ = scene.potential(theta, self.factor.panels.centroids_m, jacobian=False)
+        charges = np.repeat(self.charges_c[:, None], theta.shape[0], axis=1)
+        return self.factor.solve(phi.T, charges).T
+
+    def induced(
+        self,
+        scene,
+        theta: np.ndarray,
+        points_m: np.ndarray,
+        *,
+        jacobian: bool = True,
+        columns: np.ndarray | None = None,
+    ) -> tuple[np.ndarray, np.ndarray | None]:
+        """Field of the induced charge at ``points_m`` and its derivatives.
+
+        Parameters
+        ----------
+        scene : probeplan.forward.Scene
+        theta : (n_scenarios, n_params) float
+        points_m : (n_points, 3) float
+        jacobian : bool
+        columns : (n_cols,) int or None
+            θ columns kept in the Jacobian (default all).
+
+        Returns
+        -------
+        field_v_per_m : (n_scenarios, n_points, 3) float
+        jacobian : (n_scenarios, n_points, 3, n_cols) float or None
+            ∂E_induced/∂θ = K A⁻¹ ∂(−φ_ext)/∂θ (the floating charges are constants).
+        """
+        n_s, n_pts = theta.shape[0], points_m.shape[0]
+        n = self.factor.panels.n_panels
+        phi, jphi = scene.potential(theta, self.factor.panels.centroids_m, jacobian=jacobian)
+        charges = np.repeat(self.charges_c[:, None], n_s, axis=1)
+        sigma = self.factor.solve(phi.T, charges)  # (n, S)
+        op = self.factor.field_operator(points_m).reshape(n_pts * 3, n)
+        field = (op @ sigma).reshape(n_pts, 3, n_s).transpose(2, 0, 1)
+        if not jacobian:
+            return field, None
+        cols = np.arange(scene.n_params) if columns is None else np.asarray(columns, dtype=int)
+        rhs = jphi[:, :, cols].transpose(1, 0, 2).reshape(n, n_s * cols.size)
+        d_sigma = self.factor.solve(rhs)
+        jac = (op @ d_sigma).reshape(n_pts, 3, n_s, cols.size).transpose(2, 0, 1, 3)
+        return field, np.ascontiguousarray(jac)
+
+
+__all__ = [
+    "CACHE_ENV",
+    "Factorization",
+    "Panels",
+    "Structures",
+    "cache_dir",
+    "factorize",
+    "triangle_integrals",
+]

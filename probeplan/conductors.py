@@ -276,9 +276,10 @@ def _ring_strip(a0: int, na: int, off_a: float, b0: int, nb: int, off_b: float) 
     )
 
 
-def _revolve(r, z, h, center_xy) -> tuple[np.ndarray, np.ndarray]:
+def _revolve(r, z, h, center_xy, *, widen: bool = True) -> tuple[np.ndarray, np.ndarray]:
     """Vertices and faces of the surface swept by the meridian nodes (r, z) about the vertical
-    through ``center_xy``; ``h`` the wanted size at each node."""
+    through ``center_xy``; ``h`` the wanted size at each node. ``widen``: enlarge each ring so
+    that the panels hold the body's volume (see below); a flat sheet keeps its rim."""
     scale = max(float(np.max(r)), 1e-300)
     counts = np.where(r <= 1e-9 * scale, 1, np.maximum(6, np.ceil(2 * np.pi * r / h))).astype(int)
     offsets = np.pi * (np.arange(r.size) % 2) / counts
@@ -289,8 +290,8 @@ def _revolve(r, z, h, center_xy) -> tuple[np.ndarray, np.ndarray]:
     section = (
         n / 2 * np.sin(2 * np.pi / n) + 2 * n * np.cos(np.pi / (2 * n)) ** 2 * np.sin(np.pi / n)
     ) / 3
-    widen = np.sqrt(np.pi / section)
-    r = np.where(counts > 1, r * widen, r)
+    if widen:
+        r = np.where(counts > 1, r * np.sqrt(np.pi / section), r)
     starts = np.concatenate([[0], np.cumsum(counts)[:-1]])
     ring = np.repeat(np.arange(r.size), counts)
     local = np.arange(ring.size) - starts[ring]

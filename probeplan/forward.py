@@ -397,7 +397,14 @@ def check_points(points_m, ground_z_m: float | None = None, name: str = "points_
     return pts
 
 
-def field(sources, points_m, ground_z_m: float | None = None) -> np.ndarray:
+def field(
+    sources,
+    points_m,
+    ground_z_m: float | None = None,
+    *,
+    conductors=(),
+    background_v_per_m=None,
+) -> np.ndarray:
     """Superposed electric field of ``sources`` at ``points_m``.
 
     Parameters
@@ -409,6 +416,14 @@ def field(sources, points_m, ground_z_m: float | None = None) -> np.ndarray:
     ground_z_m : float or None
         ``None`` for free space; a number places an infinite grounded conducting plane at that
         height (method of images). Every source must lie above it, every point on or above it.
+    conductors : sequence of Conductor
+        Conducting structures (:class:`probeplan.Conductor`); their induced surface charge is
+        solved for (boundary elements, :mod:`probeplan.bem`) and its field added. A point
+        inside a structure, or nearer its surface than the panel size there, is refused.
+    background_v_per_m : (3,) float or None
+        A uniform background field (the fair-weather field), V/m. Structures distort it too:
+        its potential is −E_bg·(x − x_g), x_g on the plane below the origin (the origin in
+        free space), so a grounded structure is at the plane's potential.
 
     Returns
     -------
@@ -419,14 +434,28 @@ def field(sources, points_m, ground_z_m: float | None = None) -> np.ndarray:
     ------
     ValueError
         Bad shapes, non-finite values, a source below the plane, or a point on a point or line
-        charge (the message names the point).
+        charge (the message names the point); ``InputError`` (a ``ValueError``) for a point or
+        a source inside or too near a structure.
     """
-    e, _ = field_jacobian(sources, points_m, ground_z_m, jacobian=False)
+    e, _ = field_jacobian(
+        sources,
+        points_m,
+        ground_z_m,
+        conductors=conductors,
+        background_v_per_m=background_v_per_m,
+        jacobian=False,
+    )
     return e
 
 
 def field_jacobian(
-    sources, points_m, ground_z_m: float | None = None, *, jacobian: bool = True
+    sources,
+    points_m,
+    ground_z_m: float | None = None,
+    *,
+    conductors=(),
+    background_v_per_m=None,
+    jacobian: bool = True,
 ) -> tuple[np.ndarray, np.ndarray | None]:
     """Field and its derivatives with respect to every source parameter.
 
@@ -437,12 +466,57 @@ def field_jacobian(
     field_v_per_m : (n_points, 3) float
     jacobian : (n_points, 3, n_params) float
         ∂E/∂θ with θ ordered ``s0.charge_c, s0.x_m, s0.y_m, s0.z_m, [s0.radius_m | s0.sigma_m],
-        s1.charge_c, …`` (see :attr:`Scene.param_names`).
+        s1.charge_c, …`` (see :attr:`Scene.param_names`), then ``bg.x_v_per_m, bg.y_v_per_m,
+        bg.z_v_per_m`` when ``background_v_per_m`` is given. With conductors, every column
+        holds the induced charge's response too: ∂E/∂θ = ∂E_ext/∂θ − K A⁻¹ ∂φ_ext/∂θ.
     """
-    scene = Scene(_as_sources(sources), ground_z_m)
+    return _field_jacobian(
+        sources, points_m, ground_z_m, conductors, background_v_per_m, jacobian, None
+    )
+
+
+def _field_jacobian(sources, points_m, ground_z_m, conductors, background, jacobian, mounted):
+    """:func:`field_jacobian` with ``mounted``: ``(n_points,) bool`` rows that are meters
+    mounted on a structure, exempt from the too-near-a-surface rule."""
+    bg = None
+    if background is not None:
+        bg = np.asarray(background, dtype=float)
+        if bg.shape != (3,) or not np.all(np.isfinite(bg)):
+            raise ValueError(
+                f"`background_v_per_m` must be 3 finite numbers (V/m); got {background!r}."
+            )
+    scene = Scene(_as_sources(sources), ground_z_m, background=bg is not None)
     pts = check_points(points_m, scene.ground_z_m)
-    e, jac = scene.evaluate(scene.nominal()[None, :], pts, jacobian=jacobian)
+    theta = scene.nominal(() if bg is None else bg)[None, :]
+    e, jac = scene.evaluate(theta, pts, jacobian=jacobian)
+    structures = _structures(conductors, scene)
+    if structures is not None:
+        structures.check_points(pts, mounted=mounted)
+        e_ind, j_ind = structures.induced(scene, theta, pts, jacobian=jacobian)
+        e = e + e_ind
+        jac = None if jac is None else jac + j_ind
     return e[0], (jac[0] if jac is not None else None)
+
+
+def _structures(conductors, scene: Scene):
+    """The meshed, factored structures for ``scene``'s plane, or ``None`` without any; every
+    source is checked to lie outside them."""
+    from .bem import Structures
+    from .conductors import Conductor
+
+    if isinstance(conductors, Conductor):
+        conductors = (conductors,)
+    conductors = tuple(conductors)
+    for i, c in enumerate(conductors):
+        if not isinstance(c, Conductor):
+            raise ValueError(f"`conductors[{i}]` must be a Conductor; got {type(c).__name__}.")
+    if not conductors:
+        return None
+    structures = Structures.build(conductors, scene.ground_z_m)
+    if scene.sources:
+        centres = np.array([s.center_m for s in scene.sources], dtype=float)
+        structures.check_points(centres, name="source centres")
+    return structures
 
 
 __all__ = ["BACKGROUND_PARAMS", "Scene", "check_points", "field", "field_jacobian"]

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import os
 
+import pytest
 from hypothesis import settings
 
 # In CI (CI=true) property tests draw their examples from a fixed seed per test, so a run is
@@ -12,3 +13,16 @@ from hypothesis import settings
 settings.register_profile("ci", derandomize=True, database=None)
 if os.environ.get("CI"):
     settings.load_profile("ci")
+
+
+@pytest.fixture(autouse=True, scope="session")
+def _private_bem_cache(tmp_path_factory):
+    """Factorisations cached by the conductor solve go to a folder of this run, not the user's
+    cache (see probeplan.bem.cache_dir)."""
+    old = os.environ.get("PROBEPLAN_CACHE_DIR")
+    os.environ["PROBEPLAN_CACHE_DIR"] = str(tmp_path_factory.mktemp("bem-cache"))
+    yield
+    if old is None:
+        os.environ.pop("PROBEPLAN_CACHE_DIR", None)
+    else:
+        os.environ["PROBEPLAN_CACHE_DIR"] = old
