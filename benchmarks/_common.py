@@ -49,6 +49,9 @@ TARGETS: dict[str, tuple] = {
     "locate_plain_agreement": ("report", None, "reported"),
     "locate_coverage_1sigma": ("band", (0.66, 0.70), "≈ 0.683"),
     "locate_chi2_per_dof": ("band", (0.95, 1.05), "≈ 1"),
+    "bem_seconds_4000": ("<=", 30.0, "≤ 30"),
+    "bem_offsurface_max_rel_err": ("<=", 1e-3, "≤ 1e-3"),
+    "bem_mast_axis_max_rel_err": ("<=", 0.02, "≤ 0.02"),
 }
 
 

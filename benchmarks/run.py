@@ -26,6 +26,7 @@ from pathlib import Path
 import forward
 import plan
 import score
+import structures
 from _common import RESULTS, print_table, run_meta, write_json
 
 
@@ -44,6 +45,7 @@ def main(argv: list[str] | None = None) -> int:
         ("forward", forward.run, ("forward_bandwidth_ratio",)),
         ("score", score.run, ("score_layouts_per_s",)),
         ("plan", plan.run, ("plan_d_efficiency_vs_bound", "plan_seconds")),
+        ("structures", structures.run, ("bem_seconds_4000", "bem_offsurface_max_rel_err")),
     ]
     for name, runner, main_keys in benches:
         t = time.perf_counter()

@@ -231,10 +231,13 @@ def _read_mesh(source) -> tuple[np.ndarray, np.ndarray]:
 # --------------------------------------------------------------------------------------------
 
 
-def _size(cond: Conductor, area_m2: float) -> float:
+def _size(cond: Conductor, area_m2: float, thickness_m: float = math.inf) -> float:
+    """The largest panel edge: the user's, or about ``_AUTO_PANELS`` equilateral panels over
+    ``area_m2``, and no more than the body's smallest half-thickness (a slender mast keeps
+    ~6 panels round and a resolved tip)."""
     if cond.mesh_size_m is not None:
         return cond.mesh_size_m
-    return math.sqrt(area_m2 / (_TRI_AREA * _AUTO_PANELS))
+    return min(math.sqrt(area_m2 / (_TRI_AREA * _AUTO_PANELS)), thickness_m)
 
 
 def _nodes_along(s: np.ndarray, h: np.ndarray) -> np.ndarray:
@@ -329,7 +332,7 @@ def _ellipsoid(c: np.ndarray, axes: np.ndarray, cond: Conductor, g) -> np.ndarra
     # Knud Thomsen's approximation of the ellipsoid's area (within ~1 %, enough for a size).
     p = 1.6075
     ab, ac, bc = (axes[0] * axes[1]) ** p, (axes[0] * axes[2]) ** p, (axes[1] * axes[2]) ** p
-    h0 = _size(cond, 4 * np.pi * ((ab + ac + bc) / 3) ** (1 / p))
+    h0 = _size(cond, 4 * np.pi * ((ab + ac + bc) / 3) ** (1 / p), float(axes.min()))
     theta_lo = 0.0
     if g is not None and c[2] - cz < g:
         theta_lo = math.acos(min(1.0, (c[2] - g) / cz))  # the plane cuts the body here
@@ -339,7 +342,7 @@ def _ellipsoid(c: np.ndarray, axes: np.ndarray, cond: Conductor, g) -> np.ndarra
         z[0] = g
     # meridian radius of curvature; panels a little finer than it at tips
     rho = (a_bar**2 * np.cos(theta) ** 2 + cz**2 * np.sin(theta) ** 2) ** 1.5 / (a_bar * cz)
-    h = np.minimum(h0, np.maximum(h0 / 6, 0.7 * rho))
+    h = np.minimum(h0, np.maximum(h0 / 20, 0.5 * rho))
     rn, zn, hn = _profile_nodes(r, z, h)
     # Chords between meridian nodes cut inside the curve by Δs²/(12 ρ) on average: move every
     # node out along the normal by that much, so the panels enclose the body's own area.
@@ -349,7 +352,7 @@ def _ellipsoid(c: np.ndarray, axes: np.ndarray, cond: Conductor, g) -> np.ndarra
     rho_n = (a_bar**2 * np.cos(th) ** 2 + cz**2 * np.sin(th) ** 2) ** 1.5 / (a_bar * cz)
     normal = np.stack([cz * np.sin(th), -a_bar * np.cos(th)])
     normal /= np.linalg.norm(normal, axis=0)
-    shift = gap**2 / (12 * rho_n)
+    shift = np.minimum(gap, rho_n) ** 2 / (12 * rho_n)  # (a chord longer than ρ: no fit)
     if theta_lo:
         shift[0] = 0.0  # the cut stays on the plane
     rn, zn = rn + shift * normal[0], zn + shift * normal[1]
@@ -382,7 +385,7 @@ def _cylinder(cond: Conductor, g) -> np.ndarray:
     _below_ground(cond, top, g)
     base = z0 if g is None else max(z0, g)
     on_ground = g is not None and z0 <= g
-    h0 = _size(cond, 2 * np.pi * radius * (radius + height))
+    h0 = _size(cond, 2 * np.pi * radius * (radius + height), radius)
     # (meridian piece, sharp rim at its start, at its end); the foot on the plane is no rim
     pieces = [] if on_ground else [((np.linspace(0, radius, 1001), np.full(1001, base)), 0, 1)]
     pieces.append(((np.full(2001, radius), np.linspace(base, top, 2001)), not on_ground, 1))
