@@ -163,6 +163,24 @@ def _cell_quadrature(k_coulomb, lower, pts, centres, charge, half, t, w, E, G):
         G[p, 5] = k_coulomb * gyz
 
 
+def far_quadrature(far, dist, cell, base, spacing, lower, pts):
+    """The (scenario, point) pairs where cell quadrature replaces the corner sums, by rule:
+    yields their indices ``s_i, m_i`` and the compiled quadrature's leading arguments
+    (grid corner, point, cell centres and charges, half cell sides, nodes and weights)."""
+    if not far.any():
+        return
+    centres, charge = _grid_cells(base, spacing)
+    todo = far.copy()
+    for cells_away, order in _GRID_FAR_RULES:
+        s_i, m_i = np.nonzero(todo & (dist >= cells_away * cell))
+        if s_i.size == 0:
+            continue
+        todo[s_i, m_i] = False
+        t, wq = np.polynomial.legendre.leggauss(order)
+        pair_pts = np.ascontiguousarray(pts[m_i])
+        yield s_i, m_i, (lower[s_i], pair_pts, centres, charge, 0.5 * spacing, t, wq)
+
+
 def _box_distance(pts: np.ndarray, lower: np.ndarray, size: np.ndarray) -> np.ndarray:
     """``(S, M)`` distance of each point from the grid's box in each scenario, m; ``lower``
     (S, 3) is the box's lower corner."""
@@ -210,20 +228,10 @@ def _grid_kernel(params, pts, grids, want_jac, out=None):
         far = (dist >= gaps * _corner_gap_m(idx, spacing)) & (dist >= 10.0 * cell)
         unit = np.zeros((S, M, 3))
         grad6 = np.zeros((S, M, 6))
-        if far.any():
-            centres, charge = _grid_cells(base, spacing)
-            todo = far.copy()
-            for cells_away, order in _GRID_FAR_RULES:
-                s_i, m_i = np.nonzero(todo & (dist >= cells_away * cell))
-                if s_i.size == 0:
-                    continue
-                todo[s_i, m_i] = False
-                t, wq = np.polynomial.legendre.leggauss(order)
-                e_p, g_p = np.empty((s_i.size, 3)), np.empty((s_i.size, 6))
-                args = (lower[s_i], np.ascontiguousarray(pts[m_i]), centres, charge)
-                args += (0.5 * spacing, t, wq, e_p, g_p)
-                _call_compiled(_cell_quadrature, K_COULOMB, *args)
-                unit[s_i, m_i], grad6[s_i, m_i] = e_p, g_p
+        for s_i, m_i, args in far_quadrature(far, dist, cell, base, spacing, lower, pts):
+            e_p, g_p = np.empty((s_i.size, 3)), np.empty((s_i.size, 6))
+            _call_compiled(_cell_quadrature, K_COULOMB, *args, e_p, g_p)
+            unit[s_i, m_i], grad6[s_i, m_i] = e_p, g_p
         near_pts = np.flatnonzero(~far.all(axis=0))
         corner = [lower[:, k : k + 1] + idx[k] * spacing[k] for k in range(3)]  # (S, K) each
         for blk in _blocks(near_pts.size, S * wv.size * 8):

@@ -32,13 +32,12 @@ from scipy import special
 
 from ._common import _blocks, _call_compiled, _check_not_on_charge, _jit, _offsets
 from .grid import (
-    _GRID_FAR_RULES,
     _atan_ratio,
     _box_distance,
     _corner_weights,
-    _grid_cells,
     _grid_kernel,
     _log_r_plus,
+    far_quadrature,
 )
 from .kinds import K_COULOMB
 from .line import _line_kernel
@@ -192,21 +191,10 @@ def _grid_potential(params, pts, grids, want_jac):
         # they are kept only within ten cells (~1e-13 lost there); quadrature beyond.
         far = dist >= 10.0 * cell
         unit = np.zeros((S, M))
-        if far.any():
-            centres, charge = _grid_cells(base, spacing)
-            todo = far.copy()
-            for cells_away, order in _GRID_FAR_RULES:
-                s_i, m_i = np.nonzero(todo & (dist >= cells_away * cell))
-                if s_i.size == 0:
-                    continue
-                todo[s_i, m_i] = False
-                t, wq = np.polynomial.legendre.leggauss(order)
-                out = np.empty(s_i.size)
-                args = (lower[s_i], np.ascontiguousarray(pts[m_i]), centres, charge)
-                _call_compiled(
-                    _cell_potential_quadrature, K_COULOMB, *args, 0.5 * spacing, t, wq, out
-                )
-                unit[s_i, m_i] = out
+        for s_i, m_i, args in far_quadrature(far, dist, cell, base, spacing, lower, pts):
+            out = np.empty(s_i.size)
+            _call_compiled(_cell_potential_quadrature, K_COULOMB, *args, out)
+            unit[s_i, m_i] = out
         w = _corner_weights(base)
         idx = np.nonzero(w)
         wv = w[idx]
