@@ -497,6 +497,44 @@ class Structures:
         charges = np.repeat(self.charges_c[:, None], theta.shape[0], axis=1)
         return self.factor.solve(phi.T, charges).T
 
+    def responses(
+        self, scene, theta: np.ndarray, columns: np.ndarray | None, jacobian: bool = True
+    ) -> tuple[np.ndarray, np.ndarray | None]:
+        """Induced σ for every scenario, and its derivative for every kept θ column.
+
+        Returns
+        -------
+        sigma : (n_panels, n_scenarios) float
+            C/m².
+        d_sigma : (n_panels, n_scenarios * n_cols) float or None
+            ∂σ/∂θ = −A⁻¹ ∂φ_ext/∂θ, scenario-major (the floating charges are constants).
+        """
+        n_s = theta.shape[0]
+        n = self.factor.panels.n_panels
+        phi, jphi = scene.potential(theta, self.factor.panels.centroids_m, jacobian=jacobian)
+        charges = np.repeat(self.charges_c[:, None], n_s, axis=1)
+        sigma = self.factor.solve(phi.T, charges)
+        if not jacobian:
+            return sigma, None
+        cols = np.arange(scene.n_params) if columns is None else np.asarray(columns, dtype=int)
+        rhs = jphi[:, :, cols].transpose(1, 0, 2).reshape(n, n_s * cols.size)
+        return sigma, self.factor.solve(rhs)
+
+    def field_of(
+        self, points_m: np.ndarray, sigma: np.ndarray, d_sigma: np.ndarray | None
+    ) -> tuple[np.ndarray, np.ndarray | None]:
+        """Field ``(n_scenarios, n_points, 3)`` of the responses of :meth:`responses`, and its
+        Jacobian ``(n_scenarios, n_points, 3, n_cols)`` (exact panel integrals near panels)."""
+        n_pts, n = points_m.shape[0], self.factor.panels.n_panels
+        n_s = sigma.shape[1]
+        op = self.factor.field_operator(points_m).reshape(n_pts * 3, n)
+        field = (op @ sigma).reshape(n_pts, 3, n_s).transpose(2, 0, 1)
+        if d_sigma is None:
+            return field, None
+        n_cols = d_sigma.shape[1] // n_s
+        jac = (op @ d_sigma).reshape(n_pts, 3, n_s, n_cols).transpose(2, 0, 1, 3)
+        return field, np.ascontiguousarray(jac)
+
     def induced(
         self,
         scene,
@@ -521,22 +559,9 @@ class Structures:
         -------
         field_v_per_m : (n_scenarios, n_points, 3) float
         jacobian : (n_scenarios, n_points, 3, n_cols) float or None
-            ∂E_induced/∂θ = K A⁻¹ ∂(−φ_ext)/∂θ (the floating charges are constants).
+            ∂E_induced/∂θ = K A⁻¹ ∂(−φ_ext)/∂θ.
         """
-        n_s, n_pts = theta.shape[0], points_m.shape[0]
-        n = self.factor.panels.n_panels
-        phi, jphi = scene.potential(theta, self.factor.panels.centroids_m, jacobian=jacobian)
-        charges = np.repeat(self.charges_c[:, None], n_s, axis=1)
-        sigma = self.factor.solve(phi.T, charges)  # (n, S)
-        op = self.factor.field_operator(points_m).reshape(n_pts * 3, n)
-        field = (op @ sigma).reshape(n_pts, 3, n_s).transpose(2, 0, 1)
-        if not jacobian:
-            return field, None
-        cols = np.arange(scene.n_params) if columns is None else np.asarray(columns, dtype=int)
-        rhs = jphi[:, :, cols].transpose(1, 0, 2).reshape(n, n_s * cols.size)
-        d_sigma = self.factor.solve(rhs)
-        jac = (op @ d_sigma).reshape(n_pts, 3, n_s, cols.size).transpose(2, 0, 1, 3)
-        return field, np.ascontiguousarray(jac)
+        return self.field_of(points_m, *self.responses(scene, theta, columns, jacobian))
 
 
 __all__ = [

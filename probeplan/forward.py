@@ -56,12 +56,18 @@ class Scene:
         Height of the infinite grounded conducting plane in metres; ``None`` is free space.
     background : bool
         Whether θ ends with a uniform background field (3 components, V/m).
+    structures : probeplan.bem.Structures or None
+        Conducting structures, meshed and factored over the same plane: :meth:`evaluate` then
+        adds the field of their induced charge, and its Jacobian, to every scenario (no point
+        checks there: check points once with ``structures.check_points``).
     """
 
     sources: tuple[Source, ...]
     ground_z_m: float | None = None
     background: bool = False
+    structures: object = None
     _groups: tuple[_KindGroup, ...] = field(init=False, repr=False)
+    _memo: dict = field(init=False, repr=False, default_factory=dict)
 
     def __post_init__(self) -> None:
         srcs = _as_sources(self.sources)
@@ -84,6 +90,15 @@ class Scene:
                         f" the ground plane at z = {g:g} m; every source must lie above the ground."
                     )
         object.__setattr__(self, "_groups", self._build_groups())
+        if self.structures is not None:
+            if self.structures.ground_z_m != self.ground_z_m:
+                raise ValueError(
+                    "`structures` were solved over another ground plane "
+                    f"({self.structures.ground_z_m!r}) than the scene's ({self.ground_z_m!r})."
+                )
+            if srcs:
+                centres = np.array([s.center_m for s in srcs], dtype=float)
+                self.structures.check_points(centres, name="source centres")
 
     # -- parameter bookkeeping ---------------------------------------------------------------
 
@@ -172,6 +187,7 @@ class Scene:
         direct = (
             jacobian
             and g is None
+            and self.structures is None
             and every
             and len(self._groups) == 1
             and self._groups[0].contiguous
@@ -197,6 +213,9 @@ class Scene:
         if self.background:
             total += theta[:, None, -3:]
         if not jacobian:
+            if self.structures is not None:
+                sigma, _ = self._responses(theta, None)
+                total += self.structures.field_of(points_m, sigma, None)[0]
             return total, None
         cols = np.arange(self.n_params) if columns is None else np.asarray(columns, dtype=int)
         if direct:
@@ -207,7 +226,23 @@ class Scene:
             if not np.shares_memory(full, out):
                 out[...] = full
             full = out
+        if self.structures is not None:
+            e_ind, j_ind = self.structures.field_of(points_m, *self._responses(theta, cols))
+            total += e_ind
+            full += j_ind
         return total, full
+
+    def _responses(self, theta: np.ndarray, cols: np.ndarray | None):
+        """The structures' σ responses to ``theta`` (one solve per θ table and column set,
+        kept for the next calls: a plan evaluates the same scenarios at many point sets)."""
+        key = (theta.shape, theta.tobytes(), None if cols is None else np.asarray(cols).tobytes())
+        value = self._memo.get(key)
+        if value is None:  # (read once: safe when threads share the scene)
+            value = self.structures.responses(self, theta, cols, cols is not None)
+            if len(self._memo) >= 2:
+                self._memo.clear()
+            self._memo[key] = value
+        return value
 
     def potential(
         self, theta: np.ndarray, points_m: np.ndarray, *, jacobian: bool = True
@@ -485,22 +520,20 @@ def _field_jacobian(sources, points_m, ground_z_m, conductors, background, jacob
             raise ValueError(
                 f"`background_v_per_m` must be 3 finite numbers (V/m); got {background!r}."
             )
-    scene = Scene(_as_sources(sources), ground_z_m, background=bg is not None)
+    srcs = _as_sources(sources)
+    ground = Scene(srcs, ground_z_m).ground_z_m  # checks the plane and the sources over it
+    structures = _structures(conductors, ground)
+    scene = Scene(srcs, ground, background=bg is not None, structures=structures)
     pts = check_points(points_m, scene.ground_z_m)
-    theta = scene.nominal(() if bg is None else bg)[None, :]
-    e, jac = scene.evaluate(theta, pts, jacobian=jacobian)
-    structures = _structures(conductors, scene)
     if structures is not None:
         structures.check_points(pts, mounted=mounted)
-        e_ind, j_ind = structures.induced(scene, theta, pts, jacobian=jacobian)
-        e = e + e_ind
-        jac = None if jac is None else jac + j_ind
+    theta = scene.nominal(() if bg is None else bg)[None, :]
+    e, jac = scene.evaluate(theta, pts, jacobian=jacobian)
     return e[0], (jac[0] if jac is not None else None)
 
 
-def _structures(conductors, scene: Scene):
-    """The meshed, factored structures for ``scene``'s plane, or ``None`` without any; every
-    source is checked to lie outside them."""
+def _structures(conductors, ground_z_m: float | None):
+    """The meshed, factored structures over the plane, or ``None`` without any."""
     from .bem import Structures
     from .conductors import Conductor
 
@@ -512,11 +545,7 @@ def _structures(conductors, scene: Scene):
             raise ValueError(f"`conductors[{i}]` must be a Conductor; got {type(c).__name__}.")
     if not conductors:
         return None
-    structures = Structures.build(conductors, scene.ground_z_m)
-    if scene.sources:
-        centres = np.array([s.center_m for s in scene.sources], dtype=float)
-        structures.check_points(centres, name="source centres")
-    return structures
+    return Structures.build(conductors, ground_z_m)
 
 
 __all__ = ["BACKGROUND_PARAMS", "Scene", "check_points", "field", "field_jacobian"]

@@ -376,3 +376,36 @@ def test_factorisation_is_cached_and_a_corrupt_file_is_rebuilt():
     (bem.cache_dir() / f"{key}.npz").write_bytes(b"garbage")
     rebuilt = bem.Structures.build([sphere], 0.0)
     np.testing.assert_array_equal(first.factor.lu, rebuilt.factor.lu)
+
+
+def test_scene_with_structures_batches_scenarios_and_columns():
+    # The batched path (Scene.evaluate, as the planner calls it) against one pp.field call per
+    # scenario, and a column subset against the full Jacobian.
+    src = (pp.PointCharge(1e-9, (1.5, 0.0, 1.0)), pp.SphereCharge(-2e-9, (-1.5, 0.5, 2.0), 0.2))
+    structures = bem.Structures.build([_BOX], 0.0)
+    scene = Scene(src, 0.0, background=True, structures=structures)
+    rng = np.random.default_rng(3)
+    theta = scene.nominal((0.0, 0.0, -100.0))[None].repeat(3, axis=0)
+    theta[:, [0, 4]] *= rng.uniform(0.5, 2.0, size=(3, 2))
+    pts = np.array([[0.0, 1.2, 0.5], [1.0, -1.0, 1.5]])
+    e, jac = scene.evaluate(theta, pts)
+    for k in range(3):
+        moved = [src[0].with_params(theta[k, :4]), src[1].with_params(theta[k, 4:9])]
+        one = pp.field(moved, pts, 0.0, conductors=[_BOX], background_v_per_m=theta[k, -3:])
+        np.testing.assert_allclose(e[k], one, rtol=1e-10, atol=1e-12)
+    cols = np.array([1, 5, 9, 11])
+    _, sub = scene.evaluate(theta, pts, columns=cols)
+    np.testing.assert_allclose(sub, jac[..., cols], rtol=1e-10, atol=1e-12)
+    e_only, none = scene.evaluate(theta, pts, jacobian=False)
+    assert none is None
+    np.testing.assert_allclose(e_only, e, rtol=1e-12)
+
+
+def test_scene_refuses_a_source_inside_its_structures():
+    structures = bem.Structures.build([_BOX], 0.0)
+    with pytest.raises(InputError, match="source centres` row 1 .* inside conductor 0"):
+        Scene(
+            (pp.PointCharge(1e-9, (3, 0, 1)), pp.PointCharge(1e-9, (0, 0, 0.5))),
+            0.0,
+            structures=structures,
+        )
