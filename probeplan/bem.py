@@ -353,13 +353,24 @@ class Factorization:
         return K_COULOMB * _operator(points_m, self.panels, self.ground_z_m, False)
 
 
-def _system(panels: Panels, ground_z_m: float | None, floating: tuple[bool, ...]):
-    pot = _operator(panels.centroids_m, panels, ground_z_m, False)
+#: Rows of the panel matrix assembled between two progress reports.
+_PROGRESS_ROWS = 256
+
+
+def _system(panels: Panels, ground_z_m, floating: tuple[bool, ...], progress=None):
+    """The collocation matrix (see :class:`Factorization`), assembled in blocks of rows so
+    that ``progress(done, total)`` can follow it (the LU is one more step)."""
     float_ids = [k for k, f in enumerate(floating) if f]
     n, nf = panels.n_panels, len(float_ids)
     length = float(np.median(panels.sizes_m))
     a = np.zeros((n + nf, n + nf))
-    a[:n, :n] = pot
+    centroids = panels.centroids_m
+    steps = -(-n // _PROGRESS_ROWS) + 1
+    for k, start in enumerate(range(0, n, _PROGRESS_ROWS)):  # blocks, not panels
+        stop = min(start + _PROGRESS_ROWS, n)
+        a[start:stop, :n] = _operator(centroids[start:stop], panels, ground_z_m, False)
+        if progress is not None:
+            progress(k + 1, steps)
     for col, k in enumerate(float_ids):
         mine = panels.owner == k
         a[:n][mine, n + col] = -1.0
@@ -390,6 +401,7 @@ def factorize(
     floating: tuple[bool, ...],
     *,
     use_cache: bool = True,
+    progress=None,
 ) -> Factorization:
     """Assemble and LU-factor the collocation system, or load it from the disk cache.
 
@@ -404,6 +416,9 @@ def factorize(
         Read and write ``cache_dir()/<hash>.npz``. Writing goes to a temporary file in the same
         folder, renamed into place, so concurrent writers never leave a half-written file; an
         unreadable cache file is ignored and rebuilt.
+    progress : callable or None
+        ``progress(done, total)`` after each block of assembled rows and after the LU (not
+        called when the factors come from the cache).
     """
     path = cache_dir() / f"{_key(panels, ground_z_m, floating)}.npz" if use_cache else None
     if path is not None and path.exists():
@@ -415,8 +430,11 @@ def factorize(
                 return Factorization(panels, ground_z_m, floating, lu, piv, length)
         except (OSError, ValueError, KeyError):
             pass
-    a, length = _system(panels, ground_z_m, floating)
+    a, length = _system(panels, ground_z_m, floating, progress)
     lu, piv = linalg.lu_factor(a, overwrite_a=True, check_finite=False)
+    if progress is not None:
+        steps = -(-panels.n_panels // _PROGRESS_ROWS) + 1
+        progress(steps, steps)
     if path is not None:
         _write_atomic(path, lu=lu, piv=piv, length_m=np.float64(length))
     return Factorization(panels, ground_z_m, floating, lu, piv, length)
@@ -464,8 +482,11 @@ class Structures:
     factor: Factorization
 
     @classmethod
-    def build(cls, conductors, ground_z_m: float | None = None, *, use_cache: bool = True):
-        """Mesh every conductor, assemble and factor (or load the cached factors)."""
+    def build(
+        cls, conductors, ground_z_m: float | None = None, *, use_cache: bool = True, progress=None
+    ):
+        """Mesh every conductor, assemble and factor (or load the cached factors);
+        ``progress(done, total)`` follows the assembly (see :func:`factorize`)."""
         conductors = tuple(conductors)
         surfaces = tuple(c.triangles(ground_z_m) for c in conductors)
         owner = np.concatenate([np.full(len(s), k) for k, s in enumerate(surfaces)])
@@ -475,7 +496,7 @@ class Structures:
             conductors,
             ground_z_m,
             surfaces,
-            factorize(panels, ground_z_m, floating, use_cache=use_cache),
+            factorize(panels, ground_z_m, floating, use_cache=use_cache, progress=progress),
         )
 
     @property

@@ -409,3 +409,11 @@ def test_scene_refuses_a_source_inside_its_structures():
             0.0,
             structures=structures,
         )
+
+
+def test_progress_follows_the_assembly_and_the_lu():
+    calls = []
+    sphere = pp.Conductor.sphere((0, 0, 3.0), 1.0, mesh_size_m=0.25)
+    bem.Structures.build([sphere], 0.0, use_cache=False, progress=lambda d, t: calls.append((d, t)))
+    done = [d for d, _ in calls]
+    assert done == sorted(done) and calls[-1][0] == calls[-1][1] and len(calls) >= 2
