@@ -43,7 +43,7 @@ import numba
 import numpy as np
 from scipy import linalg
 
-from .conductors import check_points
+from .conductors import check_overlaps, check_points
 from .sources import K_COULOMB
 
 #: Bumped whenever the matrix changes meaning, so older cache files are not read.
@@ -489,6 +489,7 @@ class Structures:
         ``progress(done, total)`` follows the assembly (see :func:`factorize`)."""
         conductors = tuple(conductors)
         surfaces = tuple(c.triangles(ground_z_m) for c in conductors)
+        check_overlaps(conductors, surfaces, ground_z_m)
         owner = np.concatenate([np.full(len(s), k) for k, s in enumerate(surfaces)])
         panels = Panels(np.ascontiguousarray(np.concatenate(surfaces)), owner)
         floating = tuple(c.floating for c in conductors)

@@ -102,6 +102,11 @@ class Conductor:
             raise InputError(f"`charge_c` must be finite; got {self.charge_c!r}.")
         object.__setattr__(self, "charge_c", charge)
         object.__setattr__(self, "floating", bool(self.floating))
+        if charge != 0.0 and not self.floating:
+            raise InputError(
+                f"`charge_c` = {charge:g} C needs `floating = true`: a grounded structure's "
+                "charge follows from the field (it is at 0 V)."
+            )
         if self.mesh_size_m is not None:
             object.__setattr__(self, "mesh_size_m", _positive(self.mesh_size_m, "mesh_size_m"))
 
@@ -493,7 +498,7 @@ def _split_to_size(tris: np.ndarray, size: float) -> np.ndarray:
 @numba.njit(cache=True, nogil=True, parallel=True)
 def _winding(points, tris):
     """Σ solid angles / 4π of the oriented panels seen from each point (van Oosterom &
-    Strackee 1983): ±1 inside a closed surface, 0 outside."""
+    Strackee 1983): ±1 inside a closed surface, 0 outside, ½ on a face."""
     M = points.shape[0]
     out = np.empty(M)
     for i in numba.prange(M):
@@ -514,6 +519,8 @@ def _winding(points, tris):
             den += (r[0, 0] * r[1, 0] + r[0, 1] * r[1, 1] + r[0, 2] * r[1, 2]) * n[2]
             den += (r[0, 0] * r[2, 0] + r[0, 1] * r[2, 1] + r[0, 2] * r[2, 2]) * n[1]
             den += (r[1, 0] * r[2, 0] + r[1, 1] * r[2, 1] + r[1, 2] * r[2, 2]) * n[0]
+            if abs(num) <= 1e-12 * n[0] * n[1] * n[2]:
+                continue  # in the panel's plane: on it, ±2π by the sign of a zero; count 0
             total += 2.0 * math.atan2(num, den)
         out[i] = total / (4.0 * math.pi)
     return out
@@ -628,8 +635,36 @@ def check_points(
             )
 
 
+def check_overlaps(conductors, surfaces, ground_z_m: float | None) -> None:
+    """Refuse structures that cut into one another: a vertex of one inside another solid
+    structure, or a structure partly inside and partly outside an enclosure. Touching (a mast
+    on a roof) is allowed.
+
+    Raises
+    ------
+    InputError
+        Naming both structures.
+    """
+    closed = [np.ascontiguousarray(closed_surface(t, ground_z_m)) for t in surfaces]
+    for i, (a, ta) in enumerate(zip(conductors, surfaces, strict=True)):
+        vertices = np.ascontiguousarray(np.unique(ta.reshape(-1, 3), axis=0))
+        for j, b in enumerate(conductors):
+            if i == j:
+                continue
+            wind = np.abs(_winding(vertices, closed[j]))
+            # 1 inside, 0 outside, fractions on the surface (touching is allowed)
+            inside, outside = wind > 0.9, wind < 0.1
+            crossing = inside.any() if b.solid else (inside.any() and outside.any())
+            if crossing:
+                raise InputError(
+                    f"conductor {i} ({a.label}) and conductor {j} ({b.label}) overlap; "
+                    "structures must not cut into each other (make one mesh of both, or move "
+                    "them apart)."
+                )
+
+
 def _fmt(p: np.ndarray) -> str:
     return f"({p[0]:g}, {p[1]:g}, {p[2]:g})"
 
 
-__all__ = ["KINDS", "Conductor", "check_points", "closed_surface"]
+__all__ = ["KINDS", "Conductor", "check_overlaps", "check_points", "closed_surface"]

@@ -417,3 +417,21 @@ def test_progress_follows_the_assembly_and_the_lu():
     bem.Structures.build([sphere], 0.0, use_cache=False, progress=lambda d, t: calls.append((d, t)))
     done = [d for d, _ in calls]
     assert done == sorted(done) and calls[-1][0] == calls[-1][1] and len(calls) >= 2
+
+
+def test_overlapping_structures_are_refused_and_touching_ones_allowed():
+    hall = pp.Conductor.box((0, 0, 0), (4, 4, 3), name="hall", mesh_size_m=1.0)
+    tank = pp.Conductor.cylinder((4.0, 2.0, 0), 1.0, 2.0, name="tank", mesh_size_m=0.6)
+    with pytest.raises(InputError, match=r"conductor 0 \(box 'hall'\) and conductor 1 .* overlap"):
+        bem.Structures.build([hall, tank], 0.0)
+    mast = pp.Conductor.cylinder((2.0, 2.0, 3.0), 0.1, 2.0, mesh_size_m=0.1)  # on the roof
+    bem.Structures.build([hall, mast], 0.0, use_cache=False)
+    room = pp.Conductor.enclosure((-1, -1, 0), (6, 6, 5), mesh_size_m=1.5)
+    bem.Structures.build([room, hall], 0.0, use_cache=False)  # a building inside a hall
+    with pytest.raises(InputError, match="overlap"):
+        bem.Structures.build([pp.Conductor.enclosure((1, 1, 0), (6, 6, 5)), hall], 0.0)
+
+
+def test_a_grounded_structure_takes_no_charge_argument():
+    with pytest.raises(InputError, match="`charge_c` = 1e-09 C needs `floating = true`"):
+        pp.Conductor.sphere((0, 0, 1), 0.5, charge_c=1e-9)
