@@ -30,6 +30,8 @@ import numpy as np
 from .errors import InputError
 
 KINDS: tuple[str, ...] = ("sphere", "spheroid", "box", "cylinder", "enclosure", "mesh")
+#: Which part of a structure's surface carries meters (see Conductor.surface_points).
+FACES: tuple[str, ...] = ("top", "walls", "all")
 
 # Panels on a smooth body with the automatic size; edges get a third of the size, and sizes
 # grow away from an edge by this fraction of the distance.
@@ -181,6 +183,38 @@ class Conductor:
         else:
             tris = _mesh_triangles(self, g)
         return tris
+
+    def surface_points(
+        self, ground_z_m: float | None, face: str, standoff_m: float, spacing_m: float
+    ) -> np.ndarray:
+        """Mounting points ``standoff_m`` off the surface, ``(n, 3)`` float, m.
+
+        Parameters
+        ----------
+        face : str
+            One of :data:`FACES`: ``"top"`` (panels facing up), ``"walls"`` (facing
+            sideways), ``"all"``; for an enclosure the walls' and ceiling's inner side (meters
+            inside the room), for every other kind the outer side.
+        standoff_m : float
+            Distance off the surface along its normal, m (> 0).
+        spacing_m : float
+            About one point per ``spacing_m`` square: the panel centroids, thinned to one per
+            cell of a grid of that size.
+        """
+        if face not in FACES:
+            raise InputError(f"`face` must be one of {', '.join(FACES)}; got {face!r}.")
+        tris = self.triangles(ground_z_m)
+        n = np.cross(tris[:, 1] - tris[:, 0], tris[:, 2] - tris[:, 0])
+        n /= np.linalg.norm(n, axis=1)[:, None]
+        if self.kind == "enclosure":
+            n = -n  # meters inside the room
+        keep = {"top": n[:, 2] > 0.7, "walls": np.abs(n[:, 2]) < 0.3, "all": np.ones(len(n), bool)}
+        pts = tris.mean(axis=1)[keep[face]] + standoff_m * n[keep[face]]
+        if pts.size == 0:
+            return pts.reshape(0, 3)
+        cells = np.floor(pts / spacing_m).astype(np.int64)
+        _, first = np.unique(cells, axis=0, return_index=True)
+        return pts[np.sort(first)]
 
     def key(self) -> bytes:
         """Bytes that identify the structure's geometry and settings (for the cache hash)."""
@@ -667,4 +701,4 @@ def _fmt(p: np.ndarray) -> str:
     return f"({p[0]:g}, {p[1]:g}, {p[2]:g})"
 
 
-__all__ = ["KINDS", "Conductor", "check_overlaps", "check_points", "closed_surface"]
+__all__ = ["FACES", "KINDS", "Conductor", "check_overlaps", "check_points", "closed_surface"]

@@ -435,3 +435,20 @@ def test_overlapping_structures_are_refused_and_touching_ones_allowed():
 def test_a_grounded_structure_takes_no_charge_argument():
     with pytest.raises(InputError, match="`charge_c` = 1e-09 C needs `floating = true`"):
         pp.Conductor.sphere((0, 0, 1), 0.5, charge_c=1e-9)
+
+
+def test_mounting_points_sit_off_the_chosen_faces():
+    tank = pp.Conductor.cylinder((1.0, 2.0, 0.0), 2.0, 3.0, mesh_size_m=0.5)
+    top = tank.surface_points(0.0, "top", 0.1, 0.5)
+    np.testing.assert_allclose(top[:, 2], 3.1, atol=1e-9)
+    assert np.all(np.hypot(top[:, 0] - 1.0, top[:, 1] - 2.0) < 2.0)
+    walls = tank.surface_points(0.0, "walls", 0.2, 0.5)
+    r = np.hypot(walls[:, 0] - 1.0, walls[:, 1] - 2.0)
+    assert np.all((r > 2.1) & (r < 2.25)) and np.all((walls[:, 2] > 0) & (walls[:, 2] < 3))
+    room = pp.Conductor.enclosure((0, 0, 0), (4, 4, 3), mesh_size_m=0.8)
+    ceiling = room.surface_points(0.0, "top", 0.1, 1.0)
+    np.testing.assert_allclose(ceiling[:, 2], 2.9, atol=1e-9)  # inside the room
+    structures = bem.Structures.build([tank], 0.0)
+    structures.check_points(top, mounted=np.ones(len(top), bool))  # mounted: accepted
+    with pytest.raises(InputError, match="closer than its panel size"):
+        structures.check_points(top)
