@@ -536,25 +536,24 @@ def _winding(points, tris):
     M = points.shape[0]
     out = np.empty(M)
     for i in numba.prange(M):
+        px, py, pz = points[i, 0], points[i, 1], points[i, 2]
         total = 0.0
         for j in range(tris.shape[0]):
-            r = np.empty((3, 3))
-            n = np.empty(3)
-            for a in range(3):
-                for b in range(3):
-                    r[a, b] = tris[j, a, b] - points[i, b]
-                n[a] = math.sqrt(r[a, 0] ** 2 + r[a, 1] ** 2 + r[a, 2] ** 2)
-            num = (
-                r[0, 0] * (r[1, 1] * r[2, 2] - r[1, 2] * r[2, 1])
-                + r[0, 1] * (r[1, 2] * r[2, 0] - r[1, 0] * r[2, 2])
-                + r[0, 2] * (r[1, 0] * r[2, 1] - r[1, 1] * r[2, 0])
-            )
-            den = n[0] * n[1] * n[2]
-            den += (r[0, 0] * r[1, 0] + r[0, 1] * r[1, 1] + r[0, 2] * r[1, 2]) * n[2]
-            den += (r[0, 0] * r[2, 0] + r[0, 1] * r[2, 1] + r[0, 2] * r[2, 2]) * n[1]
-            den += (r[1, 0] * r[2, 0] + r[1, 1] * r[2, 1] + r[1, 2] * r[2, 2]) * n[0]
-            if abs(num) <= 1e-12 * n[0] * n[1] * n[2]:
+            ax, ay, az = tris[j, 0, 0] - px, tris[j, 0, 1] - py, tris[j, 0, 2] - pz
+            bx, by, bz = tris[j, 1, 0] - px, tris[j, 1, 1] - py, tris[j, 1, 2] - pz
+            cx, cy, cz = tris[j, 2, 0] - px, tris[j, 2, 1] - py, tris[j, 2, 2] - pz
+            la = math.sqrt(ax * ax + ay * ay + az * az)
+            lb = math.sqrt(bx * bx + by * by + bz * bz)
+            lc = math.sqrt(cx * cx + cy * cy + cz * cz)
+            num = ax * (by * cz - bz * cy) + ay * (bz * cx - bx * cz) + az * (bx * cy - by * cx)
+            if abs(num) <= 1e-12 * la * lb * lc:
                 continue  # in the panel's plane: on it, ±2π by the sign of a zero; count 0
+            den = (
+                la * lb * lc
+                + (ax * bx + ay * by + az * bz) * lc
+                + (ax * cx + ay * cy + az * cz) * lb
+                + (bx * cx + by * cy + bz * cz) * la
+            )
             total += 2.0 * math.atan2(num, den)
         out[i] = total / (4.0 * math.pi)
     return out
@@ -589,20 +588,27 @@ def _closest_on_triangle(p, a, b, c):
 
 
 @numba.njit(cache=True, nogil=True, parallel=True)
-def _nearest_panel(points, tris):
-    """Distance from each point to the surface, m, and the index of the nearest panel."""
+def _too_close(points, tris, centres, reach, sizes):
+    """For each point, a panel nearer to it than that panel's size (−1: none) and the
+    distance, m. ``reach`` (n,) is each panel's circumradius about ``centres``: a panel whose
+    bounding sphere is a size away is skipped without the exact distance."""
     M = points.shape[0]
-    dist = np.empty(M)
-    which = np.empty(M, dtype=np.int64)
+    which = np.full(M, -1, dtype=np.int64)
+    dist = np.full(M, np.inf)
     for i in numba.prange(M):
-        best, arg = np.inf, 0
+        p = points[i]
         for j in range(tris.shape[0]):
-            q = _closest_on_triangle(points[i], tris[j, 0], tris[j, 1], tris[j, 2])
-            d = math.sqrt(np.sum((points[i] - q) ** 2))
-            if d < best:
-                best, arg = d, j
-        dist[i], which[i] = best, arg
-    return dist, which
+            dx = p[0] - centres[j, 0]
+            dy = p[1] - centres[j, 1]
+            dz = p[2] - centres[j, 2]
+            lim = reach[j] + sizes[j]
+            if dx * dx + dy * dy + dz * dz >= lim * lim:
+                continue
+            q = _closest_on_triangle(p, tris[j, 0], tris[j, 1], tris[j, 2])
+            d = math.sqrt((p[0] - q[0]) ** 2 + (p[1] - q[1]) ** 2 + (p[2] - q[2]) ** 2)
+            if d < sizes[j] and d < dist[i]:
+                dist[i], which[i] = d, j
+    return which, dist
 
 
 def closed_surface(tris: np.ndarray, ground_z_m: float | None) -> np.ndarray:
@@ -654,9 +660,11 @@ def check_points(
                     f"`{name}` row {i} at {_fmt(pts[i])} m lies inside conductor {k} "
                     f"({cond.label}), where the field is zero; move it outside."
                 )
-        dist, which = _nearest_panel(pts, tris)
         sizes = np.linalg.norm(np.roll(tris, -1, axis=1) - tris, axis=2).max(axis=1)
-        close = dist < sizes[which]
+        centres = tris.mean(axis=1)
+        reach = np.linalg.norm(tris - centres[:, None], axis=2).max(axis=1)
+        which, dist = _too_close(pts, tris, centres, reach, sizes)
+        close = which >= 0
         if mounted is not None:
             close &= ~np.asarray(mounted, dtype=bool)
         if close.any():
