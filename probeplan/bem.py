@@ -420,13 +420,18 @@ def factorize(
         ``progress(done, total)`` after each block of assembled rows and after the LU (not
         called when the factors come from the cache).
     """
-    path = cache_dir() / f"{_key(panels, ground_z_m, floating)}.npz" if use_cache else None
+    key = _key(panels, ground_z_m, floating)
+    if use_cache and key in _RECENT:  # this process solved it already (a budget's options)
+        lu, piv, length = _RECENT[key]
+        return Factorization(panels, ground_z_m, floating, lu, piv, length)
+    path = cache_dir() / f"{key}.npz" if use_cache else None
     if path is not None and path.exists():
         try:
             with np.load(path) as f:
                 lu, piv, length = f["lu"], f["piv"], float(f["length_m"])
             n = panels.n_panels + sum(floating)
             if lu.shape == (n, n):
+                _remember(key, lu, piv, length)
                 return Factorization(panels, ground_z_m, floating, lu, piv, length)
         except (OSError, ValueError, KeyError):
             pass
@@ -437,7 +442,19 @@ def factorize(
         progress(steps, steps)
     if path is not None:
         _write_atomic(path, lu=lu, piv=piv, length_m=np.float64(length))
+        _remember(key, lu, piv, length)
     return Factorization(panels, ground_z_m, floating, lu, piv, length)
+
+
+# The last factorisations of this process, by key: a budget builds one problem per option.
+_RECENT: dict = {}
+
+
+def _remember(key: str, lu: np.ndarray, piv: np.ndarray, length: float) -> None:
+    if len(_RECENT) >= 2:
+        _RECENT.clear()
+    lu.setflags(write=False)
+    _RECENT[key] = (lu, piv, length)
 
 
 def _write_atomic(path: Path, **arrays) -> None:
