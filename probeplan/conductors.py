@@ -102,6 +102,7 @@ class Conductor:
         charge = float(self.charge_c)
         if not math.isfinite(charge):
             raise InputError(f"`charge_c` must be finite; got {self.charge_c!r}.")
+        object.__setattr__(self, "geometry", tuple(float(v) for v in self.geometry))
         object.__setattr__(self, "charge_c", charge)
         object.__setattr__(self, "floating", bool(self.floating))
         if charge != 0.0 and not self.floating:
@@ -660,9 +661,7 @@ def check_points(
                     f"`{name}` row {i} at {_fmt(pts[i])} m lies inside conductor {k} "
                     f"({cond.label}), where the field is zero; move it outside."
                 )
-        sizes = np.linalg.norm(np.roll(tris, -1, axis=1) - tris, axis=2).max(axis=1)
-        centres = tris.mean(axis=1)
-        reach = np.linalg.norm(tris - centres[:, None], axis=2).max(axis=1)
+        centres, reach, sizes = _panel_bounds(tris)
         which, dist = _too_close(pts, tris, centres, reach, sizes)
         close = which >= 0
         if mounted is not None:
@@ -675,6 +674,48 @@ def check_points(
                 f"({sizes[which[i]]:.3g} m), where the computed field is not accurate; "
                 "move it away or set a smaller `mesh_size_m`."
             )
+
+
+@dataclass(frozen=True, eq=False)
+class Obstacles:
+    """Structures as obstacles to mounting: a point inside a solid structure, or nearer its
+    surface than the panel size there, is blocked (the site drops such candidates).
+
+    Parameters
+    ----------
+    conductors : tuple of Conductor
+    ground_z_m : float or None
+    """
+
+    conductors: tuple
+    ground_z_m: float | None
+    _surfaces: tuple = field(init=False, repr=False)
+
+    def __post_init__(self) -> None:
+        g = self.ground_z_m
+        surfaces = tuple(np.ascontiguousarray(c.triangles(g)) for c in self.conductors)
+        object.__setattr__(self, "_surfaces", surfaces)
+
+    def blocked(self, points_m: np.ndarray) -> np.ndarray:
+        """``(n_points,) bool``: inside a solid structure or too near a surface."""
+        pts = np.ascontiguousarray(points_m, dtype=float).reshape(-1, 3)
+        out = np.zeros(len(pts), dtype=bool)
+        if len(pts) == 0:
+            return out
+        for cond, tris in zip(self.conductors, self._surfaces, strict=True):
+            if cond.solid:
+                closed = np.ascontiguousarray(closed_surface(tris, self.ground_z_m))
+                out |= np.abs(_winding(pts, closed)) > 0.5
+            out |= _too_close(pts, tris, *_panel_bounds(tris))[0] >= 0
+        return out
+
+
+def _panel_bounds(tris: np.ndarray):
+    """Centres, circumradii and sizes (longest edge) of panels, for :func:`_too_close`."""
+    sizes = np.linalg.norm(np.roll(tris, -1, axis=1) - tris, axis=2).max(axis=1)
+    centres = tris.mean(axis=1)
+    reach = np.linalg.norm(tris - centres[:, None], axis=2).max(axis=1)
+    return centres, reach, sizes
 
 
 def check_overlaps(conductors, surfaces, ground_z_m: float | None) -> None:
@@ -709,4 +750,12 @@ def _fmt(p: np.ndarray) -> str:
     return f"({p[0]:g}, {p[1]:g}, {p[2]:g})"
 
 
-__all__ = ["FACES", "KINDS", "Conductor", "check_overlaps", "check_points", "closed_surface"]
+__all__ = [
+    "FACES",
+    "KINDS",
+    "Conductor",
+    "Obstacles",
+    "check_overlaps",
+    "check_points",
+    "closed_surface",
+]

@@ -138,6 +138,11 @@ class Score:
         before meters were recorded one by one.
     grade : tuple of n_probes str or None
         Each meter's grade ("" for the noise of ``[probes]`` itself); None as for ``axes``.
+    enhancement : (n_probes,) float or None
+        With conducting structures: each meter's computed reading over the undisturbed one at
+        the same place (no structures), nominal scenario, as the norm over its axes (1 where
+        the undisturbed reading is zero); None without structures. The hand ``gain`` is a
+        calibration factor on top of it.
     """
 
     positions_m: np.ndarray
@@ -158,6 +163,7 @@ class Score:
     failure_values: np.ndarray | None = None
     axes: np.ndarray | None = None
     grade: tuple[str, ...] | None = None
+    enhancement: np.ndarray | None = None
 
     def new_meters(self) -> tuple[np.ndarray | None, tuple[str, ...] | None]:
         """``(axes, grades)`` of the new probes, as :meth:`Problem.meters` takes them, to score,

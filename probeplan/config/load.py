@@ -26,6 +26,7 @@ from .reader import Checker, Table, syntax_message
 from .regions import check_feasible, parse_regions
 from .render import mapping_to_toml
 from .sources import parse_sources
+from .structures import parse_structures
 from .vocab import CAUTIONS, STORM_HEIGHT_M
 
 ROOT_KEYS = (
@@ -38,6 +39,7 @@ ROOT_KEYS = (
     "region",
     "keepout",
     "source",
+    "structure",
     "background",
     "design",
     "grade",
@@ -154,6 +156,7 @@ def _check(data: dict, text: str, path: str, base: Path) -> Config:
     regions = parse_regions(root, "region", ground_z_m) + mapped.regions
     keepouts = parse_regions(root, "keepout", ground_z_m) + mapped.keepouts
     sources = parse_sources(root, ground_z_m, base, frame)
+    structures = parse_structures(root, ground_z_m, base, sources)
     background = parse_background(root)
     design = parse_design(root)
     check_estimates(ck, sources, background, design)
@@ -177,6 +180,7 @@ def _check(data: dict, text: str, path: str, base: Path) -> Config:
         regions=regions,
         keepouts=keepouts,
         sources=sources,
+        structures=structures,
         background=background,
         design=design,
         grades=grades,

@@ -216,6 +216,8 @@ class Config:
     regions, keepouts : tuple of Region
     sources : tuple of SourceSpec
     background : BackgroundSpec or None
+    structures : tuple of probeplan.Conductor
+        Conducting structures (``[[structure]]``), solved for by boundary elements.
     design : DesignSpec
     grades : tuple of Grade
     budget : BudgetSpec or None
@@ -245,6 +247,7 @@ class Config:
     storm_watch: bool
     caution: str = "general"
     frame: Frame | None = None
+    structures: tuple = ()
 
     @property
     def installed_m(self) -> np.ndarray:
@@ -253,10 +256,17 @@ class Config:
         return np.array(pos, dtype=float).reshape(len(pos), 3)
 
     def site(self) -> Site:
-        """The mounting rules: regions, keep-outs, spacing and installed probes."""
+        """The mounting rules: regions, keep-outs, spacing, installed probes, and the
+        structures as obstacles (no meter inside one or nearer it than its panel size)."""
+        obstacles = None
+        if self.structures:
+            from ..conductors import Obstacles
+
+            obstacles = Obstacles(self.structures, self.ground_z_m)
         return Site(
             self.regions,
             self.keepouts,
             min_spacing_m=self.probes.min_spacing_m,
             installed_m=self.installed_m,
+            obstacles=obstacles,
         )

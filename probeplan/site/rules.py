@@ -51,6 +51,9 @@ class Site:
         Least 3-D distance between any two probes, installed ones included, m, >= 0.
     installed_m : (n_installed, 3) float
         Probes already mounted: fixed, counted in every spacing check, m.
+    obstacles : object or None
+        Conducting structures (:class:`probeplan.conductors.Obstacles`): a position inside one,
+        or nearer its surface than its panel size, is not allowed (as in a keep-out).
 
     Notes
     -----
@@ -62,6 +65,7 @@ class Site:
     keepouts: tuple[Region, ...] = ()
     min_spacing_m: float = 0.0
     installed_m: np.ndarray = field(default_factory=lambda: np.empty((0, 3)))
+    obstacles: object = None
 
     def __post_init__(self) -> None:
         regions = tuple(self.regions) if not isinstance(self.regions, Region) else (self.regions,)
@@ -128,6 +132,8 @@ class Site:
         free = np.ones(len(p), dtype=bool)
         for k in self.keepouts:
             free &= ~k._contains(p)
+        if self.obstacles is not None:
+            free &= ~self.obstacles.blocked(p)
         return free
 
     def _clear_of_installed(self, p: np.ndarray) -> np.ndarray:

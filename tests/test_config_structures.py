@@ -1,0 +1,90 @@
+"""``[[structure]]`` tables: parsed into conductors, checked at the boundary, and carried into
+the planning problem (field, Jacobian and mounting rules)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from sites import make_config
+
+import probeplan as pp
+from probeplan.errors import InputError
+from probeplan.problem import build_problem
+
+# The base test site: flush ground meters over a 4 km square, a charge 3 km up (tests/sites.py).
+TANK = {"kind": "cylinder", "base_m": [0.0, 0.0, 0.0], "radius_m": 200.0, "height_m": 400.0}
+
+
+def test_every_kind_parses_with_its_keys(tmp_path):
+    import trimesh
+
+    box = trimesh.creation.box(extents=(100.0, 100.0, 100.0))
+    box.apply_translation((-1500.0, 1500.0, 50.0))
+    box.export(tmp_path / "shed.stl")
+    (tmp_path / "site.toml").write_text("")
+    structures = [
+        {**TANK, "name": "tank"},
+        {"kind": "box", "min_m": [500, 500, 0], "max_m": [700, 600, 80]},
+        {"kind": "sphere", "center_m": [-800, 0, 0], "radius_m": 60.0},
+        {"kind": "spheroid", "center_m": [900, -900, 0], "semi_axes_m": [5, 5, 150]},
+        {"kind": "mesh", "path": "shed.stl", "floating": True, "charge_c": 1e-6},
+    ]
+    cfg = make_config(str(tmp_path / "site.toml"), structure=structures)
+    kinds = [c.kind for c in cfg.structures]
+    assert kinds == ["cylinder", "box", "sphere", "spheroid", "mesh"]
+    assert cfg.structures[0].name == "tank" and cfg.structures[1].name == "structure[1]"
+    assert cfg.structures[4].floating and cfg.structures[4].charge_c == 1e-6
+
+
+@pytest.mark.parametrize(
+    "structure, match",
+    [
+        ({**TANK, "min_m": [0, 0, 0]}, r"`min_m` does not apply to a cylinder"),
+        ({**TANK, "charge_c": 1e-6}, r"`structure\[0\].charge_c` needs `structure\[0\].floating"),
+        ({**TANK, "kind": "tower"}, r"`structure\[0\].kind` must be one of"),
+        ({**TANK, "radius_m": -1.0}, r"`structure\[0\].radius_m`"),
+        ({"kind": "mesh", "path": "nowhere.stl"}, r"no such mesh file"),
+    ],
+)
+def test_bad_structure_tables_name_the_key(structure, match):
+    with pytest.raises(InputError, match=match):
+        make_config("<t>", structure=[structure])
+
+
+def test_overlapping_structures_and_a_charge_inside_are_refused():
+    hall = {"kind": "box", "min_m": [100, -100, 0], "max_m": [400, 100, 150]}
+    with pytest.raises(InputError, match="overlap"):
+        make_config("<t>", structure=[TANK, hall])
+    inside = {"kind": "sphere", "center_m": [0, 0, 3000.0], "radius_m": 300.0}
+    with pytest.raises(InputError, match=r"source\[0\] \(point\) .* inside conductor 0"):
+        make_config("<t>", structure=[inside])
+
+
+def test_an_unreadable_mesh_file_is_named(tmp_path):
+    bad = tmp_path / "broken.stl"
+    bad.write_bytes(b"not a mesh")
+    with pytest.raises(InputError, match="broken.stl"):
+        make_config(str(tmp_path / "site.toml"), structure=[{"kind": "mesh", "path": str(bad)}])
+
+
+def test_the_problem_sees_the_structures():
+    # The planner's field is the forward model's with the same conductor (pp.field), and the
+    # candidates keep out of the tank.
+    cfg = make_config("<t>", structure=[TANK])
+    problem = build_problem(cfg)
+    pts = np.array([[300.0, 0.0, 0.0], [1500.0, 800.0, 0.0]])
+    e, _ = problem.scene.evaluate(problem.theta[:1], pts, jacobian=False)
+    src = cfg.sources[0].source
+    tank = pp.Conductor.cylinder((0.0, 0.0, 0.0), 200.0, 400.0)
+    np.testing.assert_allclose(e[0], pp.field(src, pts, 0.0, conductors=[tank]), rtol=1e-10)
+    bare = pp.field(src, pts, 0.0)
+    assert abs(e[0, 0, 2]) < abs(bare[0, 2])  # beside a grounded tank the field is weaker
+    cand = cfg.site().candidate_grid(target=300).positions_m
+    assert np.hypot(cand[:, 0], cand[:, 1]).min() > 200.0
+    layout = np.array([[300.0, 0.0, 0.0], [1800.0, 0.0, 0.0], [-1000.0, 500.0, 0.0],
+                       [0.0, -1500.0, 0.0], [900.0, 1400.0, 0.0]])  # fmt: skip
+    score = problem.score(layout)
+    assert np.all(np.isfinite(score.crb_std))
+    # each meter's computed enhancement: the grounded tank shields its neighbour most
+    assert score.enhancement.shape == (5,)
+    assert 0 < score.enhancement[0] < score.enhancement[1] < 1.0
