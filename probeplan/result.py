@@ -16,7 +16,7 @@ import numpy as np
 from ._version import package_version
 from .geo import Frame
 from .resulttypes import Baseline as Baseline
-from .resulttypes import BudgetTable, Changes, Score, SearchInfo
+from .resulttypes import BudgetTable, Changes, Score, SearchInfo, StructureSurfaces
 
 
 def compare_layouts(
@@ -95,6 +95,8 @@ class Result:
         budget option the layout is), printed with the summary.
     frame : Frame or None
         The config's ``[frame]``: the WGS84 origin of the local metres (maps, lon/lat out).
+    structures : StructureSurfaces or None
+        The conducting structures' panels and induced charge (``[[structure]]``), or None.
     """
 
     command: str
@@ -117,6 +119,7 @@ class Result:
     notes: tuple[str, ...] = ()
     frame: Frame | None = None
     location: object | None = None
+    structures: StructureSurfaces | None = None
 
 
 def make_result(
@@ -154,4 +157,36 @@ def make_result(
         simulation=simulation,
         probe_names=None if probe_names is None else tuple(probe_names),
         notes=tuple(notes),
+        structures=structure_surfaces(config),
+    )
+
+
+def structure_surfaces(config) -> StructureSurfaces | None:
+    """The panels of the config's structures and their induced charge in the nominal scenario
+    (the sources and background as the config gives them); None without structures."""
+    if not getattr(config, "structures", ()):
+        return None
+    from .bem import Structures
+    from .forward import Scene
+
+    structures = Structures.build(config.structures, config.ground_z_m)
+    bg = config.background
+    scene = Scene(
+        tuple(s.source for s in config.sources),
+        config.ground_z_m,
+        background=bg is not None,
+        structures=structures,
+    )
+    theta = scene.nominal(() if bg is None else bg.field_v_per_m)[None, :]
+    sigma = structures.charge_density(scene, theta)[0]
+    panels = structures.factor.panels
+    n = panels.n_panels
+    charge = np.bincount(panels.owner, sigma * panels.areas_m2, len(config.structures))
+    return StructureSurfaces(
+        names=tuple(c.name for c in config.structures),
+        vertices_m=panels.triangles_m.reshape(3 * n, 3),
+        faces=np.arange(3 * n, dtype=np.int64).reshape(n, 3),
+        owner=panels.owner.astype(np.int64),
+        charge_density_c_per_m2=sigma,
+        charge_c=charge,
     )

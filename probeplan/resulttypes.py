@@ -175,6 +175,33 @@ class Score:
 
 
 @dataclass(frozen=True, eq=False)
+class StructureSurfaces:
+    """Conducting structures as solved: their panels and the induced charge (nominal scenario).
+
+    Attributes
+    ----------
+    names : tuple of n_structures str
+    vertices_m : (n_vertices, 3) float
+        Panel corners, m (three per panel, in panel order).
+    faces : (n_panels, 3) int
+        Indices into ``vertices_m`` of each panel's corners.
+    owner : (n_panels,) int
+        The structure each panel belongs to (index into ``names``).
+    charge_density_c_per_m2 : (n_panels,) float
+        Induced surface charge density of the nominal scenario, C/m².
+    charge_c : (n_structures,) float
+        Net induced charge of each structure (the plane's share not included), C.
+    """
+
+    names: tuple[str, ...]
+    vertices_m: np.ndarray
+    faces: np.ndarray
+    owner: np.ndarray
+    charge_density_c_per_m2: np.ndarray
+    charge_c: np.ndarray
+
+
+@dataclass(frozen=True, eq=False)
 class Baseline:
     """A reference layout scored beside the plan.
 

@@ -88,3 +88,30 @@ def test_the_problem_sees_the_structures():
     # each meter's computed enhancement: the grounded tank shields its neighbour most
     assert score.enhancement.shape == (5,)
     assert 0 < score.enhancement[0] < score.enhancement[1] < 1.0
+
+
+def test_structures_and_enhancement_round_trip_through_hdf5(tmp_path):
+    from probeplan.result import make_result
+    from probeplan.store import read_result, write_result
+
+    cfg = make_config("<t>", structure=[{**TANK, "name": "tank"}])
+    problem = build_problem(cfg)
+    layout = np.array([[300.0, 0.0, 0.0], [1800.0, 0.0, 0.0], [-1000.0, 500.0, 0.0],
+                       [0.0, -1500.0, 0.0], [900.0, 1400.0, 0.0]])  # fmt: skip
+    result = make_result("score", cfg, problem.score(layout))
+    s = result.structures
+    assert s.names == ("tank",) and s.faces.shape[1] == 3
+    # A grounded tank under a negative cloud charge takes positive induced charge (images).
+    assert s.charge_c[0] > 0 and cfg.sources[0].source.charge_c < 0
+    path = write_result(result, tmp_path / "r.h5")
+    back = read_result(path)
+    np.testing.assert_array_equal(back.structures.vertices_m, s.vertices_m)
+    np.testing.assert_array_equal(
+        back.structures.charge_density_c_per_m2, s.charge_density_c_per_m2
+    )
+    np.testing.assert_array_equal(back.score.enhancement, result.score.enhancement)
+    import h5py
+
+    with h5py.File(path) as f:
+        assert f["structures/charge_density_c_per_m2"].attrs["units"] == "C/m^2"
+        assert f["structures/vertices_m"].attrs["units"] == "m"

@@ -15,7 +15,15 @@ import numpy as np
 from ..errors import InputError
 from ..geo import Frame
 from ..result import Result
-from ..resulttypes import Baseline, BudgetTable, Changes, Direction, Score, SearchInfo
+from ..resulttypes import (
+    Baseline,
+    BudgetTable,
+    Changes,
+    Direction,
+    Score,
+    SearchInfo,
+    StructureSurfaces,
+)
 
 
 class _Reader:
@@ -173,6 +181,7 @@ def _read(r: _Reader) -> Result:
         ),
         axes=_layout_axes(r, positions.shape[0]),
         grade=_layout_grade(r, positions.shape[0]),
+        enhancement=r.array("score/enhancement", ndim=1) if r.has("score/enhancement") else None,
     )
     search = _read_search(r) if r.has("search") else None
     budget = _read_budget(r) if r.has("budget") else None
@@ -192,6 +201,8 @@ def _read(r: _Reader) -> Result:
         sections["frame"] = Frame(*(r.attr("frame", k, float) for k in keys))
     if r.has("changes"):
         sections["changes"] = _read_dataclass(r, "changes", Changes)
+    if r.has("structures"):
+        sections["structures"] = _read_dataclass(r, "structures", StructureSurfaces)
     if r.has("simulation"):
         from ..simulate import Simulation
 

@@ -160,6 +160,11 @@ def _write(f: h5py.File, result: Result) -> None:
         units = {n: "m" for n in ("kept_m", "moved_from_m", "moved_to_m", "added_m", "removed_m")}
         units |= {"old_value": vunit, "old_rescored": vunit}
         _write_dataclass(f.create_group("changes"), result.changes, units)
+    if result.structures is not None:
+        units = {"charge_density_c_per_m2": "C/m^2", "vertices_m": "m", "charge_c": "C"}
+        _write_dataclass(f.create_group("structures"), result.structures, units)
+    if score.enhancement is not None:
+        _dataset(g, "enhancement", np.asarray(score.enhancement, dtype=float), "1")
     if result.simulation is not None:
         per_param = [param_unit(n) for n in result.simulation.names]
         units = {n: per_param for n in ("truth", "fitted", "rms_error", "crb_std")}
