@@ -54,6 +54,13 @@ CAUTIONS: dict[str, str] = {
     ),
 }
 
+#: The line a summary carries when the config has conducting structures.
+STRUCTURES_LINE = (
+    "Structures are modelled as perfect conductors in an electrostatic field (enhancement: each "
+    "meter's computed reading over the undisturbed field, nominal scenario). The model does not "
+    "replace lightning-protection or high-voltage clearance design."
+)
+
 #: The line a summary carries when its config says ``caution = "none"``.
 CAUTION_LINE = (
     "probeplan plans instrument positions only; safety decisions follow local codes, the "
@@ -185,6 +192,8 @@ def summary_parts(result: Result) -> list:
     if result.location is not None:
         parts += [*locate_parts(result.location, format_quantity), blank]
     parts += [_unresolved_text(result), blank, Text(SIGN_LINE)]
+    if result.structures is not None:
+        parts.append(Text(STRUCTURES_LINE))
     caution = CAUTIONS.get(result.caution)
     if caution:
         parts.append(Panel(Text(caution), title="Caution", title_align="left", width=80))
@@ -250,6 +259,9 @@ def _layout_table(result: Result) -> Table:
     for axis in "xyz":
         table.add_column(f"{axis} (m)", justify="right")
     table.add_column("gain", justify="right")
+    enh = s.enhancement
+    if enh is not None:
+        table.add_column("enhancement", justify="right")  # computed: structures over none
     table.add_column("saturated", justify="right")
     for k in range(pos.shape[0]):
         sat = float(s.saturated[k]) if k < len(s.saturated) else float("nan")
@@ -259,6 +271,7 @@ def _layout_table(result: Result) -> Table:
             "installed" if installed[k] else "new",
             *(f"{pos[k, j]:.{dec}f}" for j in range(3)),
             f"{float(s.gain[k]):.3g}",
+            *([] if enh is None else [f"{float(enh[k]):.3g}"]),
             f"{100.0 * sat:.0f} %" if math.isfinite(sat) else "n/a",
         )
     return table

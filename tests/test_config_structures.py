@@ -115,3 +115,21 @@ def test_structures_and_enhancement_round_trip_through_hdf5(tmp_path):
     with h5py.File(path) as f:
         assert f["structures/charge_density_c_per_m2"].attrs["units"] == "C/m^2"
         assert f["structures/vertices_m"].attrs["units"] == "m"
+
+
+def test_summary_shows_enhancement_and_the_structures_caution():
+    from rich.console import Console
+
+    from probeplan import report
+    from probeplan.result import make_result
+
+    cfg = make_config("<t>", structure=[TANK])
+    layout = np.array([[300.0, 0.0, 0.0], [1800.0, 0.0, 0.0], [-1000.0, 500.0, 0.0],
+                       [0.0, -1500.0, 0.0], [900.0, 1400.0, 0.0]])  # fmt: skip
+    result = make_result("score", cfg, build_problem(cfg).score(layout))
+    console = Console(record=True, width=160)
+    for part in report.summary_parts(result):
+        console.print(part)
+    text = console.export_text()
+    assert "enhancement" in text
+    assert "does not replace lightning-protection or high-voltage clearance design" in text
