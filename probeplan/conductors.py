@@ -685,10 +685,14 @@ class Obstacles:
     ----------
     conductors : tuple of Conductor
     ground_z_m : float or None
+    mounted_m : (n_mounted, 3) float
+        Meters mounted on a structure (a structure region's points): only the inside rule
+        applies to them, as their field is computed exactly close to the panels.
     """
 
     conductors: tuple
     ground_z_m: float | None
+    mounted_m: np.ndarray = field(default_factory=lambda: np.empty((0, 3)))
     _surfaces: tuple = field(init=False, repr=False)
 
     def __post_init__(self) -> None:
@@ -702,11 +706,16 @@ class Obstacles:
         out = np.zeros(len(pts), dtype=bool)
         if len(pts) == 0:
             return out
+        mounted = np.zeros(len(pts), dtype=bool)
+        if len(self.mounted_m):
+            from scipy.spatial import cKDTree
+
+            mounted = cKDTree(np.asarray(self.mounted_m, dtype=float)).query(pts)[0] <= 1e-6
         for cond, tris in zip(self.conductors, self._surfaces, strict=True):
             if cond.solid:
                 closed = np.ascontiguousarray(closed_surface(tris, self.ground_z_m))
                 out |= np.abs(_winding(pts, closed)) > 0.5
-            out |= _too_close(pts, tris, *_panel_bounds(tris))[0] >= 0
+            out |= (_too_close(pts, tris, *_panel_bounds(tris))[0] >= 0) & ~mounted
         return out
 
 

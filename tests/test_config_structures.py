@@ -133,3 +133,34 @@ def test_summary_shows_enhancement_and_the_structures_caution():
     text = console.export_text()
     assert "enhancement" in text
     assert "does not replace lightning-protection or high-voltage clearance design" in text
+
+
+def test_meters_mounted_on_a_structure_top():
+    # A region on the tank's roof, 2 m off it: its points are candidates although they are
+    # nearer the panels than a panel size, and they read the enhanced field over the roof.
+    region = {"kind": "structure", "structure": "tank", "face": "top", "standoff_m": 2.0,
+              "spacing_m": 60.0, "name": "roof"}  # fmt: skip
+    cfg = make_config("<t>", structure=[{**TANK, "name": "tank"}], region=[region])
+    roof = cfg.regions[0]
+    assert roof.kind == "structure" and roof.standoff_m == 2.0
+    pts = roof.outline_m()
+    np.testing.assert_allclose(pts[:, 2], 402.0)
+    cand = cfg.site().candidate_grid().positions_m
+    assert len(cand) == len(pts)
+    problem = build_problem(cfg)
+    score = problem.score(pts[:5])
+    assert np.all(score.enhancement > 1.0)  # on a tank's roof the field is enhanced
+
+
+@pytest.mark.parametrize(
+    "region, match",
+    [
+        ({"kind": "structure", "structure": "silo", "standoff_m": 1.0}, "names no"),
+        ({"kind": "structure", "structure": "tank", "standoff_m": 0.0}, "standoff_m"),
+        ({"kind": "structure", "structure": "tank", "standoff_m": 1.0, "face": "roof"}, "face"),
+        ({"kind": "points", "positions_m": [[0.0, 0.0, 100.0]]}, r"region\[0\] .* inside"),
+    ],
+)
+def test_bad_structure_regions_are_named(region, match):
+    with pytest.raises(InputError, match=match):
+        make_config("<t>", structure=[{**TANK, "name": "tank"}], region=[region])

@@ -26,7 +26,7 @@ from .reader import Checker, Table, syntax_message
 from .regions import check_feasible, parse_regions
 from .render import mapping_to_toml
 from .sources import parse_sources
-from .structures import parse_structures
+from .structures import check_regions_clear, parse_structures
 from .vocab import CAUTIONS, STORM_HEIGHT_M
 
 ROOT_KEYS = (
@@ -153,10 +153,10 @@ def _check(data: dict, text: str, path: str, base: Path) -> Config:
     probes, installed = parse_probes(root, ground_z_m, frame)
     mapped = parse_map_regions(root, frame, ground_z_m, base)
     installed = check_installed_names(ck, installed + mapped.installed)
-    regions = parse_regions(root, "region", ground_z_m) + mapped.regions
-    keepouts = parse_regions(root, "keepout", ground_z_m) + mapped.keepouts
     sources = parse_sources(root, ground_z_m, base, frame)
     structures = parse_structures(root, ground_z_m, base, sources)
+    regions = parse_regions(root, "region", ground_z_m, structures) + mapped.regions
+    keepouts = parse_regions(root, "keepout", ground_z_m) + mapped.keepouts
     background = parse_background(root)
     design = parse_design(root)
     check_estimates(ck, sources, background, design)
@@ -189,5 +189,6 @@ def _check(data: dict, text: str, path: str, base: Path) -> Config:
         caution=caution,
         frame=frame,
     )
+    check_regions_clear(ck, config)
     check_feasible(ck, config)
     return config

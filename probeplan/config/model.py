@@ -262,7 +262,9 @@ class Config:
         if self.structures:
             from ..conductors import Obstacles
 
-            obstacles = Obstacles(self.structures, self.ground_z_m)
+            mounted = [r.outline_m() for r in self.regions if r.kind == "structure"]
+            mounted_m = np.concatenate(mounted) if mounted else np.empty((0, 3))
+            obstacles = Obstacles(self.structures, self.ground_z_m, mounted_m)
         return Site(
             self.regions,
             self.keepouts,

@@ -19,15 +19,21 @@ REGION_KIND_KEYS = {
     "polygon": ("vertices_m", "z_m"),
     "segment": ("start_m", "end_m"),
     "points": ("positions_m",),
+    "structure": ("structure", "face", "standoff_m", "spacing_m"),
 }
+#: Which part of a structure carries meters (see probeplan.Conductor.surface_points).
+STRUCTURE_FACES = ("top", "walls", "all")
 REGION_COMMON = {
     "region": ("kind", "name", "gain"),
     "keepout": ("kind", "name", "buffer_m"),
 }
 
 
-def parse_regions(root: Table, which: str, ground_z_m: float | None) -> tuple[Region, ...]:
-    """``[[region]]`` (no mounting point below the ground) or ``[[keepout]]``.
+def parse_regions(
+    root: Table, which: str, ground_z_m: float | None, structures: tuple = ()
+) -> tuple[Region, ...]:
+    """``[[region]]`` (no mounting point below the ground) or ``[[keepout]]``; a mounting
+    region of kind ``structure`` sits on one of ``structures`` (parsed ``[[structure]]``).
 
     A keep-out rectangle or ``[x, y]`` polygon is a footprint at every height, so its ``z_m``
     does not matter and may be left out (the ground height, or 0, is passed on).
@@ -63,6 +69,13 @@ def parse_regions(root: Table, which: str, ground_z_m: float | None) -> tuple[Re
         elif kind == "segment":
             geom["start_m"] = t.vector("start_m", 3, what=XYZ)
             geom["end_m"] = t.vector("end_m", 3, what=XYZ)
+        elif kind == "structure":
+            if not mounting:
+                t.ck.fail(
+                    f'`{t.key("kind")}` = "structure" applies to [[region]] only; a structure '
+                    "keeps meters out of itself by its own panels."
+                )
+            geom.update(_structure_surface(t, structures, ground_z_m))
         else:
             geom["positions_m"] = t.points("positions_m", dims=(3,), at_least=1)
         flat = kind == "rectangle" or (kind == "polygon" and len(geom["vertices_m"][0]) == 2)
@@ -84,6 +97,34 @@ def parse_regions(root: Table, which: str, ground_z_m: float | None) -> tuple[Re
         except ValueError as exc:
             t.ck.fail(f"{t.prefix}: {exc}")
     return tuple(out)
+
+
+def _structure_surface(t: Table, structures: tuple, ground_z_m: float | None) -> dict:
+    """Keys of a ``structure`` region: the structure by name, the face, the standoff, and the
+    mounting points they give (about one per ``spacing_m`` square; default four standoffs)."""
+    names = [c.name for c in structures]
+    listing = ", ".join(repr(n) for n in names) or "none: add a [[structure]] table"
+    name = t.string("structure", what=f"the `name` of a [[structure]] ({listing})")
+    if name not in names:
+        t.ck.fail(f"`{t.key('structure')}` = {name!r} names no [[structure]]; given: {listing}.")
+    cond = structures[names.index(name)]
+    face = t.choice("face", STRUCTURE_FACES, default="top")
+    standoff = t.number("standoff_m", gt=0.0, what="the meters' distance off the surface in metres")
+    spacing = t.number("spacing_m", default=None, gt=0.0)
+    if spacing is None:
+        spacing = max(4.0 * standoff, 1e-3)
+    pts = cond.surface_points(ground_z_m, face, standoff, spacing)
+    if len(pts) == 0:
+        t.ck.fail(
+            f"{t.prefix}: structure {name!r} ({cond.kind}) has no {face!r} surface to mount on; "
+            f"allowed faces: {', '.join(STRUCTURE_FACES)}."
+        )
+    return {
+        "positions_m": pts,
+        "structure": name,
+        "face": face,
+        "standoff_m": standoff,
+    }
 
 
 def _check_region_height(t: Table, geom: dict, ground_z_m: float) -> None:

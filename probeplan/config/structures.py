@@ -110,3 +110,20 @@ def _check_meshes(root: Table, structures: tuple, ground_z_m: float | None, sour
                 f"source[{i}] ({src.kind}) at {list(src.center_m)} m: {where} A charge must stay "
                 "outside every [[structure]], clear of it by at least a panel size."
             )
+
+
+def check_regions_clear(ck, config) -> None:
+    """A mounting region must not lie wholly inside a structure (or within a panel of it)."""
+    if not config.structures:
+        return
+    blocked = config.site().obstacles.blocked
+    for i, region in enumerate(config.regions):
+        if region.kind == "structure":
+            continue
+        pts = np.asarray(region._test_points(), dtype=float).reshape(-1, 3)
+        if len(pts) and blocked(pts).all():
+            ck.fail(
+                f"region[{i}] ({region.kind}{' ' + repr(region.name) if region.name else ''}) "
+                "lies inside a [[structure]] (or within a panel size of one): no meter can be "
+                'mounted there; move it, or mount on the structure with kind = "structure".'
+            )

@@ -435,3 +435,38 @@ class Points(Kind):
 
     def _test_points(self) -> np.ndarray:
         return np.array(self.positions_m)
+
+
+@dataclass(frozen=True, eq=False, kw_only=True)
+class StructureSurface(Points):
+    """Mounting points a standoff off a conducting structure's surface (its top, its walls, or
+    the whole of it; the inner side of an enclosure): the points of :class:`Points`, computed
+    from the structure's panels by the config (:meth:`probeplan.Conductor.surface_points`).
+
+    Parameters
+    ----------
+    positions_m : (k, 3) float
+        The mounting points, m.
+    structure : str
+        Name of the ``[[structure]]`` they sit on.
+    face : str
+        ``"top"``, ``"walls"`` or ``"all"``.
+    standoff_m : float
+        Distance off the surface, m, > 0. The field there is computed from the panels'
+        exact integrals, so these meters may sit nearer the surface than a panel size.
+    name : str
+        Free text used in messages.
+    """
+
+    kind: ClassVar[str] = "structure"
+    takes: ClassVar[str] = "`structure`, `face`, `standoff_m`"
+
+    structure: str = ""
+    face: str = "top"
+    standoff_m: float = 0.0
+
+    def __post_init__(self) -> None:
+        super().__post_init__()
+        self._set(standoff_m=number(self.standoff_m, "standoff_m", self.what))
+        if not self.standoff_m > 0.0:
+            raise ValueError(f"`standoff_m` of {self.what} must be > 0; got {self.standoff_m:g}.")

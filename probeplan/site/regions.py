@@ -22,7 +22,7 @@ from dataclasses import MISSING, dataclass, fields
 import numpy as np
 
 from ._common import check_name, describe, number, points, what_of
-from .kinds import Points, Polygon, Rectangle, Segment
+from .kinds import Points, Polygon, Rectangle, Segment, StructureSurface
 from .protocol import Kind, Region
 
 # --------------------------------------------------------------------------------------------
@@ -118,6 +118,7 @@ REGION_KINDS: dict[str, type[Kind]] = {
     "polygon": Polygon,
     "segment": Segment,
     "points": Points,
+    "structure": StructureSurface,
 }
 
 
