@@ -134,7 +134,7 @@ def test_region_normalises_to_tuples_of_floats():
     assert p.positions_m == ((1.0, 2.0, 3.0),)
     poly = make_region("polygon", vertices_m=[[0, 0], [1, 0], [1, 1], [0, 0]], z_m=0)  # closed ring
     assert poly.vertices_m[1] == (1.0, 0.0)
-    assert tuple(REGION_KINDS) == ("rectangle", "polygon", "segment", "points")
+    assert tuple(REGION_KINDS) == ("rectangle", "polygon", "segment", "points", "structure")
 
 
 def test_registry_builds_each_kind_and_wrappers_carry_gain_and_buffer():
@@ -143,6 +143,7 @@ def test_registry_builds_each_kind_and_wrappers_carry_gain_and_buffer():
         "polygon": dict(vertices_m=L_SHAPE, z_m=2.0),
         "segment": dict(start_m=(0, 0, 0), end_m=(0, 0, 6)),
         "points": dict(positions_m=[[0, 0, 1], [3, 4, 1]]),
+        "structure": dict(positions_m=[[0, 0, 1], [3, 4, 1]], structure="tank", standoff_m=0.2),
     }
     for kind, geometry in tables.items():
         bare = REGION_KINDS[kind](**geometry)
