@@ -712,10 +712,19 @@ class Obstacles:
 
             mounted = cKDTree(np.asarray(self.mounted_m, dtype=float)).query(pts)[0] <= 1e-6
         for cond, tris in zip(self.conductors, self._surfaces, strict=True):
+            centres, reach, sizes = _panel_bounds(tris)
+            # only points within a panel size of the structure's box can be inside or near it
+            lo = tris.reshape(-1, 3).min(axis=0) - sizes.max()
+            hi = tris.reshape(-1, 3).max(axis=0) + sizes.max()
+            near = np.flatnonzero(np.all((pts >= lo) & (pts <= hi), axis=1))
+            if near.size == 0:
+                continue
+            p = np.ascontiguousarray(pts[near])
+            hit = (_too_close(p, tris, centres, reach, sizes)[0] >= 0) & ~mounted[near]
             if cond.solid:
                 closed = np.ascontiguousarray(closed_surface(tris, self.ground_z_m))
-                out |= np.abs(_winding(pts, closed)) > 0.5
-            out |= (_too_close(pts, tris, *_panel_bounds(tris))[0] >= 0) & ~mounted
+                hit |= np.abs(_winding(p, closed)) > 0.5
+            out[near] |= hit
         return out
 
 

@@ -28,6 +28,8 @@ BACKGROUND_PARAMS: tuple[str, ...] = ("bg.x_v_per_m", "bg.y_v_per_m", "bg.z_v_pe
 
 # Multiply-adds per stacked matrix product in the Jacobian assembly (see _small_products).
 _PRODUCT_ELEMENTS = 1 << 16
+# Scenario rows of structure responses a Scene keeps (see Scene._responses).
+_MEMO_ROWS = 4096
 # Largest (kernel columns × kept columns) mapped by a matrix product in Scene._assemble
 # (measured crossover with the in-place path: between 300 and 800, 64 scenarios, 1 MB blocks).
 _SMALL_MAP = 512
@@ -233,16 +235,31 @@ class Scene:
         return total, full
 
     def _responses(self, theta: np.ndarray, cols: np.ndarray | None):
-        """The structures' σ responses to ``theta`` (one solve per θ table and column set,
-        kept for the next calls: a plan evaluates the same scenarios at many point sets)."""
-        key = (theta.shape, theta.tobytes(), None if cols is None else np.asarray(cols).tobytes())
-        value = self._memo.get(key)
-        if value is None:  # (read once: safe when threads share the scene)
-            value = self.structures.responses(self, theta, cols, cols is not None)
-            if len(self._memo) >= 2:
+        """The structures' σ responses to ``theta``, ``(n_panels, S)`` and ``(n_panels, S *
+        n_cols)``, kept per scenario row: a plan evaluates the same scenarios, whole or in
+        chunks, at many point sets, and only rows not seen before are solved for."""
+        ckey = None if cols is None else np.asarray(cols).tobytes()
+        keys = [(ckey, row.tobytes()) for row in theta]
+        missing = [i for i, k in enumerate(keys) if k not in self._memo]
+        if missing:
+            sub = theta[missing]
+            sigma, d_sigma = self.structures.responses(self, sub, cols, cols is not None)
+            n_cols = 0 if d_sigma is None else d_sigma.shape[1] // len(missing)
+            if len(self._memo) + len(missing) > _MEMO_ROWS:
                 self._memo.clear()
-            self._memo[key] = value
-        return value
+            for j, i in enumerate(missing):
+                d = None if d_sigma is None else d_sigma[:, j * n_cols : (j + 1) * n_cols]
+                self._memo[keys[i]] = (sigma[:, j], d)
+        # (read once per row: safe when threads share the scene)
+        rows = [self._memo.get(k) or self._solve_row(theta[i], cols) for i, k in enumerate(keys)]
+        sigma = np.stack([r[0] for r in rows], axis=1)
+        if cols is None:
+            return sigma, None
+        return sigma, np.concatenate([r[1] for r in rows], axis=1)
+
+    def _solve_row(self, row: np.ndarray, cols):
+        sigma, d_sigma = self.structures.responses(self, row[None], cols, cols is not None)
+        return sigma[:, 0], d_sigma
 
     def potential(
         self, theta: np.ndarray, points_m: np.ndarray, *, jacobian: bool = True
