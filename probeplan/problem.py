@@ -451,32 +451,33 @@ class Problem:
             ),
             axes=meters.axes,
             grade=meters.grade,
-            enhancement=self.enhancement(np.concatenate([self.installed_m, pos]), meters.axes),
+            enhancement=_enhancement(self, np.concatenate([self.installed_m, pos]), meters.axes),
         )
 
-    def enhancement(self, positions_m: np.ndarray, axes: np.ndarray) -> np.ndarray | None:
-        """Each meter's reading with the structures over the undisturbed one, nominal scenario.
 
-        Parameters
-        ----------
-        positions_m : (n_probes, 3) float
-        axes : (n_probes, n_axes, 3) float
+def _enhancement(problem, positions_m: np.ndarray, axes: np.ndarray) -> np.ndarray | None:
+    """Each meter's reading with the structures over the undisturbed one, nominal scenario.
 
-        Returns
-        -------
-        (n_probes,) float or None
-            ‖axes · E‖ with the structures over the same without them (1 where that is 0);
-            None without structures.
-        """
-        if self.scene.structures is None:
-            return None
-        bare = replace(self.scene, structures=None)
-        theta = self.theta[:1]
-        with_s, _ = self.scene.evaluate(theta, positions_m, jacobian=False)
-        without, _ = bare.evaluate(theta, positions_m, jacobian=False)
-        num = np.linalg.norm(np.einsum("pac,pc->pa", axes, with_s[0]), axis=1)
-        den = np.linalg.norm(np.einsum("pac,pc->pa", axes, without[0]), axis=1)
-        return np.divide(num, den, out=np.ones_like(num), where=den > 0)
+    Parameters
+    ----------
+    positions_m : (n_probes, 3) float
+    axes : (n_probes, n_axes, 3) float
+
+    Returns
+    -------
+    (n_probes,) float or None
+        ‖axes · E‖ with the structures over the same without them (1 where that is 0);
+        None without structures.
+    """
+    if problem.scene.structures is None:
+        return None
+    bare = replace(problem.scene, structures=None)
+    theta = problem.theta[:1]
+    with_s, _ = problem.scene.evaluate(theta, positions_m, jacobian=False)
+    without, _ = bare.evaluate(theta, positions_m, jacobian=False)
+    num = np.linalg.norm(np.einsum("pac,pc->pa", axes, with_s[0]), axis=1)
+    den = np.linalg.norm(np.einsum("pac,pc->pa", axes, without[0]), axis=1)
+    return np.divide(num, den, out=np.ones_like(num), where=den > 0)
 
 
 def _any_axis(sat: np.ndarray) -> np.ndarray:
