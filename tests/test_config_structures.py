@@ -164,3 +164,16 @@ def test_meters_mounted_on_a_structure_top():
 def test_bad_structure_regions_are_named(region, match):
     with pytest.raises(InputError, match=match):
         make_config("<t>", structure=[{**TANK, "name": "tank"}], region=[region])
+
+
+def test_site_map_draws_the_structures(tmp_path):
+    from probeplan import plots
+    from probeplan.result import make_result
+
+    cfg = make_config("<t>", structure=[TANK])
+    problem = build_problem(cfg)
+    layout = np.array([[300.0, 0.0, 0.0], [1800.0, 0.0, 0.0], [-1000.0, 500.0, 0.0],
+                       [0.0, -1500.0, 0.0], [900.0, 1400.0, 0.0]])  # fmt: skip
+    result = make_result("score", cfg, problem.score(layout))
+    path = plots.site_map(cfg, result, tmp_path / "site.png")
+    assert path.stat().st_size > 0
