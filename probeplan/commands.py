@@ -124,6 +124,18 @@ def finish(run: reruns.Run, result, quiet: bool, written: list[Path]) -> int:
 # --------------------------------------------------------------------------------------------
 
 
+def solve_structures(config, quiet: bool) -> None:
+    """Mesh and factor the config's structures under a progress bar (the problem built next
+    finds the factors in memory or the disk cache); nothing without structures."""
+    if not getattr(config, "structures", ()):
+        return
+    from .bem import Structures
+
+    with stoppable(quiet) as (progress, _):
+        report_to = None if progress is None else (lambda d, t: progress("structures", d, t))
+        Structures.build(config.structures, config.ground_z_m, progress=report_to)
+
+
 def cmd_plan(args: argparse.Namespace, written: list[Path]) -> int:
     """``probeplan plan``: search a layout and write it with its score."""
     from .result import make_result
@@ -131,6 +143,7 @@ def cmd_plan(args: argparse.Namespace, written: list[Path]) -> int:
 
     run = reruns.prepare_run(args, "plan", suffix="")
     stored, config, old = run.stored, run.config, run.old
+    solve_structures(config, args.quiet)
     problem = reruns.build_problem(config)
     check_enough_readings(problem, config)
     warm = history = None
@@ -242,6 +255,7 @@ def cmd_budget(args: argparse.Namespace, written: list[Path]) -> int:
 
     run = reruns.prepare_run(args, "budget", suffix="-budget")
     config = run.config
+    solve_structures(config, args.quiet)
     reruns.build_problem(config)  # every config check before the sweep spends its time
     done = reruns.stored_options(run.stored) if run.stored is not None else ()
 
