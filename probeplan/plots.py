@@ -54,7 +54,6 @@ SIGN_CAPTION = (
 _REGION_FACE = "#d7ebcf"
 _REGION_EDGE = "#5f8f4e"
 _KEEPOUT_EDGE = "#b03a2e"
-_STRUCTURE = "#8c8c8c"  # conducting structures (grey, as steel on a drawing)
 _INSTALLED = {"marker": "s", "color": "#2f5597", "ms": 8, "label": "installed meter"}
 _NEW = {"marker": "^", "color": "#e07b00", "ms": 10, "label": "new meter (planned)"}
 _SOURCE = "#6a2c8c"
@@ -210,8 +209,9 @@ def site_map(config, result_or_score, path) -> Path:
         handles.append(
             Patch(facecolor="none", edgecolor=_KEEPOUT_EDGE, hatch="xx", label="keep-out")
         )
-    if _draw_structures(ax, config, scale):
-        handles.append(Patch(facecolor=_STRUCTURE, edgecolor="black", label="structure"))
+    for c in getattr(config, "structures", ()):  # grey footprints, as steel seen from above
+        xy = c.triangles(config.ground_z_m)[..., :2].reshape(-1, 2)
+        _draw_geometry(ax, shapely.MultiPoint(xy).convex_hull, scale, face="0.55", edge="k")
     spread = _scenario_xy(config, score)
     if spread is not None and len(spread) > 1:
         ax.plot(spread[:, 0] / scale, spread[:, 1] / scale, ".", color=_SOURCE, alpha=0.25, ms=4)
@@ -607,16 +607,6 @@ def _draw_regions(ax, regions, scale: float) -> bool:
     for r in regions:
         _draw_geometry(ax, _xy_geometry(r), scale, face=_REGION_FACE, edge=_REGION_EDGE)
     return bool(regions)
-
-
-def _draw_structures(ax, config, scale: float) -> bool:
-    """Each ``[[structure]]`` as its footprint (the convex hull of its panels seen from above)."""
-    structures = getattr(config, "structures", ())
-    for c in structures:
-        xy = c.triangles(config.ground_z_m).reshape(-1, 3)[:, :2]
-        hull = shapely.MultiPoint(xy).convex_hull
-        _draw_geometry(ax, hull, scale, face=_STRUCTURE, edge="black", lw=0.8)
-    return bool(structures)
 
 
 def _draw_keepouts(ax, keepouts, scale: float, fill: bool = True) -> bool:
