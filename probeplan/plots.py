@@ -211,7 +211,8 @@ def site_map(config, result_or_score, path) -> Path:
         )
     for c in getattr(config, "structures", ()):  # grey footprints, as steel seen from above
         xy = c.triangles(config.ground_z_m)[..., :2].reshape(-1, 2)
-        _draw_geometry(ax, shapely.MultiPoint(xy).convex_hull, scale, face="0.55", edge="k")
+        face = "none" if c.kind == "enclosure" else "0.55"  # a room: its walls only
+        _draw_geometry(ax, shapely.MultiPoint(xy).convex_hull, scale, face=face, edge="k")
     spread = _scenario_xy(config, score)
     if spread is not None and len(spread) > 1:
         ax.plot(spread[:, 0] / scale, spread[:, 1] / scale, ".", color=_SOURCE, alpha=0.25, ms=4)
