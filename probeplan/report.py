@@ -10,21 +10,26 @@ from __future__ import annotations
 import contextlib
 import math
 import os
+import re
 import sys
 import traceback
 from collections.abc import Callable, Iterator, Sequence
 
 import numpy as np
 from rich import box
-from rich.console import Console
+from rich.cells import cell_len
+from rich.console import Console, ConsoleOptions, RenderResult
+from rich.measure import Measurement
 from rich.panel import Panel
 from rich.table import Table
 from rich.text import Text
 
+from . import findings
 from .locate_report import locate_parts
 from .probes import axes_label
 from .result import Result
-from .resulttypes import param_unit, probe_names
+from .resulttypes import format_number, param_unit, probe_names
+from .resulttypes import format_quantity as format_quantity
 
 #: The line every summary carries under its numbers (the contract asks for it wherever a
 #: field value is printed).
@@ -80,61 +85,130 @@ def _console(console: Console | None, stderr: bool = False) -> Console:
 
 
 # --------------------------------------------------------------------------------------------
-# Number formatting
+# User text, numbers and wrapping: every string of a summary passes through here
 # --------------------------------------------------------------------------------------------
 
+#: A space the wrapping must not break (inside "z = 0 m", between a number and its unit).
+_KEEP = "\u00a0"
+#: Spaces to keep: between a number and its unit, and around "=" before a number.
+_UNIT_SPACE = re.compile(
+    r"(?<=\d) (?=(?:km|mm|m|MV/m|kV/m|V/m|mC|µC|nC|pC|C|%|s)(?![\w/]))"
+    r"|(?<=\S) (?==\s[-+]?\d)|(?<=\S =) (?=[-+]?\d)"
+)
 
-def format_quantity(value: float, unit: str) -> str:
-    """A value with a readable unit prefix.
+
+def safe_text(value: object) -> str:
+    """User text made safe for a terminal: every character Python does not print as itself
+    (``str.isprintable``: control characters, escape sequences, bidirectional overrides,
+    line and paragraph separators) is shown as its escape, the way ``repr`` shows it.
 
     Parameters
     ----------
-    value : float
-        In SI units.
-    unit : {"m", "C", "V/m", "1"} or other
-        Lengths switch to km at 1000 m and to mm below 1 cm; charges use C, mC, µC, nC, pC.
+    value : object
+        A title, a name, a path, a message, or anything read from a file (``str(value)``).
 
     Returns
     -------
     str
-        e.g. ``"1.25 km"``, ``"320 µC"``, ``"unresolved"`` for +inf.
+        e.g. ``"bay\\x1b[2J"`` for a title holding ESC [ 2 J.
     """
-    if value is None or (isinstance(value, float) and math.isnan(value)):
-        return "n/a"
-    if math.isinf(value):
-        return "unresolved" if value > 0 else "-inf"
-    a = abs(value)
-    if unit == "m":
-        if a >= 1000.0:
-            return f"{_sig(value / 1000.0)} km"
-        if 0 < a < 0.01:
-            return f"{_sig(value * 1000.0)} mm"
-        return f"{_sig(value)} m"
-    if unit == "C":
-        for scale, prefix in ((1.0, ""), (1e-3, "m"), (1e-6, "µ"), (1e-9, "n"), (1e-12, "p")):
-            if a >= scale:
-                return f"{_sig(value / scale)} {prefix}C"
-        return f"{_sig(value / 1e-12)} pC" if a > 0 else "0 C"
-    if unit == "1":
-        return _sig(value)
-    return f"{_sig(value)} {unit}"
+    text = str(value)
+    if text.isprintable():
+        return text
+    return "".join(c if c.isprintable() else repr(c)[1:-1] for c in text)
 
 
-def _sig(x: float, digits: int = 3) -> str:
-    """x with `digits` significant digits, no exponent for everyday magnitudes."""
-    if x == 0 or not math.isfinite(x):
-        return f"{x:g}"
-    if 1e-3 <= abs(x) < 1e6:
-        decimals = max(0, digits - 1 - int(math.floor(math.log10(abs(x)))))
-        return f"{x:.{decimals}f}"
-    return f"{x:.{digits - 1}e}"
+def _user(value: object, style: str | None = None) -> Text:
+    """User text as a rich Text: escaped by :func:`safe_text`, never read as markup."""
+    return Text(safe_text(value), style=style or "")
+
+
+class Prose:
+    """Text wrapped at plain spaces only, so that a number keeps its unit ("z = 0 m", "7.99
+    km" never split); a continued line is indented two more than the line it continues.
+
+    Parameters
+    ----------
+    text : rich Text
+        May hold several lines (``\\n``); its styles are kept.
+    """
+
+    def __init__(self, text: Text, hang: bool = True) -> None:
+        self.hang = hang
+        plain = _UNIT_SPACE.sub(_KEEP, text.plain)
+        # One character for one: the styles' spans stay where they were.
+        self.text = Text(plain, style=text.style, spans=list(text.spans), end=text.end)
+
+    def __rich_console__(self, console: Console, options: ConsoleOptions) -> RenderResult:
+        width = max(options.max_width, 8)
+        for line in self.text.split("\n", allow_blank=True):
+            yield from _wrapped(line, width, self.hang)
+
+    def __rich_measure__(self, console: Console, options: ConsoleOptions) -> Measurement:
+        plain = self.text.plain
+        words = [cell_len(w) for w in re.split(r"[ \n]+", plain) if w] or [0]
+        lines = [cell_len(line) for line in plain.split("\n")] or [0]
+        return Measurement(max(words), max(lines))
+
+
+def _wrapped(line: Text, width: int, hang: bool) -> Iterator[Text]:
+    """The lines of one line of text at ``width`` cells (the kept spaces become spaces)."""
+    plain = line.plain
+    lead = len(plain) - len(plain.lstrip(" "))
+    hang = lead + 2 if hang and lead + 2 <= width // 2 else lead if lead <= width // 2 else 0
+    breaks, start, indent, first = [], 0, 0, True
+    for m in re.finditer(r"[^ ]+", plain):
+        if not first and indent + cell_len(plain[start : m.end()]) > width:
+            breaks.append(m.start())
+            start, indent = m.start(), hang
+        first = False
+    for k, part in enumerate(line.divide(breaks)):
+        part.rstrip()
+        if k:
+            part = Text(" " * hang) + part
+        out = Text(part.plain.replace(_KEEP, " "), style=part.style, spans=list(part.spans))
+        out.overflow = "fold"  # only a single word longer than the line is ever cut
+        yield out
+
+
+def _prose(part):
+    return Prose(part) if isinstance(part, Text) else part
+
+
+def _table(title: str | None = None, **kw) -> Table:
+    """A summary table: a plain title (user text in it is escaped, never markup)."""
+    kw.setdefault("box", box.SIMPLE_HEAD)
+    # One space of padding and the box's one-space divider: two spaces between columns.
+    kw.setdefault("padding", (0, 1, 0, 0))
+    return Table(title=_user(title) if title else None, title_justify="left", **kw)
+
+
+def _column(table: Table, header: str, *, number: bool = False, **kw) -> None:
+    """A column; a number column never wraps (a number stays with its unit)."""
+    if number:
+        kw.setdefault("justify", "right")
+        kw["no_wrap"] = True
+    else:
+        kw.setdefault("overflow", "fold")
+    table.add_column(_user(header), **kw)
+
+
+def _row(table: Table, *cells, style: str | None = None) -> None:
+    """A table row: every cell as escaped, plain text."""
+    table.add_row(*(c if isinstance(c, Text) else _user(c) for c in cells), style=style)
 
 
 def _value(x: float) -> str:
-    """A criterion value with enough digits to compare layouts (and to parse back)."""
+    """A ``d`` value with enough digits to compare layouts (and to parse back)."""
     if not math.isfinite(x):
         return f"{x:g}"
     return f"{x:.6g}"
+
+
+def _crit(result: Result, x: float) -> str:
+    """A criterion value: ``d`` as a number, ``location`` in m or km, ``charge`` in %."""
+    unit = {"location": "m", "charge": "%"}.get(result.score.criterion)
+    return _value(x) if unit is None else format_quantity(x, unit)
 
 
 def _coordinate_decimals(positions_m: np.ndarray) -> int:
@@ -166,17 +240,23 @@ def print_result(result: Result, console: Console | None = None) -> None:
 
 
 def summary_parts(result: Result) -> list:
-    """The renderables of the summary, in order (tables end with their own blank line)."""
+    """The renderables of the summary, in order (tables end with their own blank line).
+
+    Every string in them went through :func:`safe_text`; prose is :class:`Prose`.
+    """
     blank = Text("")
     parts: list = [_header(result), blank]
+    warnings = _findings_text("WARNING: ", findings.units_slip(result), "bold red")
+    if warnings is not None:
+        parts += [warnings, blank]
     if result.notes:
-        parts += [_notes_text(result), blank]
+        parts += [_findings_text("Note: ", result.notes, "bold yellow"), blank]
     meters = _meters_table(result)
-    parts += [
-        _layout_table(result),
-        *([meters] if meters is not None else []),
-        _bounds_table(result),
-    ]
+    parts += [_layout_table(result), *([meters] if meters is not None else [])]
+    parts.append(_bounds_table(result))
+    wide = _findings_text("Not resolved there: ", findings.wide_bounds(result), "bold yellow")
+    if wide is not None:
+        parts += [wide, blank]
     parts += [_criterion_text(result), blank]
     failure = _failure_text(result)
     if failure is not None:
@@ -188,31 +268,52 @@ def summary_parts(result: Result) -> list:
     if result.changes is not None:
         parts += [_changes_text(result), _changes_table(result)]
     if result.simulation is not None:
-        parts += [_simulation_table(result), _simulation_notes(), blank]
+        parts += [*_simulation_parts(result), blank]
     if result.location is not None:
         parts += [*locate_parts(result.location, format_quantity), blank]
-    parts += [_unresolved_text(result), blank, Text(SIGN_LINE)]
+    parts += [_unresolved_text(result), blank]
+    assumed = _findings_text("Assumed: ", findings.assumptions(result), "bold")
+    if assumed is not None:
+        parts += [assumed, blank]
+    parts.append(Text(SIGN_LINE))
     if result.structures is not None:
         parts.append(Text(STRUCTURES_LINE))
     caution = CAUTIONS.get(result.caution)
     if caution:
-        parts.append(Panel(Text(caution), title="Caution", title_align="left", width=80))
+        text = Prose(Text(caution), hang=False)
+        parts.append(Panel(text, title="Caution", title_align="left", width=80))
     else:
         parts.append(Text(CAUTION_LINE))  # even `caution = "none"` keeps one line of it
-    return parts
+    return [_prose(p) for p in parts]
+
+
+def _findings_text(label: str, sentences, style: str) -> Text | None:
+    """Sentences as labelled lines (user text in them escaped); None when there are none."""
+    if not sentences:
+        return None
+    text = Text()
+    for k, sentence in enumerate(sentences):
+        text.append(label, style=style)
+        text.append_text(_user(sentence))
+        if k + 1 < len(sentences):
+            text.append("\n")
+    return text
 
 
 def _header(result: Result) -> Text:
-    title = result.title or "(untitled)"
     text = Text()
-    text.append(f"probeplan {result.command}: ", style="bold")
-    text.append(f"{title}\n", style="bold")
+    text.append_text(_user(f"probeplan {result.command}: ", style="bold"))
+    text.append_text(_user(result.title or "(untitled)", style="bold"))
     g = result.ground_z_m
-    ground = "free space" if g is None else f"ground plane at z = {g:g} m"
-    text.append(f"config {result.config_path}, seed {result.seed}, {ground}\n")
+    ground = "free space" if g is None else f"ground plane at z = {format_quantity(g, 'm')}"
+    text.append("\n")
+    text.append_text(_user(f"config {result.config_path}, seed {result.seed}, {ground}"))
+    text.append("\n")
     if result.frame is not None:
-        text.append(_frame_line(result))
-    text.append(f"written {result.created_utc} by probeplan {result.version}\n")
+        text.append_text(_user(_frame_line(result)))
+        text.append("\n")
+    text.append_text(_user(f"written {result.created_utc} by probeplan {result.version}"))
+    text.append("\n")
     if result.complete:
         text.append("status: complete")
     else:
@@ -226,22 +327,13 @@ def _header(result: Result) -> Text:
 def _frame_line(result: Result) -> str:
     """The map frame and what its flat metres leave out over the meters."""
     d = result.frame.distortion(result.score.positions_m)
-    err = d.distance_error_m
-    err_text = f"{err * 1000:.0f} mm" if err < 1.0 else f"{err:.2f} m"
     return (
-        f"map frame: {result.frame.describe()}; over the meters ({d.radius_m / 1000:.2f} km "
-        f"from the origin) scale error <= {d.scale_error:.1e}, distances within {err_text}; "
-        f"the curved ground falls {d.ground_drop_m:.2f} m below the flat model's at that "
-        "distance\n"
+        f"map frame: {result.frame.describe()}; over the meters "
+        f"({format_quantity(d.radius_m, 'm')} from the origin) scale error <= "
+        f"{d.scale_error:.1e}, distances within {format_quantity(d.distance_error_m, 'm')}; "
+        f"the curved ground falls {format_quantity(d.ground_drop_m, 'm')} below the flat "
+        "model's at that distance"
     )
-
-
-def _notes_text(result: Result) -> Text:
-    text = Text()
-    for k, note in enumerate(result.notes):
-        text.append("Note: ", style="bold yellow")
-        text.append(note + ("\n" if k + 1 < len(result.notes) else ""))
-    return text
 
 
 def _layout_table(result: Result) -> Table:
@@ -252,26 +344,26 @@ def _layout_table(result: Result) -> Table:
     dec = _coordinate_decimals(pos)
     n_inst = int(installed.sum())
     title = f"Layout: {n_inst} installed + {installed.size - n_inst} new probes"
-    table = Table(title=title, title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False)
-    table.add_column("#", justify="right")
-    table.add_column("name", overflow="fold", max_width=16)
-    table.add_column("kind")
+    table = _table(title, pad_edge=False)
+    # No row numbers: the notes name every probe by its name.
+    _column(table, "name", max_width=16)
+    _column(table, "kind")
     for axis in "xyz":
-        table.add_column(f"{axis} (m)", justify="right")
-    table.add_column("gain", justify="right")
+        _column(table, f"{axis} (m)", number=True)
+    _column(table, "gain", number=True)
     enh = s.enhancement
     if enh is not None:
-        table.add_column("enhancement", justify="right")  # computed: structures over none
-    table.add_column("saturated", justify="right")
+        _column(table, "enhancement", number=True)  # computed: structures over none
+    _column(table, "saturated", number=True)
     for k in range(pos.shape[0]):
         sat = float(s.saturated[k]) if k < len(s.saturated) else float("nan")
-        table.add_row(
-            str(k),
-            Text(names[k]),
+        _row(
+            table,
+            names[k],
             "installed" if installed[k] else "new",
             *(f"{pos[k, j]:.{dec}f}" for j in range(3)),
-            f"{float(s.gain[k]):.3g}",
-            *([] if enh is None else [f"{float(enh[k]):.3g}"]),
+            format_number(float(s.gain[k])),
+            *([] if enh is None else [format_number(float(enh[k]))]),
             f"{100.0 * sat:.0f} %" if math.isfinite(sat) else "n/a",
         )
     return table
@@ -286,14 +378,12 @@ def _meters_table(result: Result) -> Table | None:
     reads = [axes_label(a) for a in s.axes]
     if len(set(reads)) == 1 and len(set(s.grade)) == 1:
         return None
-    table = Table(title="Meters", title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False)
-    table.add_column("#", justify="right")
-    table.add_column("name", overflow="fold", max_width=16)
-    table.add_column("reads", overflow="fold")
-    table.add_column("grade", overflow="fold")
+    table = _table("Meters", pad_edge=False)
+    _column(table, "name", max_width=16)
+    _column(table, "reads")
+    _column(table, "grade")
     for k, name in enumerate(probe_names(result)):
-        grade = s.grade[k] or "as [probes]"
-        table.add_row(str(k), Text(name), reads[k], Text(grade))
+        _row(table, name, reads[k], s.grade[k] or "as [probes]")
     return table
 
 
@@ -302,16 +392,11 @@ def _bounds_table(result: Result) -> Table:
     crb = np.asarray(s.crb_std, dtype=float)
     theta = np.asarray(s.theta, dtype=float)
     n_s = crb.shape[0]
-    table = Table(
-        title=f"1-sigma Cramér–Rao bound over {n_s} scenario{'s' if n_s != 1 else ''}",
-        title_justify="left",
-        box=box.SIMPLE_HEAD,
-        pad_edge=False,
-    )
-    table.add_column("parameter", overflow="fold")
-    table.add_column("nominal", justify="right")
-    table.add_column("median 1-sigma", justify="right")
-    table.add_column("worst 1-sigma", justify="right")
+    title = f"1-sigma Cramér–Rao bound over {n_s} scenario{'s' if n_s != 1 else ''}"
+    table = _table(title, pad_edge=False)
+    _column(table, "parameter")
+    for header in ("nominal", "median 1-sigma", "worst 1-sigma"):
+        _column(table, header, number=True)
     for j, name in enumerate(s.names):
         unit = param_unit(name)
         col = crb[:, j]
@@ -319,8 +404,9 @@ def _bounds_table(result: Result) -> Table:
         med = float(np.median(col)) if n_s else float("nan")
         worst = float(np.max(col)) if n_s else float("nan")
         nominal = float(theta[0, j]) if theta.size else float("nan")
-        table.add_row(
-            Text(name),
+        _row(
+            table,
+            name,
             format_quantity(nominal, unit),
             format_quantity(med, unit),
             format_quantity(worst, unit),
@@ -332,13 +418,14 @@ def _criterion_text(result: Result) -> Text:
     s = result.score
     n_s = len(s.per_scenario)
     n_sing = int(np.sum(s.singular))
-    unit = _CRITERION_UNIT.get(s.criterion, "")
     text = Text()
-    text.append(f"Criterion {s.criterion}", style="bold")
-    text.append(f" = {_value(s.value)} ({unit}), {s.aggregate} over {n_s} scenarios\n")
-    text.append(f"  {_CRITERION_TEXT.get(s.criterion, s.criterion)}")
-    if s.criterion == "charge" and math.isfinite(s.value):
-        text.append(f"\n  = {100.0 * s.value:.3g} % of the charge")
+    text.append_text(_user(f"Criterion {s.criterion}", style="bold"))
+    if s.criterion == "d":
+        value = f"{_value(s.value)} (log det, SI units)"
+    else:
+        value = _crit(result, s.value)
+    text.append_text(_user(f" = {value}, {s.aggregate} over {n_s} scenarios"))
+    text.append(f"\n  {_CRITERION_TEXT.get(s.criterion, '')}")
     if n_sing:
         text.append(f"\n  singular scenarios: {n_sing} of {n_s} (some parameter is unresolved).")
     return text
@@ -361,7 +448,7 @@ def _ratio(result: Result, value: float, other: float) -> str:
     if ratio is None:
         return "n/a"
     # Three decimals near 1, where stages differ by fractions of a percent; else 3 digits.
-    return f"{ratio:.3f}" if 0.1 <= ratio < 10 else f"{ratio:.3g}"
+    return f"{ratio:.3f}" if 0.1 <= ratio < 10 else format_number(ratio)
 
 
 def _plan_objective(result: Result) -> float:
@@ -381,20 +468,19 @@ def _search_table(result: Result) -> Table:
     title = "Search: what the plan bought"
     if info.objective != "criterion":
         title += f" (values: {info.objective})"
-    table = Table(title=title, title_justify="left", box=box.SIMPLE_HEAD)
-    table.add_column("layout", overflow="fold")
-    table.add_column(f"{s.criterion} value", justify="right")
-    table.add_column(f"plan vs it ({ratio})", justify="right")
+    table = _table(title)
+    _column(table, "layout")
+    _column(table, f"{s.criterion} value", number=True)
+    _column(table, f"plan vs it ({ratio})", justify="right")
     plan = _plan_objective(result)
     for name, value in info.stages:
-        table.add_row(f"stage: {name}", _value(value), _ratio(result, plan, value))
+        _row(table, f"stage: {name}", _crit(result, value), _ratio(result, plan, value))
     stage_rows = set(info.stages)
     for b in info.baselines:
         if (b.name, b.value) in stage_rows:
             continue  # a stage's layout kept as a baseline: already on its stage row
-        row = (_value(b.value), _ratio(result, plan, b.value))
-        table.add_row(Text(f"baseline: {b.name}"), *row)
-    table.add_row("the plan", _value(plan), _ratio(result, plan, plan), style="bold")
+        _row(table, f"baseline: {b.name}", _crit(result, b.value), _ratio(result, plan, b.value))
+    _row(table, "the plan", _crit(result, plan), _ratio(result, plan, plan), style="bold")
     return table
 
 
@@ -412,7 +498,9 @@ def _failure_text(result: Result) -> Text | None:
     if not np.any(np.isfinite(bad)):
         text.append("losing any one of them leaves some parameter unresolved.")
         return text
-    text.append(f"losing #{k} {names[k]} hurts most; {s.criterion} becomes {_value(bad[k])}")
+    text.append_text(
+        _user(f"losing {names[k]} hurts most; {s.criterion} becomes {_crit(result, bad[k])}")
+    )
     if not math.isfinite(bad[k]):
         text.append("\n  and the layout no longer resolves every parameter.")
     else:
@@ -433,7 +521,7 @@ def _search_notes(result: Result) -> Text:
     if info.bound is not None and math.isfinite(info.bound):
         text.append(f"  relaxation bound on the candidate grid: {_value(info.bound)}")
         if info.bound_gap is not None:
-            text.append(f" (gap {info.bound_gap:.3g})")
+            text.append(f" (gap {format_number(info.bound_gap)})")
         text.append("\n")
         if s.criterion == "d" and math.isfinite(s.value):
             eff = math.exp((s.value - info.bound) / n)
@@ -447,38 +535,37 @@ def _search_notes(result: Result) -> Text:
         else "the listed mounting points"
     )
     text.append(
-        f"  candidate grid: {info.n_candidates} points, {spacing}; "
-        f"{len(info.history)} evaluations in {info.seconds:.1f} s"
+        f"  candidate grid: {info.n_candidates} points, {spacing}; search took "
+        f"{format_number(info.seconds)} s\n"
     )
+    text.append_text(_user(f"  {findings.evaluation_account(result)}"))
     return text
 
 
 def _budget_table(result: Result) -> Table:
     b = result.budget
-    target = "no target" if b.target is None else f"target {_value(b.target)}"
-    table = Table(title=f"Budget options ({target})", title_justify="left", box=box.SIMPLE_HEAD)
-    for col, just in (
-        ("row", "right"),
-        ("count", "right"),
-        ("grade", "left"),
-        ("cost", "right"),
-        (f"{result.score.criterion} value", "right"),
-        ("meets target", "left"),
-        ("note", "left"),
-    ):
-        table.add_column(col, justify=just, overflow="fold")
+    target = "no target" if b.target is None else f"target {_crit(result, b.target)}"
+    table = _table(f"Budget options ({target})")
+    _column(table, "row", number=True)
+    _column(table, "count", number=True)
+    _column(table, "grade")
+    _column(table, "cost", number=True)
+    _column(table, f"{result.score.criterion} value", number=True)
+    _column(table, "meets target")
+    _column(table, "note")
     for k in range(len(b.count)):
         notes = []
         if k == b.cheapest:
             notes.append("CHEAPEST")
         if b.pareto[k]:
             notes.append("pareto")
-        table.add_row(
+        _row(
+            table,
             str(k),
             str(int(b.count[k])),
-            Text(str(b.grade[k])),
+            str(b.grade[k]),
             f"{float(b.cost[k]):,.0f}",
-            _value(float(b.value[k])),
+            _crit(result, float(b.value[k])),
             "yes" if b.meets_target[k] else "no",
             ", ".join(notes),
         )
@@ -490,14 +577,19 @@ def _unresolved_text(result: Result) -> Text:
     if not s.unresolved:
         return Text("Every estimated parameter is resolved.")
     text = Text()
-    text.append(f"Unresolved directions (scenario {s.unresolved_scenario}):\n", style="bold")
+    k = s.unresolved_scenario
+    text.append(f"Unresolved directions (scenario {k}", style="bold")
+    where = findings.scenario_where(result, int(k))
+    if where:
+        text.append_text(_user(f": {where}", style="bold"))
+    text.append("):\n", style="bold")
     for d in s.unresolved:
         how = (
             "not resolved"
             if d.singular
             else f"poorly resolved, relative eigenvalue {d.relative_eigenvalue:.1e}"
         )
-        text.append(f"  - {d.text} [{how}]\n")
+        text.append_text(_user(f"  - {d.text} [{how}]\n"))
     text.rstrip()
     return text
 
@@ -512,17 +604,20 @@ def _changes_text(result: Result) -> Text:
     }.get(c.mode, c.mode)
     old_name = c.old_criterion or s.criterion
     text = Text()
-    text.append("Changes against ", style="bold")
-    text.append(f"{c.old_path} ({how}):\n", style="bold")
-    text.append(f"  old layout: {old_name} = {_value(c.old_value)} as stored")
+    text.append_text(_user(f"Changes against {c.old_path} ({how}):", style="bold"))
+    line = f"  old layout: {old_name} = {_value(c.old_value)} as stored"
     if c.rescore_note:
-        text.append(f"; {c.rescore_note}")
+        line += f"; {c.rescore_note}"
     elif c.old_rescored != c.old_value or old_name != s.criterion:
-        text.append(f"; {s.criterion} = {_value(c.old_rescored)} under this config")
+        line += f"; {s.criterion} = {_crit(result, c.old_rescored)} under this config"
+    text.append("\n")
+    text.append_text(_user(line))
     what = "D-ratio" if s.criterion == "d" else "error ratio"
-    text.append(f"\n  new layout: {s.criterion} = {_value(s.value)}")
+    line = f"  new layout: {s.criterion} = {_crit(result, s.value)}"
     if not c.rescore_note:
-        text.append(f"; {what} new vs old: {_ratio(result, s.value, c.old_rescored)}")
+        line += f"; {what} new vs old: {_ratio(result, s.value, c.old_rescored)}"
+    text.append("\n")
+    text.append_text(_user(line))
     text.append("\n")
     counts = [
         (len(c.kept_m), "kept"),
@@ -542,52 +637,49 @@ def _changes_table(result: Result) -> Table:
     rows += [("added", p) for p in c.added_m] + [("removed", p) for p in c.removed_m]
     every = [np.asarray(p, dtype=float) for _, p in rows]
     dec = _coordinate_decimals(np.array(every)) if every else 2
-    table = Table(box=box.SIMPLE_HEAD, pad_edge=False)
-    table.add_column("change")
+    table = _table(pad_edge=False)
+    _column(table, "change")
     for axis in "xyz":
-        table.add_column(f"{axis} (m)", justify="right")
+        _column(table, f"{axis} (m)", number=True)
     for what, p in rows:
-        table.add_row(what, *(f"{float(v):.{dec}f}" for v in p))
+        _row(table, what, *(f"{float(v):.{dec}f}" for v in p))
     if not rows:
-        table.add_row("no probe moved, added or removed", "", "", "")
+        _row(table, "no probe moved, added or removed", "", "", "")
     return table
 
 
-def _simulation_table(result: Result) -> Table:
+def _simulation_parts(result: Result) -> list:
     from .simulate import summary_rows
 
     sim = result.simulation
-    table = Table(
-        title=f"Simulated fits ({sim.trials} noisy draws a scenario) beside the bound",
-        title_justify="left",
-        box=box.SIMPLE_HEAD,
-        pad_edge=False,
-    )
-    table.add_column("scen.", justify="right")
-    table.add_column("quantity", overflow="fold", max_width=24)
-    table.add_column("achieved", justify="right")
-    table.add_column("bound", justify="right")
-    table.add_column("ratio", justify="right")
-    table.add_column("fits", justify="right")
-    for row in summary_rows(sim):
-        unit = {"fraction": "1", "": "1"}.get(row["unit"], row["unit"])
-        table.add_row(
+    rows = summary_rows(sim)
+    title = f"Simulated fits ({sim.trials} noisy draws a scenario) beside the bound"
+    table = _table(title, pad_edge=False)
+    _column(table, "scen.", number=True)
+    _column(table, "quantity", max_width=24)
+    for header in ("achieved", "bound", "ratio", "fits"):
+        _column(table, header, number=True)
+    for row in rows:
+        unit = {"fraction": "%", "": "1"}.get(row["unit"], row["unit"])
+        ratio = row["ratio"]
+        shown = f"{ratio:.2f}" if math.isfinite(ratio) else "n/a"
+        failed = row["converged"] < row["trials"]
+        _row(
+            table,
             str(row["scenario"]),
-            Text(row["quantity"]),
+            row["quantity"],
             format_quantity(row["achieved"], unit) if math.isfinite(row["achieved"]) else "no fit",
             format_quantity(row["bound"], unit),
-            f"{row['ratio']:.2f}" if math.isfinite(row["ratio"]) else "n/a",
-            f"{row['converged']}/{row['trials']}",
+            Text(f"{shown} !", style="bold") if findings.ratio_flag(ratio) else shown,
+            Text(f"{row['converged']}/{row['trials']}", style="bold" if failed else ""),
         )
-    return table
-
-
-def _simulation_notes() -> Text:
-    return Text(
-        "  achieved: RMS error of the converged fits; bound: 1-sigma Cramér–Rao bound.\n"
-        "  A ratio near 1 means the layout delivers its bound; the RMS of n fits is\n"
-        "  itself uncertain by about 1/sqrt(2n)."
+    notes = Text(
+        "  achieved: RMS error of the converged fits; bound: 1-sigma Cramér–Rao bound; fits: "
+        "converged of tried. A ratio near 1 means the layout delivers its bound; the RMS of n "
+        "fits is itself uncertain by about 1/sqrt(2n)."
     )
+    flags = _findings_text("Check: ", findings.simulation_findings(sim, rows), "bold yellow")
+    return [table, notes] + ([Text(""), flags] if flags is not None else [])
 
 
 # --------------------------------------------------------------------------------------------
@@ -643,24 +735,29 @@ def print_written(
 ) -> None:
     """One line naming the result file written (and how to continue an interrupted run)."""
     con = _console(console)
-    line = Text(f"Result written to {os.fspath(path)}")
+    line = _user(f"Result written to {os.fspath(path)}")
     if not complete:
-        line.append(
-            f" (interrupted; continue with `probeplan {command} --resume {os.fspath(path)}`)"
+        line.append_text(
+            _user(f" (interrupted; continue with `probeplan {command} --resume {os.fspath(path)}`)")
         )
     con.print(line, soft_wrap=True)
 
 
 def print_layout_written(path, console: Console | None = None) -> None:
     """One line naming the layout CSV written by ``show --layout-csv``."""
-    _console(console).print(f"Layout written to {os.fspath(path)}", markup=False, highlight=False)
+    _console(console).print(_user(f"Layout written to {os.fspath(path)}"), soft_wrap=True)
 
 
 def print_plots(paths, console: Console | None = None) -> None:
-    """List the image files a ``plot`` command wrote."""
+    """List the image files a ``plot`` command wrote, and each plot not drawn with why
+    (``paths.skipped``: ``(file name, reason)`` pairs, see :func:`probeplan.plots.plot_all`)."""
     con = _console(console)
     for path in paths:
-        con.print(f"Plot written to {path}", markup=False, highlight=False)
+        con.print(_user(f"Plot written to {os.fspath(path)}"), soft_wrap=True)
+    for name, why in getattr(paths, "skipped", ()):
+        line = Text("Not drawn: ", style="bold yellow")
+        line.append_text(_user(f"{name}: {why}"))
+        con.print(Prose(line))
 
 
 def print_error(message: str, console: Console | None = None) -> None:
@@ -705,6 +802,7 @@ def print_internal_error(
 
 
 def _line(text: str, console: Console | None) -> None:
+    text = safe_text(text)  # a message may quote a file's contents
     if console is None:
         # Plain write: an error line must survive any terminal and never be re-wrapped.
         print(text, file=sys.stderr)

@@ -11,6 +11,7 @@ Each is also importable from the module that makes it (``probeplan.problem.Score
 
 from __future__ import annotations
 
+import math
 import tomllib
 from dataclasses import dataclass, field
 
@@ -48,6 +49,74 @@ def param_unit(name: str) -> str:
 def value_unit(criterion: str) -> str:
     """Unit of a criterion value: ``"log det, SI"`` (d), ``"m"`` (location), ``"1"`` (charge)."""
     return _VALUE_UNITS.get(criterion, "1")
+
+
+#: The prefixed units a quantity is shown in, largest first: (scale, shown unit).
+_PREFIXES: dict[str, tuple[tuple[float, str], ...]] = {
+    "m": ((1e3, "km"), (0.1, "m"), (0.0, "mm")),
+    "C": ((1.0, "C"), (1e-3, "mC"), (1e-6, "µC"), (1e-9, "nC"), (0.0, "pC")),
+    "V/m": ((1e6, "MV/m"), (1e3, "kV/m"), (0.0, "V/m")),
+}
+_SCALE = {"km": 1e3, "m": 1.0, "mm": 1e-3, "mC": 1e-3, "µC": 1e-6, "nC": 1e-9, "pC": 1e-12}
+_SCALE.update({"C": 1.0, "MV/m": 1e6, "kV/m": 1e3, "V/m": 1.0})
+
+
+def format_quantity(value: float, unit: str, digits: int = 3) -> str:
+    """A value for people: ``digits`` significant digits and a readable unit prefix.
+
+    Every number the summary, its notes and the plots show goes through this function (or
+    :func:`format_number` for a bare number), so they all round alike.
+
+    Parameters
+    ----------
+    value : float
+        In SI units.
+    unit : str
+        ``"m"`` (km from 1,000 m, mm below 10 cm), ``"C"`` (C, mC, µC, nC, pC), ``"V/m"``
+        (kV/m from 1,000 V/m, MV/m), ``"%"`` (``value`` is a fraction), ``"1"`` (no unit), or
+        any other unit, printed as given.
+    digits : int
+        Significant digits (3: what a bound or a position on a site plan supports).
+
+    Returns
+    -------
+    str
+        e.g. ``"1.25 km"``, ``"320 µC"``, ``"16.4 km"``; ``"unresolved"`` for +inf, ``"n/a"``
+        for NaN or None.
+    """
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return "n/a"
+    value = float(value)
+    if math.isinf(value):
+        return "unresolved" if value > 0 else "-inf"
+    if value != 0.0:  # round first, so 999.7 m reads 1.00 km and not 1000 m
+        value = float(f"{value:.{digits - 1}e}")
+    if unit == "%":
+        return f"{format_number(100.0 * value, digits)} %"
+    if unit == "1":
+        return format_number(value, digits)
+    if value == 0.0 or unit not in _PREFIXES:
+        return f"{format_number(value, digits)} {unit}"
+    shown = next(name for scale, name in _PREFIXES[unit] if abs(value) >= scale)
+    return f"{format_number(value / _SCALE[shown], digits)} {shown}"
+
+
+def format_number(x: float, digits: int = 3) -> str:
+    """``x`` with ``digits`` significant digits, without an exponent from 0.001 to 999,999.
+
+    Examples: 13406.356024918538 → ``"13400"``, 0.0123456 → ``"0.0123"``, 1.5e-7 →
+    ``"1.50e-07"``.
+    """
+    x = float(x)
+    if not math.isfinite(x):
+        return f"{x:g}"
+    if x == 0.0:
+        return "0"
+    if 1e-3 <= abs(x) < 1e6:
+        x = float(f"{x:.{digits - 1}e}")
+        decimals = max(0, digits - 1 - int(math.floor(math.log10(abs(x)))))
+        return f"{x:.{decimals}f}"
+    return f"{x:.{digits - 1}e}"
 
 
 def probe_names(result) -> tuple[str, ...]:
@@ -246,6 +315,13 @@ class SearchInfo:
     objective : str
         What the search optimised: "criterion", or "worst single loss" when the config asks
         to tolerate one failed probe (the stage and baseline values are then of that).
+    evaluations_asked : int or None
+        The refinement evaluations the config asked for (``[design] evaluations``); None in
+        results that did not record it (the summary then reads the stored config text).
+    evaluations_spent : tuple of (str, int)
+        Objective evaluations spent per stage, in order, e.g. ``(("greedy", 1), ("exchange",
+        1), ("refine", 40), ("refine, broke the mounting rules", 7))``; empty where not
+        recorded (the summary then counts ``history``).
     """
 
     history: np.ndarray
@@ -257,6 +333,8 @@ class SearchInfo:
     stages: tuple[tuple[str, float], ...] = ()
     seconds: float = 0.0
     objective: str = "criterion"
+    evaluations_asked: int | None = None
+    evaluations_spent: tuple[tuple[str, int], ...] = ()
 
 
 @dataclass(frozen=True, eq=False)

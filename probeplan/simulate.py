@@ -124,6 +124,7 @@ def simulate(
     trials: int = 200,
     scenarios=None,
     rng,
+    progress=None,
 ) -> Simulation:
     """Fit noisy readings of a layout many times and compare the errors with the bounds.
 
@@ -144,6 +145,10 @@ def simulate(
         Rows of ``problem.theta`` to simulate (default: :func:`default_scenarios`).
     rng : numpy.random.Generator or int
         Source of every random draw (an int seeds a new generator).
+    progress : callable(stage: str, done: int, total: int) or None
+        Called with ``("simulate", fits done, fits in all)`` as the fits go (a fit takes tens
+        of milliseconds, so a few hundred take long enough to want a progress bar);
+        :func:`probeplan.report.progress_bar` draws it.
 
     Returns
     -------
@@ -187,7 +192,10 @@ def simulate(
     lower, upper = fit_bounds(problem, theta_all)
     fitted = np.array(start)
     converged = np.zeros((n_sim, trials), dtype=bool)
+    tick = progress if progress is not None else (lambda stage, done, total: None)
+    tick("simulate", 0, n_sim * trials)
     for k in range(n_sim):
+        tick("simulate", k * trials, n_sim * trials)
         if singular[k] or not np.all(np.isfinite(crb[k]) & (crb[k] > 0)):
             fitted[k] = truth[k]  # nothing to fit: the layout cannot resolve this scenario
             continue
@@ -199,6 +207,8 @@ def simulate(
                 continue  # fewer readings than unknowns: counted as a failed fit
             x0 = inside(start[k, t], lo, hi)
             fitted[k, t], converged[k, t] = fit.solve(x0, noisy[k, t][keep], keep, crb[k], lo, hi)
+            tick("simulate", k * trials + t + 1, n_sim * trials)
+    tick("simulate", n_sim * trials, n_sim * trials)
 
     err = fitted - truth[:, None, :]
     w = converged[..., None]

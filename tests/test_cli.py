@@ -617,7 +617,7 @@ def test_show_reprints_every_section_from_the_file(tmp_path, capsys):
     text = flat(shown)
     for phrase in (
         "status: INTERRUPTED",
-        "If one meter fails: losing #0 mast-A hurts most",
+        "If one meter fails: losing mast-A hurts most",
         "values: worst single loss",
         "Budget options (target 1.5)",
         "CHEAPEST",
