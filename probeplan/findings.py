@@ -135,7 +135,7 @@ def wide_bounds(result) -> list[str]:
         return []
     n_s = crb.shape[0]
     lo, hi = theta.min(axis=0), theta.max(axis=0)
-    out = []
+    out, described = [], set()
     for j, name in enumerate(s.names):
         unit = param_unit(name)
         col = np.where(np.isnan(crb[:, j]), np.inf, crb[:, j])
@@ -144,8 +144,13 @@ def wide_bounds(result) -> list[str]:
         if not bad.any():
             continue
         k = int(np.argmax(col))
-        where = scenario_where(result, k)
-        worst = f"worst {format_quantity(col[k], unit)} in scenario {k}"
+        where = scenario_where(result, k) if k not in described else ""
+        described.add(k)
+        worst = (
+            f"worst {format_quantity(col[k], unit)} in scenario {k}"
+            if np.isfinite(col[k])
+            else f"not resolved at all in scenario {k}"
+        )
         worst += f" ({where})" if where else ""
         scen = f"{int(bad.sum())} of {n_s} scenario{'s' if n_s != 1 else ''}"
         if span > 0:
@@ -227,13 +232,13 @@ def _likely_cause(field: float, who: str, probes: dict, saturated: bool) -> str:
     noise = _number(probes.get("noise_v_per_m"))
     if who and saturated and rng and field > SLIP_FACTOR * rng:
         return (
-            f"Likely cause: a charge in the wrong unit. {who[0].upper()}{who[1:]}, over "
+            f"Likely cause: a charge in the wrong unit: {who}, over "
             f"{format_number(field / rng, 2)} times the range (`range_v_per_m` = "
             f"{format_quantity(rng, 'V/m')}). `charge_c` is in coulombs: 3 µC is 3e-6, not 3."
         )
     if who and noise and field < noise / SLIP_FACTOR:
         return (
-            f"Likely cause: a charge in the wrong unit. {who[0].upper()}{who[1:]}, below "
+            f"Likely cause: a charge in the wrong unit: {who}, below "
             f"1/{format_number(noise / max(field, 1e-300), 2)} of the noise (`noise_v_per_m` ="
             f" {format_quantity(noise, 'V/m')}). `charge_c` is in coulombs."
         )

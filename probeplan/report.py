@@ -558,7 +558,7 @@ def _budget_table(result: Result) -> Table:
         if k == b.cheapest:
             notes.append("CHEAPEST")
         if b.pareto[k]:
-            notes.append("pareto")
+            notes.append("Pareto")
         _row(
             table,
             str(k),
@@ -567,7 +567,7 @@ def _budget_table(result: Result) -> Table:
             f"{float(b.cost[k]):,.0f}",
             _crit(result, float(b.value[k])),
             "yes" if b.meets_target[k] else "no",
-            ", ".join(notes),
+            " + ".join(notes),
         )
     return table
 
@@ -582,15 +582,15 @@ def _unresolved_text(result: Result) -> Text:
     where = findings.scenario_where(result, int(k))
     if where:
         text.append_text(_user(f": {where}", style="bold"))
-    text.append("):\n", style="bold")
+    text.append("):", style="bold")
     for d in s.unresolved:
         how = (
             "not resolved"
             if d.singular
             else f"poorly resolved, relative eigenvalue {d.relative_eigenvalue:.1e}"
         )
-        text.append_text(_user(f"  - {d.text} [{how}]\n"))
-    text.rstrip()
+        text.append("\n")
+        text.append_text(_user(f"  - {d.text} [{how}]"))
     return text
 
 
