@@ -397,18 +397,28 @@ def simulation_findings(sim, rows: list[dict]) -> list[str]:
     """
     out = []
     conv = np.asarray(sim.converged, dtype=bool)
-    n_fail = int((~conv).sum())
+    crb = np.asarray(sim.crb_std, dtype=float)
+    # A scenario the layout cannot resolve is not fitted at all: say so apart from failures.
+    unfit = ~np.all(np.isfinite(crb) & (crb > 0), axis=1)
+    if unfit.any():
+        which = ", ".join(str(int(s)) for s in np.asarray(sim.scenarios)[unfit])
+        out.append(
+            f"scenario{'s' if unfit.sum() > 1 else ''} {which}: not fitted, the layout cannot "
+            "resolve every parameter there (its bound is infinite)."
+        )
+    failed = ~conv & ~unfit[:, None]
+    n_fail = int(failed.sum())
     if n_fail:
         per = [
-            f"scenario {int(s)}: {int((~conv[k]).sum())} of {conv.shape[1]}"
+            f"scenario {int(s)}: {int(failed[k].sum())} of {conv.shape[1]}"
             for k, s in enumerate(sim.scenarios)
-            if (~conv[k]).any()
+            if failed[k].any()
         ]
         out.append(
-            f"{n_fail} of {conv.size} fits failed (the solver did not converge, or fewer "
-            f"readings than unknowns were left unsaturated): {'; '.join(per)}. The achieved "
-            "errors are over the converged fits only and understate the error where many "
-            "failed."
+            f"{n_fail} of {int((~unfit).sum()) * conv.shape[1]} fits failed (the solver did "
+            "not converge, or fewer readings than unknowns were left unsaturated): "
+            f"{'; '.join(per)}. The achieved errors are over the converged fits only and "
+            "understate the error where many failed."
         )
     flagged = [r for r in rows if ratio_flag(r["ratio"])]
     if flagged:

@@ -11,14 +11,20 @@ written.
   source 0 for a charge at each horizontal position (Cramér–Rao, batched over the grid).
 * :func:`budget_curve` — cost against the criterion for every grade, the Pareto front and the
   target.
-* :func:`plot_all` — the plots that apply to a result, in one folder.
+* :func:`plot_all` — the plots that apply to a result, in one folder, and why any other was
+  not drawn.
 
 Symbols (our own): installed meters are blue squares, new meters orange triangles, charges
-purple stars; mounting regions are light green, keep-outs red hatching.
+purple stars; mounting regions are light green, keep-outs red hatching. Meters and keep-outs
+carry their names; when the meters stand at different heights (walls, masts, ceilings) each
+label gives its height too. Every number goes through
+:func:`~probeplan.resulttypes.format_quantity`, every user string through
+:func:`~probeplan.report.safe_text` (and ``$`` is never read as mathematics).
 """
 
 from __future__ import annotations
 
+import textwrap
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -28,12 +34,13 @@ from matplotlib.colors import LogNorm
 from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.patches import Circle, Patch, Polygon
-from matplotlib.ticker import FuncFormatter, NullFormatter
+from matplotlib.ticker import FixedFormatter, FixedLocator, NullFormatter
 
 from .fisher import CRITERIA, covariance, fisher_from_rows
 from .probes import whitened_rows
 from .problem import draw_scenarios
-from .resulttypes import param_unit, probe_names
+from .report import safe_text
+from .resulttypes import format_quantity, param_unit, probe_names
 from .store.files import write_atomically
 
 #: Output formats.
@@ -45,6 +52,8 @@ DPI: int = 120
 KM_SPAN_M: float = 2000.0
 #: Grid points of the coverage map per batch (keeps the Jacobian near a few MB).
 _COVERAGE_BATCH = 2048
+#: Characters of a title line (an 8-inch figure at 11 pt holds about 75).
+TITLE_CHARS = 64
 
 SIGN_CAPTION = (
     "Local frame, z up, ground plan (x, y). Fields: physics sign convention "
@@ -101,7 +110,8 @@ class Coverage:
 def coverage_grid(
     problem, positions_m, gain=None, resolution: int = 40, *, axes=None, grades=None
 ) -> Coverage:
-    """1-sigma horizontal location error of source 0 at every point of a grid over the site.
+    """1-sigma horizontal location error of source 0 at every point of a grid over the site
+    and over every horizontal position the scenarios give source 0.
 
     Every other parameter keeps its nominal value (scenario 0): height, charge, size of source
     0, the other sources and the background. The bound is the same one :meth:`Problem.score`
@@ -142,7 +152,10 @@ def coverage_grid(
     base = problem.theta[0]
     cx, cy = (scene.param_names.index(n) for n in ("s0.x_m", "s0.y_m"))
     ix, iy = names.index("s0.x_m"), names.index("s0.y_m")
-    x0, y0, x1, y1 = _extent(problem.config, meters.positions_m, margin=0.05)
+    # The map spans where the charge may be (the scenarios), not only where meters may go.
+    spread = problem.theta[:, [cx, cy]]
+    around = np.vstack([meters.positions_m[:, :2], spread])
+    x0, y0, x1, y1 = _extent(problem.config, np.c_[around, np.zeros(len(around))], margin=0.05)
     xs = np.linspace(x0, x1, int(resolution))
     ys = np.linspace(y0, y1, int(resolution))
     gx, gy = np.meshgrid(xs, ys)
@@ -196,6 +209,7 @@ def site_map(config, result_or_score, path) -> Path:
     score = getattr(result_or_score, "score", result_or_score)
     pos = np.asarray(score.positions_m, dtype=float).reshape(-1, 3)
     installed = np.asarray(score.installed, dtype=bool).reshape(-1)
+    names = _names(config, result_or_score, installed)
     x0, y0, x1, y1 = _extent(config, pos, margin=0.06)
     scale, unit = _scale(x0, y0, x1, y1, config)
 
@@ -223,45 +237,45 @@ def site_map(config, result_or_score, path) -> Path:
     handles.append(
         Line2D([], [], ls="", marker="*", color=_SOURCE, ms=12, label="charge (nominal)")
     )
-    handles += _draw_probes(ax, pos, installed, scale)
+    handles += _draw_probes(ax, pos, installed, scale, names)
     ax.set_xlim(x0 / scale, x1 / scale)
     ax.set_ylim(y0 / scale, y1 / scale)
     ax.set_aspect("equal")
     _axis_labels(ax, config, unit)
     if getattr(config, "frame", None) is not None:
-        names = probe_names(result_or_score) if hasattr(result_or_score, "score") else None
-        _map_furniture(ax, config, pos, names, scale)
-    ax.set_title(f"{config.title}\nsite map: {int((~installed).sum())} new meter(s)", fontsize=11)
+        _map_furniture(ax)
+    _title(ax, config.title, f"site map: {int((~installed).sum())} new meter(s)")
     shadow = "Walls and 3-D keep-outs are drawn as their shadows on the ground plan."
-    _legend_and_caption(fig, handles, f"{shadow}\n{SIGN_CAPTION}")
+    _legend_and_caption(fig, handles, f"{shadow}\n{_height_caption(pos)}{SIGN_CAPTION}")
     return _save(fig, path, fmt)
 
 
 def coverage_map(
-    problem, positions_m, gain, path, resolution: int = 40, *, axes=None, grades=None
+    problem, positions_m, gain, path, resolution: int = 40, *, axes=None, grades=None, names=None
 ) -> Path:
-    """Draw the 1-sigma horizontal location error of source 0 over the site.
+    """Draw the 1-sigma horizontal location error of source 0 over the site and the scenarios.
 
     Parameters
     ----------
-    problem : probeplan.problem.Problem
-        Must estimate x and y of source 0 (else ``ValueError``).
-    positions_m : (n_new, 3) float
-        New probes, m (installed ones come from the problem).
-    gain : (n_new,) float or None
-        Default: ``problem.gain_at(positions_m)``.
+    problem, positions_m, gain, resolution, axes, grades
+        As in :func:`coverage_grid` (x and y of source 0 must be estimated).
     path : str or path-like
         Output file, ``.png`` or ``.svg``.
-    resolution : int
-        Grid points along each axis (see :func:`coverage_grid`).
-    axes, grades
-        As in :func:`coverage_grid`.
+    names : sequence of n_probes str or None
+        Meter names, installed first (default: the config's installed names, then ``new-k``).
 
     Returns
     -------
     Path
     """
     path, fmt = _check_path(path)
+    fig = _coverage_figure(
+        problem, positions_m, gain, resolution, axes=axes, grades=grades, names=names
+    )
+    return _save(fig, path, fmt)
+
+
+def _coverage_figure(problem, positions_m, gain, resolution, *, axes, grades, names) -> Figure:
     cov = coverage_grid(problem, positions_m, gain, resolution, axes=axes, grades=grades)
     meters = problem.meters(positions_m, gain, axes, grades)
     config = problem.config
@@ -279,11 +293,11 @@ def coverage_map(
             cov.x_m / scale, cov.y_m / scale, err, norm=norm, cmap="viridis_r", shading="nearest"
         )
         bar = fig.colorbar(mesh, ax=ax, shrink=0.85)
-        bar.set_label("1-σ horizontal location error of source 0, sqrt(C_xx + C_yy) (m)")
-        plain = FuncFormatter(lambda v, _pos: f"{v:g}")
-        bar.formatter = plain
-        # Minor ticks get labels only when the colours span less than a decade.
-        bar.minorformatter = plain if hi < 10 * lo else NullFormatter()
+        bar.set_label("1-σ horizontal location error of source 0, sqrt(C_xx + C_yy)")
+        ticks = colorbar_ticks(lo, hi)
+        bar.locator = FixedLocator(ticks)
+        bar.formatter = FixedFormatter([format_quantity(v, "m") for v in ticks])
+        bar.minorformatter = NullFormatter()
         levels = _decade_levels(lo, hi)
         if levels.size and finite.size > 3:
             cs = ax.contour(
@@ -297,20 +311,25 @@ def coverage_map(
             )
             ax.clabel(cs, fmt=_level_label, fontsize=7)
     _draw_keepouts(ax, config.keepouts, scale, fill=False)
-    handles = _draw_probes(ax, meters.positions_m, meters.installed, scale)
+    if names is None:
+        names = _names(config, None, meters.installed)
+    handles = _draw_probes(ax, meters.positions_m, meters.installed, scale, names)
     ax.set_xlim(cov.x_m[0] / scale, cov.x_m[-1] / scale)
     ax.set_ylim(cov.y_m[0] / scale, cov.y_m[-1] / scale)
     ax.set_aspect("equal")
     _axis_labels(ax, config, unit)
     if getattr(config, "frame", None) is not None:
-        _map_furniture(ax, config, meters.positions_m, None, scale)
-    ax.set_title(f"{config.title}\ncoverage: where a charge is located how well", fontsize=11)
+        _map_furniture(ax)
+    _title(ax, config.title, "coverage: where a charge is located how well")
+    grey = "grey: not resolvable" if finite.size else "grey: no point here is resolvable"
     note = (
-        f"Source 0 at z = {cov.z_m:g} m, q = {cov.charge_c:g} C, other parameters nominal; "
-        f"grey: not resolvable.\n{SIGN_CAPTION}"
+        f"Source 0 at z = {format_quantity(cov.z_m, 'm')}, q = "
+        f"{format_quantity(cov.charge_c, 'C')}, other parameters nominal; the map spans the "
+        f"site and every scenario's source 0; {grey}.\n"
+        f"{_height_caption(meters.positions_m)}{SIGN_CAPTION}"
     )
     _legend_and_caption(fig, handles, note)
-    return _save(fig, path, fmt)
+    return fig
 
 
 def budget_curve(budget_table, path, criterion: str, target: float | None) -> Path:
@@ -412,7 +431,22 @@ def budget_curve(budget_table, path, criterion: str, target: float | None) -> Pa
     return _save(fig, path, fmt)
 
 
-def plot_all(result, config, problem, folder, fmt: str = "png") -> list[Path]:
+class PlotFiles(list):
+    """The files :func:`plot_all` wrote (a list of Path), and what it could not draw.
+
+    Attributes
+    ----------
+    skipped : list of (str, str)
+        ``(file name, why it was not drawn)`` for a plot that applies to such results but not
+        to this one.
+    """
+
+    def __init__(self, paths=()) -> None:
+        super().__init__(paths)
+        self.skipped: list[tuple[str, str]] = []
+
+
+def plot_all(result, config, problem, folder, fmt: str = "png") -> PlotFiles:
     """Write every plot that applies to a result.
 
     Parameters
@@ -430,8 +464,8 @@ def plot_all(result, config, problem, folder, fmt: str = "png") -> list[Path]:
 
     Returns
     -------
-    list of Path
-        The files written, in that order.
+    PlotFiles
+        The files written, in that order; ``.skipped`` says why a map was not drawn.
     """
     if fmt not in FORMATS:
         raise ValueError(f"`fmt` must be one of {', '.join(FORMATS)}; got {fmt!r}.")
@@ -439,17 +473,29 @@ def plot_all(result, config, problem, folder, fmt: str = "png") -> list[Path]:
     folder.mkdir(parents=True, exist_ok=True)
     score = result.score
     new = ~np.asarray(score.installed, dtype=bool)
-    out = [site_map(config, result, folder / f"site_map.{fmt}")]
+    names = probe_names(result)
+    out = PlotFiles([site_map(config, result, folder / f"site_map.{fmt}")])
+    coverage = f"coverage_map.{fmt}"
     if "s0.x_m" in problem.names and "s0.y_m" in problem.names:
         axes, grades = score.new_meters()
-        out.append(
-            coverage_map(
-                problem,
-                score.positions_m[new],
-                score.gain[new],
-                folder / f"coverage_map.{fmt}",
-                axes=axes,
-                grades=grades,
+        path = coverage_map(
+            problem,
+            score.positions_m[new],
+            score.gain[new],
+            folder / coverage,
+            axes=axes,
+            grades=grades,
+            names=names,
+        )
+        out.append(path)
+    else:
+        estimated = ", ".join(problem.names) or "nothing"
+        out.skipped.append(
+            (
+                coverage,
+                "it shows the horizontal location error of source 0, which this config does "
+                f'not estimate (it estimates {estimated}); add "x" and "y" to '
+                "source[0].estimate to draw it.",
             )
         )
     if result.budget is not None:
@@ -521,6 +567,20 @@ def _locate_times(loc) -> tuple[np.ndarray, str]:
     return loc.time_s, "time (s)"
 
 
+def colorbar_ticks(lo: float, hi: float) -> np.ndarray:
+    """At least two labelled ticks for a logarithmic colour bar from ``lo`` to ``hi`` (> 0).
+
+    Values 1, 2, 5 × 10^k inside the range (decades only when there are many); where fewer
+    than two fall inside it (a narrow range), its ends and their geometric mean.
+    """
+    if not (lo > 0 and hi > lo):
+        return np.array([lo]) if lo > 0 else np.zeros(0)
+    inside = _decade_levels(lo, hi, ends=True)
+    if inside.size >= 2:
+        return inside
+    return np.array([lo, float(np.sqrt(lo * hi)), hi])
+
+
 # --------------------------------------------------------------------------------------------
 # Private helpers
 # --------------------------------------------------------------------------------------------
@@ -541,7 +601,42 @@ def _figure():
 def _legend_and_caption(fig: Figure, handles: list, caption: str) -> None:
     """Legend right of the axes, caption under them; both inside the constrained layout."""
     fig.legend(handles=handles, loc="outside right upper", fontsize=8, frameon=False)
-    fig.supxlabel(caption, fontsize=7, color="0.3")
+    lines = [w for line in caption.split("\n") for w in textwrap.wrap(line, 120) or [""]]
+    fig.supxlabel("\n".join(lines), fontsize=7, color="0.3")
+
+
+def _plain(text: object) -> str:
+    """User text for a figure: escaped (:func:`safe_text`) and never read as mathematics."""
+    return safe_text(text).replace("$", r"\$")
+
+
+def _title(ax, title: str, what: str) -> None:
+    """The config's title (at most two lines of :data:`TITLE_CHARS`) over what the plot is."""
+    lines = textwrap.wrap(_plain(title or "(untitled)"), TITLE_CHARS, max_lines=2, placeholder=" …")
+    ax.set_title("\n".join([*lines, what]), fontsize=11)
+
+
+def _names(config, result, installed: np.ndarray) -> tuple[str, ...]:
+    """Meter names, installed first: the result's, else the config's installed names, new-k."""
+    if result is not None and hasattr(result, "config_text"):
+        return probe_names(result)
+    n_new = int(np.count_nonzero(~installed))
+    inst = tuple(getattr(p, "name", f"installed-{k}") for k, p in enumerate(config.installed))
+    return inst + tuple(f"new-{k}" for k in range(n_new))
+
+
+def _heights_differ(pos: np.ndarray) -> bool:
+    z = pos[:, 2]
+    return z.size > 1 and float(np.ptp(z)) > 1e-6 * max(1.0, float(np.max(np.abs(z))))
+
+
+def _height_caption(pos: np.ndarray) -> str:
+    """A caption line on the meters' heights: each label has it when they differ."""
+    if not pos.size:
+        return ""
+    if _heights_differ(pos):
+        return "Meters stand at different heights: each label gives its z.\n"
+    return f"Every meter at z = {format_quantity(float(pos[0, 2]), 'm')}.\n"
 
 
 def _check_path(path) -> tuple[Path, str]:
@@ -611,7 +706,7 @@ def _draw_regions(ax, regions, scale: float) -> bool:
 
 
 def _draw_keepouts(ax, keepouts, scale: float, fill: bool = True) -> bool:
-    for r in keepouts:
+    for k, r in enumerate(keepouts):
         geom = _xy_geometry(r, r.buffer_m)
         _draw_geometry(
             ax,
@@ -622,11 +717,38 @@ def _draw_keepouts(ax, keepouts, scale: float, fill: bool = True) -> bool:
             hatch="xx" if fill else None,
             lw=1.0 if fill else 1.4,
         )
+        if not geom.is_empty:
+            x, y = np.asarray(geom.representative_point().coords[0]) / scale
+            name = getattr(r, "name", "") or f"keep-out {k}"
+            ax.annotate(
+                _plain(name),
+                (x, y),
+                fontsize=7,
+                color=_KEEPOUT_EDGE,
+                ha="center",
+                va="center",
+                bbox={"boxstyle": "round,pad=0.15", "fc": "white", "ec": "none", "alpha": 0.6},
+                zorder=3,  # under the meters and the charges
+            )
     return bool(keepouts)
 
 
-def _draw_probes(ax, pos: np.ndarray, installed: np.ndarray, scale: float) -> list:
+def _draw_probes(ax, pos: np.ndarray, installed: np.ndarray, scale: float, names=None) -> list:
+    """The meters as markers, each labelled with its name (and its height when they differ)."""
     handles = []
+    heights = _heights_differ(pos)
+    for k in range(pos.shape[0] if names is not None else 0):
+        label = _plain(names[k])
+        if heights:
+            label += f"\nz = {format_quantity(float(pos[k, 2]), 'm')}"
+        ax.annotate(
+            label,
+            (pos[k, 0] / scale, pos[k, 1] / scale),
+            textcoords="offset points",
+            xytext=(6, 4),
+            fontsize=7,
+            zorder=8,
+        )
     for mask, style in ((installed, _INSTALLED), (~installed, _NEW)):
         if mask.any():
             (h,) = ax.plot(
@@ -730,9 +852,10 @@ def _axis_labels(ax, config, unit: str) -> None:
         ax.set_ylabel(f"y ({unit})")
 
 
-def _map_furniture(ax, config, pos: np.ndarray, names, scale: float) -> None:
-    """A scale bar, a north arrow (grid north of the frame: true north at its origin), and
-    the names of the meters and keep-outs."""
+def _map_furniture(ax) -> None:
+    """A scale bar and a north arrow (grid north of the frame: true north at its origin); the
+    meters and keep-outs carry their names on every map (:func:`_draw_probes`,
+    :func:`_draw_keepouts`)."""
     from mpl_toolkits.axes_grid1.anchored_artists import AnchoredSizeBar
 
     lo, hi = ax.get_xlim()
@@ -761,39 +884,22 @@ def _map_furniture(ax, config, pos: np.ndarray, names, scale: float) -> None:
         fontweight="bold",
         arrowprops={"arrowstyle": "-|>", "color": "black", "lw": 1.5},
     )
-    for k, name in enumerate(names or ()):
-        ax.annotate(
-            name,
-            pos[k, :2] / scale,
-            xytext=(4, 4),
-            textcoords="offset points",
-            fontsize=7,
-            zorder=6,
-        )
-    for r in config.keepouts:
-        if r.name:
-            c = shapely.centroid(_xy_geometry(r))
-            ax.annotate(
-                r.name,
-                (c.x / scale, c.y / scale),
-                ha="center",
-                fontsize=7,
-                color=_KEEPOUT_EDGE,
-                zorder=6,
-            )
 
 
-def _decade_levels(lo: float, hi: float) -> np.ndarray:
-    """Contour levels 1, 2, 5 × 10^k within (lo, hi); decades only when there are many."""
+def _decade_levels(lo: float, hi: float, ends: bool = False) -> np.ndarray:
+    """Levels 1, 2, 5 × 10^k in (lo, hi) ([lo, hi] with ``ends``); decades only if many."""
     if not (lo > 0 and hi > lo):
         return np.zeros(0)
     ks = np.arange(np.floor(np.log10(lo)), np.ceil(np.log10(hi)) + 1)
     levels = (np.array([1.0, 2.0, 5.0])[None, :] * 10.0 ** ks[:, None]).ravel()
-    levels = levels[(levels > lo) & (levels < hi)]
+    if ends:
+        levels = levels[(levels >= lo) & (levels <= hi)]
+    else:
+        levels = levels[(levels > lo) & (levels < hi)]
     if levels.size > 6:  # a wide range: decades only, to keep the labels readable
         levels = levels[np.isclose(np.log10(levels) % 1.0, 0.0, atol=1e-9)]
     return levels
 
 
 def _level_label(v: float) -> str:
-    return f"{v:g} m"
+    return format_quantity(v, "m")

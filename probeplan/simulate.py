@@ -192,8 +192,7 @@ def simulate(
     lower, upper = fit_bounds(problem, theta_all)
     fitted = np.array(start)
     converged = np.zeros((n_sim, trials), dtype=bool)
-    tick = progress if progress is not None else (lambda stage, done, total: None)
-    tick("simulate", 0, n_sim * trials)
+    tick = progress or (lambda *_: None)
     for k in range(n_sim):
         tick("simulate", k * trials, n_sim * trials)
         if singular[k] or not np.all(np.isfinite(crb[k]) & (crb[k] > 0)):

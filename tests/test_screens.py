@@ -493,3 +493,15 @@ def test_nothing_assumed_when_nothing_is_drawn():
 def test_format_number_rounds_long_floats():
     assert format_number(13406.356024918538) == "13400"
     assert format_number(-0.000123456) == "-1.23e-04"
+
+
+def test_an_unresolved_scenario_is_not_counted_as_failed_fits():
+    conv = np.ones((2, 5), dtype=bool)
+    conv[0] = False
+    r = simulation_result(conv, [10.0, 12.0], [9.5, 11.0])
+    crb = np.array(r.simulation.crb_std)
+    crb[0, 2] = np.inf
+    r = dataclasses.replace(r, simulation=dataclasses.replace(r.simulation, crb_std=crb))
+    out = flat(render(r))
+    assert "scenario 0: not fitted, the layout cannot resolve every parameter there" in out
+    assert "fits failed" not in out
