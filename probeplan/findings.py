@@ -173,8 +173,8 @@ def wide_bounds(result) -> list[str]:
 def units_slip(result) -> list[str]:
     """Loud warnings for a config that cannot mean what it says, with the likely cause.
 
-    Triggers: every meter saturates in every scenario, or the criterion is not finite. The
-    likely cause is read from the nominal charges of the config text: the point-charge field
+    Triggers: every meter saturates in every scenario, the criterion is not finite, or the
+    nominal fields at the meters are a thousandth of their noise or less. The likely cause is read from the nominal charges of the config text: the point-charge field
     k|q|/d² at the nearest meter beside the meters' range and noise (a slip between C and µC
     is a factor of a million).
     """
@@ -182,10 +182,13 @@ def units_slip(result) -> list[str]:
     sat = np.asarray(s.saturated, dtype=float)
     all_saturated = bool(sat.size) and bool(np.all(sat >= 1.0))
     finite = math.isfinite(float(s.value))
-    if not all_saturated and finite:
-        return []
     probes = config_tables(result).get("probes", {})
     probes = probes if isinstance(probes, dict) else {}
+    field, who = _nearest_field(result)
+    noise = _number(probes.get("noise_v_per_m"))
+    faint = bool(who) and noise is not None and field < noise / SLIP_FACTOR
+    if not all_saturated and finite and not faint:
+        return []
     what = []
     if all_saturated:
         what.append("every meter saturates in every scenario, so no reading carries information")
@@ -195,7 +198,8 @@ def units_slip(result) -> list[str]:
             f"the criterion is {format_number(float(s.value))}: the layout resolves the "
             f"estimated parameters in {len(s.singular) - n_sing} of {len(s.singular)} scenarios"
         )
-    field, who = _nearest_field(result)
+    if faint and not all_saturated:
+        what.append("the charges' fields at the meters are far below the meters' noise")
     cause = _likely_cause(field, who, probes, all_saturated)
     return [f"{'; '.join(what)}. {cause}"]
 

@@ -505,3 +505,51 @@ def test_an_unresolved_scenario_is_not_counted_as_failed_fits():
     out = flat(render(r))
     assert "scenario 0: not fitted, the layout cannot resolve every parameter there" in out
     assert "fits failed" not in out
+
+
+# The CLI end to end: a storm charge typed in µC where C was meant, and one typed in C where µC
+# was meant for a small indoor case (both fictional).
+SLIP_SITE = """title = "Fictional slip site"
+seed = 1
+[ground]
+z_m = 0.0
+[probes]
+count = 4
+component = "z"
+noise_v_per_m = 10.0
+range_v_per_m = 50000.0
+[[region]]
+kind = "rectangle"
+min_m = [{lo}, {lo}]
+max_m = [{hi}, {hi}]
+z_m = 0.0
+[[source]]
+kind = "point"
+charge_c = {charge}
+center_m = [0.0, 0.0, {height}]
+estimate = ["charge", "x", "y", "z"]
+[design]
+scenarios = 2
+"""
+
+
+@pytest.mark.parametrize(
+    ("lo", "hi", "charge", "height", "phrase"),
+    [
+        (-15.0, 15.0, 3.0, 3.0, "every meter saturates in every scenario"),  # 3 C indoors
+        (-5000.0, 5000.0, -20e-6, 7000.0, "far below the meters' noise"),  # µC in a storm
+    ],
+)
+def test_a_units_slip_is_loud_on_the_command_line(tmp_path, capsys, lo, hi, charge, height, phrase):
+    from probeplan.cli import main
+
+    config = tmp_path / "slip.toml"
+    config.write_text(SLIP_SITE.format(lo=lo, hi=hi, charge=charge, height=height))
+    layout = tmp_path / "layout.csv"
+    layout.write_text(f"x_m,y_m,z_m\n{lo},{lo},0\n{hi},{lo},0\n{lo},{hi},0\n0,{hi},0\n")
+    code = main(["score", str(config), "--layout", str(layout)])
+    out = flat(capsys.readouterr().out)
+    assert code == 0  # the summary is written; the warning says what is wrong (README)
+    assert "WARNING:" in out and phrase in out
+    assert "Likely cause: a charge in the wrong unit" in out
+    assert "`charge_c` is in coulombs" in out
