@@ -174,9 +174,10 @@ def units_slip(result) -> list[str]:
     """Loud warnings for a config that cannot mean what it says, with the likely cause.
 
     Triggers: every meter saturates in every scenario, the criterion is not finite, or the
-    nominal fields at the meters are a thousandth of their noise or less. The likely cause is read from the nominal charges of the config text: the point-charge field
-    k|q|/d² at the nearest meter beside the meters' range and noise (a slip between C and µC
-    is a factor of a million).
+    nominal fields at the meters are a thousandth of their noise or less. The likely cause is
+    read from the nominal charges of the config text: the point-charge field k|q|/d² at the
+    nearest meter beside the meters' range and noise (a slip between C and µC is a factor of
+    a million).
     """
     s = result.score
     sat = np.asarray(s.saturated, dtype=float)

@@ -760,6 +760,15 @@ def print_plots(paths, console: Console | None = None) -> None:
         con.print(Prose(line))
 
 
+def print_warnings(result: Result, console: Console | None = None) -> bool:
+    """The summary's warnings alone, on standard error (for ``--quiet``, which prints no
+    summary: a units slip must still be seen). Returns whether there was any."""
+    text = _findings_text("WARNING: ", findings.units_slip(result), "bold red")
+    if text is not None:
+        _console(console, stderr=True).print(Prose(text))
+    return text is not None
+
+
 def print_error(message: str, console: Console | None = None) -> None:
     """One line on standard error: ``probeplan: error: <message>``."""
     _line(f"probeplan: error: {message}", console)

@@ -553,3 +553,14 @@ def test_a_units_slip_is_loud_on_the_command_line(tmp_path, capsys, lo, hi, char
     assert "WARNING:" in out and phrase in out
     assert "Likely cause: a charge in the wrong unit" in out
     assert "`charge_c` is in coulombs" in out
+
+
+def test_warnings_alone_for_a_quiet_run():
+    r = wide_result()
+    buf = io.StringIO()
+    assert report.print_warnings(r, Console(file=buf, width=80))
+    assert flat(buf.getvalue()).startswith("WARNING: every meter saturates in every scenario")
+    healthy = make_result(np.random.default_rng(4), singular=False)
+    buf = io.StringIO()
+    assert not report.print_warnings(healthy, Console(file=buf, width=80))
+    assert buf.getvalue() == ""
