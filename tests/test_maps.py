@@ -10,58 +10,35 @@ import pytest
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.transforms import Bbox
 from rich.console import Console
+from sites import ALL, make_config, point_source, rectangle
 
 from probeplan import plots, report
-from probeplan.config import parse_config
 from probeplan.problem import build_problem
 from probeplan.result import make_result
 
 # A small yard (200 m × 200 m) under a storm charge that the scenarios move over 4 km.
-YARD = """
-title = "{title}"
-seed = 2
-
-[ground]
-z_m = 0.0
-
-[probes]
-count = 3
-component = "z"
-noise_v_per_m = 10.0
-range_v_per_m = 1e6
-
-[[probes.installed]]
-name = "mast-A"
-position_m = [-80.0, 60.0, {mast_z}]
-
-[[region]]
-kind = "rectangle"
-min_m = [-100.0, -100.0]
-max_m = [100.0, 100.0]
-z_m = 0.0
-
-[[keepout]]
-kind = "rectangle"
-name = "fuel bund"
-min_m = [-20.0, -20.0]
-max_m = [20.0, 20.0]
-
-[[source]]
-kind = "point"
-charge_c = -10.0
-center_m = [0.0, 0.0, 3000.0]
-estimate = {estimate}
-center_range_m = [[-2000.0, 2000.0], [-1500.0, 1000.0], [2500.0, 3500.0]]
-
-[design]
-scenarios = 8
-"""
+YARD = {
+    "seed": 2,
+    "probes": {"count": 3, "noise_v_per_m": 10.0, "range_v_per_m": 1e6},
+    "region": [rectangle(100.0)],
+    "keepout": [
+        {"kind": "rectangle", "name": "fuel bund", "min_m": [-20.0, -20.0], "max_m": [20.0, 20.0]}
+    ],
+    "design": {"scenarios": 8},
+}
+SPREAD = [[-2000.0, 2000.0], [-1500.0, 1000.0], [2500.0, 3500.0]]
 
 LAYOUT = np.array([[90.0, -90.0, 0.0], [-90.0, -90.0, 0.0], [90.0, 90.0, 0.0]])
 
 
-def yard(title="Fictional yard", mast_z=0.0, estimate='["charge", "x", "y", "z"]'):
-    cfg = parse_config(YARD.format(title=title, mast_z=mast_z, estimate=estimate), "yard.toml")
+def yard(title="Fictional yard", mast_z=0.0, estimate=ALL):
+    cfg = make_config(
+        "yard.toml",
+        YARD,
+        title=title,
+        probes={"installed": [{"name": "mast-A", "position_m": [-80.0, 60.0, mast_z]}]},
+        source=[point_source(-10.0, estimate=estimate, center_range_m=SPREAD)],
+    )
     return cfg, build_problem(cfg)
 
 
@@ -117,7 +94,7 @@ def test_the_drawn_colour_bar_labels_its_ticks_in_readable_units(figures):
     "title",
     [
         "A fictional site " * 20,  # far longer than a figure is wide
-        "Costs $5 and $6 — a fictional \\u001b[2J site",  # no mathematics, no escape
+        "Costs $5 and $6 — a fictional \x1b[2J site",  # no mathematics, no escape
     ],
 )
 def test_titles_fit_the_figure(figures, title):
@@ -154,7 +131,7 @@ def test_meters_at_different_heights_show_their_height(figures):
 
 
 def test_a_map_that_cannot_be_drawn_says_why(tmp_path):
-    cfg, pr = yard(estimate='["charge", "z"]')
+    cfg, pr = yard(estimate=("charge", "z"))
     result = make_result("score", cfg, pr.score(LAYOUT))
     paths = plots.plot_all(result, cfg, pr, tmp_path)
     assert [p.name for p in paths] == ["site_map.png"]

@@ -17,6 +17,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from result_builders import NAMES, make_result, make_simulation
 from rich.console import Console
+from sites import point_source, rectangle, write_site
 
 from probeplan import findings, report
 from probeplan.resulttypes import Direction, format_number, format_quantity
@@ -509,30 +510,6 @@ def test_an_unresolved_scenario_is_not_counted_as_failed_fits():
 
 # The CLI end to end: a storm charge typed in µC where C was meant, and one typed in C where µC
 # was meant for a small indoor case (both fictional).
-SLIP_SITE = """title = "Fictional slip site"
-seed = 1
-[ground]
-z_m = 0.0
-[probes]
-count = 4
-component = "z"
-noise_v_per_m = 10.0
-range_v_per_m = 50000.0
-[[region]]
-kind = "rectangle"
-min_m = [{lo}, {lo}]
-max_m = [{hi}, {hi}]
-z_m = 0.0
-[[source]]
-kind = "point"
-charge_c = {charge}
-center_m = [0.0, 0.0, {height}]
-estimate = ["charge", "x", "y", "z"]
-[design]
-scenarios = 2
-"""
-
-
 @pytest.mark.parametrize(
     ("lo", "hi", "charge", "height", "phrase"),
     [
@@ -543,8 +520,13 @@ scenarios = 2
 def test_a_units_slip_is_loud_on_the_command_line(tmp_path, capsys, lo, hi, charge, height, phrase):
     from probeplan.cli import main
 
-    config = tmp_path / "slip.toml"
-    config.write_text(SLIP_SITE.format(lo=lo, hi=hi, charge=charge, height=height))
+    config = write_site(
+        tmp_path / "slip.toml",
+        probes={"noise_v_per_m": 10.0, "range_v_per_m": 50000.0},
+        region=[rectangle(hi)],
+        source=[point_source(charge, (0.0, 0.0, height))],
+        design={"scenarios": 2},
+    )
     layout = tmp_path / "layout.csv"
     layout.write_text(f"x_m,y_m,z_m\n{lo},{lo},0\n{hi},{lo},0\n{lo},{hi},0\n0,{hi},0\n")
     code = main(["score", str(config), "--layout", str(layout)])
