@@ -2,7 +2,7 @@
 
 Commands (the contract's "Command line"):
 
-* ``probeplan plan [CONFIG] [--out FILE.h5] [--force] [--resume FILE.h5] [--quiet]``
+* ``probeplan plan [CONFIG] [--out FILE.h5] [--force] [--resume FILE.h5]``
 * ``probeplan score CONFIG (--layout LAYOUT.csv | --from OLD.h5) [--out FILE.h5] [--force]``
 * ``probeplan budget CONFIG [--out FILE.h5] [--force] [--from OLD.h5 [--from-as MODE]]``
 * ``probeplan show FILE.h5 [--layout-csv LAYOUT.csv] [--geojson OUT.geojson] [--force]`` — the
@@ -15,6 +15,9 @@ Commands (the contract's "Command line"):
 * ``probeplan locate FILE.h5 --readings READINGS.csv [--truth TRUTH.csv] [--out FILE.h5]
   [--force]`` — fits of recorded readings, meter health and the delivery check, stored as
   /locate
+
+Every command takes ``--quiet``: no progress bar and no summary, only the files written (and,
+on standard error, a warning that the config cannot mean what it says: the run still exits 0).
 
 ``--from OLD.h5`` (plan, budget) reruns after the geometry changed: the old probes are kept
 fixed as installed ones (``--from-as installed``) or start the search (``--from-as start``,
@@ -81,7 +84,10 @@ _LAYOUT_HELP = (
 )
 
 
-_QUIET_HELP = "no progress bar and no summary; name the file only"
+_QUIET_HELP = (
+    "no progress bar and no summary: name the files written only (a warning that the config "
+    "cannot mean what it says still goes to standard error)"
+)
 
 
 def _add_out(parser: argparse.ArgumentParser, help_text: str) -> None:
@@ -136,7 +142,6 @@ def _add_plan(sub) -> None:
         help="continue from the layout and search history stored in FILE.h5",
     )
     _add_from(p)
-    p.add_argument("--quiet", action="store_true", help=_QUIET_HELP)
 
 
 def _add_score(sub) -> None:
@@ -187,7 +192,6 @@ def _add_budget(sub) -> None:
         "<name>-budget-2.h5 … if taken)",
     )
     _add_from(b)
-    b.add_argument("--quiet", action="store_true", help=_QUIET_HELP)
 
 
 def _add_show(sub) -> None:
@@ -304,6 +308,8 @@ def build_parser() -> argparse.ArgumentParser:
     commands = (_add_plan, _add_score, _add_budget, _add_show, _add_simulate, _add_plot)
     for add in (*commands, _add_locate):
         add(sub)
+    for command in sub.choices.values():  # every command: scripts want the file names only
+        command.add_argument("--quiet", action="store_true", help=_QUIET_HELP)
     return parser
 
 

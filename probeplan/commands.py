@@ -69,13 +69,26 @@ def signals_to(handler: Callable) -> Iterator[None]:
             signal.signal(sig, old)
 
 
+def progress_bar(quiet: bool):
+    """The progress callable of a run as a context: a drawn bar, or None when quiet."""
+    return contextlib.nullcontext(None) if quiet else report.progress_bar()
+
+
 @contextlib.contextmanager
 def stoppable(quiet: bool) -> Iterator[tuple]:
     """A progress callable (None when quiet) and a stop flag set by SIGINT/SIGTERM."""
     flag = StopFlag()
-    progress_cm = contextlib.nullcontext(None) if quiet else report.progress_bar()
-    with progress_cm as progress, signals_to(flag.handle):
+    with progress_bar(quiet) as progress, signals_to(flag.handle):
         yield progress, flag
+
+
+def summary(result, quiet: bool) -> None:
+    """The summary of a result; with ``--quiet`` only its warnings (on standard error): a
+    units slip is said even when nothing else is."""
+    if quiet:
+        report.print_warnings(result)
+    else:
+        report.print_result(result)
 
 
 # --------------------------------------------------------------------------------------------
@@ -113,8 +126,7 @@ def finish(run: reruns.Run, result, quiet: bool, written: list[Path]) -> int:
         return write_result(result, run.out, force=run.force, names=run.names)
 
     path = record_write(write, written)
-    if not quiet:
-        report.print_result(result)
+    summary(result, quiet)
     report.print_written(path, complete=result.complete, command=result.command)
     return EXIT_OK if result.complete else EXIT_INTERRUPTED
 
@@ -241,7 +253,7 @@ def cmd_score(args: argparse.Namespace, written: list[Path]) -> int:
     if old is not None:
         changes = reruns.changes(old, args.from_file, "rescore", config, score)
     result = make_result("score", config, score, changes=changes, notes=notes, probe_names=names)
-    report.print_result(result)
+    summary(result, args.quiet)
     if args.out:
         path = record_write(lambda: write_result(result, args.out, force=args.force), written)
         report.print_written(path)
@@ -320,7 +332,7 @@ def cmd_show(args: argparse.Namespace, written: list[Path]) -> int:
             check_writable(
                 target, force=args.force, option=option, suffix=suffix, reading=[args.file]
             )
-    report.print_result(result)
+    summary(result, args.quiet)
     if args.layout_csv:
         path = record_write(
             lambda: write_layout_csv(result, args.layout_csv, force=args.force), written
@@ -352,17 +364,19 @@ def cmd_simulate(args: argparse.Namespace, written: list[Path]) -> int:
     check_writable(args.file, force=True, option=None)  # before the fits spend their time
     config, problem, (positions, gain, axes, grades) = reruns.stored_problem(result, args.file)
     seed = config.seed if args.seed is None else args.seed
-    sim = simulate(
-        problem,
-        positions,
-        gain,
-        axes=axes,
-        grades=grades,
-        trials=args.trials,
-        rng=np.random.default_rng(seed),
-    )
+    with progress_bar(args.quiet) as progress:
+        sim = simulate(
+            problem,
+            positions,
+            gain,
+            axes=axes,
+            grades=grades,
+            trials=args.trials,
+            rng=np.random.default_rng(seed),
+            progress=progress,
+        )
     result = replace(result, simulation=sim)
-    report.print_result(result)
+    summary(result, args.quiet)
     # Stored back into the file it read: there is no option naming another file.
     path = record_write(lambda: write_result(result, args.file, force=True, option=None), written)
     report.print_written(path)

@@ -546,3 +546,41 @@ def test_warnings_alone_for_a_quiet_run():
     buf = io.StringIO()
     assert not report.print_warnings(healthy, Console(file=buf, width=80))
     assert buf.getvalue() == ""
+
+
+# --------------------------------------------------------------------------------------------
+# --quiet on every command: the files written only; warnings still on standard error
+# --------------------------------------------------------------------------------------------
+
+
+def test_every_command_takes_quiet(tmp_path, capsys):
+    from probeplan.cli import build_parser, main
+
+    commands = build_parser()._subparsers._group_actions[0].choices
+    for name, parser in commands.items():
+        assert "--quiet" in parser.format_help(), name
+    config = write_site(
+        tmp_path / "site.toml",
+        probes={"noise_v_per_m": 10.0, "range_v_per_m": 50000.0},
+        region=[rectangle(15.0)],
+        source=[point_source(3.0, (0.0, 0.0, 3.0))],  # 3 C indoors: every meter saturates
+        design={"scenarios": 2},
+    )
+    layout = tmp_path / "layout.csv"
+    layout.write_text("x_m,y_m,z_m\n-15,-15,0\n15,-15,0\n-15,15,0\n0,15,0\n")
+    out_file = tmp_path / "r.h5"
+    runs = [
+        (["score", config, "--layout", layout, "--out", out_file], "Result written to"),
+        (["show", out_file], None),
+        (["simulate", out_file, "--trials", "2"], "Result written to"),
+        (["plot", out_file, "--folder", tmp_path / "p"], "Plot written to"),
+    ]
+    for argv, line in runs:
+        code = main([str(a) for a in argv + ["--quiet"]])
+        out, err = capsys.readouterr()
+        assert code == 0, (argv, err)
+        lines = out.splitlines()
+        assert all(line and ln.startswith((line, "Not drawn")) for ln in lines), (argv, out)
+        assert ("Result" in out) == (line == "Result written to")
+        if argv[0] != "plot":  # the units slip is said on stderr even when quiet
+            assert "WARNING: every meter saturates" in flat(err), (argv, err)
