@@ -73,6 +73,16 @@ def source_label(result, i: int) -> str:
     return f"s{i}"
 
 
+def param_label(result, name: str) -> str:
+    """A parameter name as the summary shows it: ``s0.x_m``, or ``s0.x_m (storm)`` when
+    source 0 has a name of its own."""
+    head = name.split(".")[0]
+    if not _is_source_param(name):
+        return name
+    label = source_label(result, int(head[1:]))
+    return f"{name} ({label.rsplit(' (', 1)[0]})" if label != head else name
+
+
 def _n_sources(result) -> int:
     from_names = [int(n[1:].split(".")[0]) for n in result.score.names if _is_source_param(n)]
     return max([len(_sources(result)), *(k + 1 for k in from_names)], default=0)
@@ -155,13 +165,16 @@ def wide_bounds(result) -> list[str]:
         scen = f"{int(bad.sum())} of {n_s} scenario{'s' if n_s != 1 else ''}"
         if span > 0:
             out.append(
-                f"{name}: in {scen} the 1-sigma bound exceeds the "
+                f"{param_label(result, name)}: in {scen} the 1-sigma bound exceeds the "
                 f"{format_quantity(span, unit)} its scenarios span ({format_quantity(lo[j], unit)}"
                 f" to {format_quantity(hi[j], unit)}), so the layout does not resolve it there; "
                 f"{worst}."
             )
         else:
-            out.append(f"{name}: the layout cannot resolve it at all in {scen}; {worst}.")
+            out.append(
+                f"{param_label(result, name)}: the layout cannot resolve it at all in {scen}; "
+                f"{worst}."
+            )
     return out
 
 

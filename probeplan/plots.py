@@ -768,7 +768,8 @@ def _draw_probes(ax, pos: np.ndarray, installed: np.ndarray, scale: float, names
 
 
 def _draw_sources(ax, config, scale: float) -> None:
-    for spec in config.sources:
+    """Every source at its nominal place, with its name (``s{i}`` by default)."""
+    for i, spec in enumerate(config.sources):
         src = spec.source
         c = np.asarray(src.center_m)
         if src.kind == "line":
@@ -791,16 +792,17 @@ def _draw_sources(ax, config, scale: float) -> None:
                     ls="--",
                 )
             )
-        ax.plot(
-            c[0] / scale,
-            c[1] / scale,
-            ls="",
-            marker="*",
+        star = {"color": _SOURCE, "ms": 14, "mec": "white", "mew": 0.5, "zorder": 6}
+        ax.plot(c[0] / scale, c[1] / scale, "*", **star)
+        name = getattr(spec, "name", "") or f"s{i}"
+        ax.annotate(
+            _plain(name),
+            c[:2] / scale,
+            xytext=(7, -10),
+            textcoords="offset points",
+            fontsize=7,
             color=_SOURCE,
-            ms=14,
-            mec="white",
-            mew=0.5,
-            zorder=6,
+            zorder=8,
         )
 
 

@@ -406,7 +406,7 @@ def _bounds_table(result: Result) -> Table:
         nominal = float(theta[0, j]) if theta.size else float("nan")
         _row(
             table,
-            name,
+            findings.param_label(result, name),
             format_quantity(nominal, unit),
             format_quantity(med, unit),
             format_quantity(worst, unit),

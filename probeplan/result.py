@@ -97,6 +97,9 @@ class Result:
         The config's ``[frame]``: the WGS84 origin of the local metres (maps, lon/lat out).
     structures : StructureSurfaces or None
         The conducting structures' panels and induced charge (``[[structure]]``), or None.
+    source_names : tuple of n_sources str or None
+        The ``[[source]] name`` of every source (``s{i}`` by default); None in results stored
+        before sources had names.
     """
 
     command: str
@@ -120,6 +123,7 @@ class Result:
     frame: Frame | None = None
     location: object | None = None
     structures: StructureSurfaces | None = None
+    source_names: tuple[str, ...] | None = None
 
 
 def make_result(
@@ -157,6 +161,9 @@ def make_result(
         simulation=simulation,
         probe_names=None if probe_names is None else tuple(probe_names),
         notes=tuple(notes),
+        source_names=tuple(
+            getattr(spec, "name", "") or f"s{i}" for i, spec in enumerate(config.sources)
+        ),
         structures=structure_surfaces(config),
     )
 

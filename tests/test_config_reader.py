@@ -30,7 +30,7 @@ BAD = {
         (EST, EST + "\nradius_m = 100.0"),
         [
             "key `radius_m` does not apply to a point source (source[0]); allowed: kind, "
-            "charge_c, center_m, center_lonlat, estimate, charge_range_c, center_range_m."
+            "charge_c, center_m, center_lonlat, name, estimate, charge_range_c, center_range_m."
         ],
     ),
     "single [region] table": (

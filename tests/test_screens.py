@@ -584,3 +584,64 @@ def test_every_command_takes_quiet(tmp_path, capsys):
         assert ("Result" in out) == (line == "Result written to")
         if argv[0] != "plot":  # the units slip is said on stderr even when quiet
             assert "WARNING: every meter saturates" in flat(err), (argv, err)
+
+
+# --------------------------------------------------------------------------------------------
+# Item 11: sources by their names — config, summary, result file, maps
+# --------------------------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize(
+    ("names", "message"),
+    [
+        ((None, None), None),  # defaults s0, s1
+        (("storm", "upper"), None),
+        (("storm", "storm"), "is already the name of source[0]; source names must be unique"),
+        (("s1", None), "would read as another source's parameters"),
+        (("", None), "must not be empty"),
+    ],
+)
+def test_source_names_in_the_config(names, message):
+    from sites import make_config
+
+    from probeplan.errors import InputError
+
+    sources = [
+        point_source(**({"name": n} if n is not None else {}), center_m=(0.0, 0.0, z))
+        for n, z in zip(names, (3000.0, 6000.0), strict=True)
+    ]
+    if message is None:
+        cfg = make_config("names.toml", source=sources)
+        want = [n if n is not None else f"s{i}" for i, n in enumerate(names)]
+        assert [s.name for s in cfg.sources] == want
+    else:
+        with pytest.raises(InputError, match=re.escape(message)):
+            make_config("names.toml", source=sources)
+
+
+def test_named_sources_in_the_summary_the_file_and_the_map(tmp_path, capsys, monkeypatch):
+    from probeplan import plots
+    from probeplan.cli import main
+    from probeplan.store import read_result
+
+    config = write_site(
+        tmp_path / "named.toml",
+        source=[
+            point_source(name="main negative", center_range_m=[[-500, 500]] * 2 + [[2500, 3500]]),
+            point_source(5.0, (800.0, 0.0, 6000.0), estimate=(), name="upper positive"),
+        ],
+    )
+    layout = tmp_path / "layout.csv"
+    layout.write_text("x_m,y_m,z_m\n100,1500,0\n1500,-200,0\n-200,-1600,0\n-1700,300,0\n")
+    out_file = tmp_path / "named.h5"
+    assert main(["score", str(config), "--layout", str(layout), "--out", str(out_file)]) == 0
+    out = flat(capsys.readouterr().out)
+    assert "s0.x_m (main negative)" in out
+    assert main(["show", str(out_file)]) == 0
+    assert flat(capsys.readouterr().out).count("(main negative)") == out.count("(main negative)")
+    assert read_result(out_file).source_names == ("main negative", "upper positive")
+    drawn = []
+    monkeypatch.setattr(plots, "_save", lambda fig, path, fmt: drawn.append(fig) or path)
+    assert main(["plot", str(out_file), "--folder", str(tmp_path / "p")]) == 0
+    labels = [t.get_text() for t in drawn[0].axes[0].texts]
+    assert "main negative" in labels and "upper positive" in labels

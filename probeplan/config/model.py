@@ -31,11 +31,15 @@ class SourceSpec:
     ranges : tuple of (str, float, float)
         ``(param_name, lo, hi)`` with ``lo <= hi``, in the same order: scenarios draw the
         parameter uniformly between the bounds. A range may be given for a known parameter.
+    name : str
+        What the summary, the result file and the maps call it (``s{i}`` by default; its
+        parameters keep the names ``s{i}.charge_c`` …).
     """
 
     source: Source
     estimate: tuple[str, ...]
     ranges: tuple[tuple[str, float, float], ...]
+    name: str = ""
 
 
 @dataclass(frozen=True)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 
 import numpy as np
@@ -20,7 +21,10 @@ SOURCE_KIND_KEYS = {
     "gaussian": ("charge_c", "center_m", "center_lonlat", "sigma_m", "sigma_range_m"),
     "grid": ("density_path", "origin_m", "spacing_m"),
 }
-SOURCE_COMMON = ("kind", "estimate", "charge_range_c", "center_range_m")
+SOURCE_COMMON = ("kind", "name", "estimate", "charge_range_c", "center_range_m")
+
+#: A source name that would read as another source's parameter prefix (``s1`` for source 0).
+_PREFIX_NAME = re.compile(r"s\d+")
 
 
 def parse_sources(
@@ -31,11 +35,31 @@ def parse_sources(
         required=True,
         hint='a charge distribution, e.g. kind = "point", charge_c, center_m',
     )
-    return tuple(_parse_source(t, ground_z_m, base, frame) for t in tables)
+    specs = tuple(_parse_source(t, ground_z_m, base, frame, k) for k, t in enumerate(tables))
+    seen: dict[str, int] = {}
+    for k, (t, spec) in enumerate(zip(tables, specs, strict=True)):
+        if spec.name in seen:
+            t.ck.fail(
+                f"`{t.key('name')}` = {show(spec.name)} is already the name of "
+                f"source[{seen[spec.name]}]; source names must be unique."
+            )
+        seen[spec.name] = k
+    return specs
+
+
+def _source_name(t: Table, k: int) -> str:
+    """``name`` of source ``k``: free text, default ``s{k}``; never another source's prefix."""
+    name = t.string("name", default=f"s{k}", nonempty=True, what="a name for this source")
+    if _PREFIX_NAME.fullmatch(name.strip()) and name.strip() != f"s{k}":
+        t.ck.fail(
+            f"`{t.key('name')}` = {show(name)} would read as another source's parameters "
+            f"(`{name.strip()}.charge_c` …); name source[{k}] otherwise, or `s{k}`."
+        )
+    return name
 
 
 def _parse_source(
-    t: Table, ground_z_m: float | None, base: Path, frame: Frame | None = None
+    t: Table, ground_z_m: float | None, base: Path, frame: Frame | None = None, k: int = 0
 ) -> SourceSpec:
     kind = t.choice("kind", SOURCE_KINDS)
     t.check_keys(
@@ -95,7 +119,7 @@ def _parse_source(
             )
     if ground_z_m is not None:
         _check_source_above_ground(t, src, ranges, ground_z_m)
-    return SourceSpec(source=src, estimate=estimate, ranges=tuple(ranges))
+    return SourceSpec(source=src, estimate=estimate, ranges=tuple(ranges), name=_source_name(t, k))
 
 
 def _parse_estimate(t: Table, kind: str, param_names: tuple[str, ...]) -> tuple[str, ...]:

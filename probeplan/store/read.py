@@ -217,6 +217,7 @@ def _read(r: _Reader) -> Result:
         sections["location"] = location
     names = r.strings("layout/names") if r.has("layout/names") else None
     notes = r.strings("notes") if r.has("notes") else ()
+    sources = r.strings("scenarios/source_names") if r.has("scenarios/source_names") else None
     return Result(
         command=r.attr("", "command"),
         config_text=r.attr("", "config_toml"),
@@ -234,6 +235,7 @@ def _read(r: _Reader) -> Result:
         extra=extra,
         probe_names=None if names is None else tuple(names),
         notes=tuple(notes),
+        source_names=None if sources is None else tuple(sources),
         **sections,
     )
 
@@ -278,6 +280,17 @@ def _read_search(r: _Reader) -> SearchInfo:
     stage_names = r.strings("search/stage_names")
 
     stage_values = r.array("search/stage_values", ndim=1)
+    spent = ()
+    if r.has("search/evaluations_spent"):
+        stages = r.strings("search/evaluation_stages")
+        counts = r.array("search/evaluations_spent", dtype=np.int64, ndim=1)
+        if len(stages) != counts.size:
+            raise InputError(
+                f"{r.name}: /search/evaluation_stages names {len(stages)} stages but "
+                f"/search/evaluations_spent holds {counts.size} counts; the file is damaged."
+            )
+        spent = tuple((stages[k], int(counts[k])) for k in range(counts.size))
+    asked = r.f["search"].attrs.get("evaluations_asked")
     return SearchInfo(
         history=r.array("search/history", ndim=1),
         bound=r.scalar("search/bound") if r.has("search/bound") else None,
@@ -288,6 +301,8 @@ def _read_search(r: _Reader) -> SearchInfo:
         stages=tuple((stage_names[k], float(stage_values[k])) for k in range(len(stage_names))),
         seconds=r.scalar("search/seconds"),
         objective=r.attr("search", "objective"),
+        evaluations_asked=None if asked is None else r.attr("search", "evaluations_asked", int),
+        evaluations_spent=spent,
     )
 
 

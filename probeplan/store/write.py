@@ -123,6 +123,8 @@ def _write(f: h5py.File, result: Result) -> None:
     scen = f.create_group("scenarios")
     params = _dataset(scen, "params", np.asarray(score.theta, dtype=float), units)
     params.attrs["names"] = np.array(names, dtype=_STR)
+    if result.source_names is not None:
+        _strings(scen, "source_names", result.source_names)
 
     vunit = value_unit(score.criterion)
     g = f.create_group("score")
@@ -200,6 +202,11 @@ def _write_search(g: h5py.Group, s: SearchInfo, vunit: str) -> None:
     _dataset(g, "n_candidates", np.int64(s.n_candidates))
     _dataset(g, "seconds", np.float64(s.seconds), "s")
     g.attrs["objective"] = s.objective
+    if s.evaluations_asked is not None:
+        g.attrs["evaluations_asked"] = np.int64(s.evaluations_asked)
+    if s.evaluations_spent:
+        _strings(g, "evaluation_stages", [name for name, _ in s.evaluations_spent])
+        _dataset(g, "evaluations_spent", np.array([n for _, n in s.evaluations_spent], np.int64))
     _strings(g, "stage_names", [name for name, _ in s.stages])
     _dataset(g, "stage_values", np.array([v for _, v in s.stages], dtype=float), vunit)
     _strings(g, "baseline_names", [b.name for b in s.baselines])
