@@ -319,9 +319,10 @@ class SearchInfo:
         The refinement evaluations the config asked for (``[design] evaluations``); None in
         results that did not record it (the summary then reads the stored config text).
     evaluations_spent : tuple of (str, int)
-        Objective evaluations spent per stage, in order, e.g. ``(("greedy", 1), ("exchange",
-        1), ("refine", 40), ("refine, broke the mounting rules", 7))``; empty where not
-        recorded (the summary then counts ``history``).
+        Objective evaluations spent per stage, in order, the entries disjoint (they add up to
+        all that was spent), e.g. ``(("greedy", 1), ("exchange", 1), ("refinement", 33),
+        ("baselines", 1001), ("refinement proposals that broke the mounting rules", 7))``;
+        empty where not recorded (the summary then counts ``history``).
     """
 
     history: np.ndarray

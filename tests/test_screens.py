@@ -645,3 +645,29 @@ def test_named_sources_in_the_summary_the_file_and_the_map(tmp_path, capsys, mon
     assert main(["plot", str(out_file), "--folder", str(tmp_path / "p")]) == 0
     labels = [t.get_text() for t in drawn[0].axes[0].texts]
     assert "main negative" in labels and "upper positive" in labels
+
+
+def test_a_plan_accounts_for_every_evaluation(tmp_path):
+    from sites import make_config
+
+    from probeplan.problem import build_problem
+    from probeplan.result import make_result as result_of
+    from probeplan.search import plan
+
+    cfg = make_config(
+        "evals.toml",
+        design={"evaluations": 4, "random_layouts": 10, "grid_spacing_m": 1000.0},
+    )
+    outcome = plan(build_problem(cfg))
+    info = outcome.info
+    spent = dict(info.evaluations_spent)
+    assert info.evaluations_asked == 4
+    assert spent["greedy"] == 1 and spent["exchange"] == 1
+    assert spent["baselines"] == 1 + 10  # the regular layout and ten random ones
+    refinement = spent.get("refinement", 0)
+    broke = spent.get("refinement proposals that broke the mounting rules", 0)
+    assert refinement + broke <= 4
+    assert len(info.history) == 2 + refinement  # every scored layout is in the history
+    out = flat(render(result_of("plan", cfg, outcome.score, search=info)))
+    assert "evaluations: 4 refinement evaluations asked for; " in out
+    assert f"{sum(spent.values())} spent (greedy 1, exchange 1, " in out

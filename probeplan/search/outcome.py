@@ -57,6 +57,7 @@ def make_outcome(
     history: np.ndarray | None = None,
     complete: bool = True,
     started: float | None = None,
+    asked: int | None = None,
 ) -> PlanOutcome:
     """Build the result of a search from its steps.
 
@@ -71,6 +72,8 @@ def make_outcome(
         Whether the stream ran to its end (no stop request).
     started : float or None
         ``time.perf_counter()`` when the search began (for ``SearchInfo.seconds``).
+    asked : int or None
+        The refinement evaluations asked for (``SearchInfo.evaluations_asked``).
 
     Returns
     -------
@@ -91,10 +94,34 @@ def make_outcome(
         stages=tuple((s.stage, s.value) for s in steps if s.value is not None),
         seconds=0.0 if started is None else time.perf_counter() - started,
         objective="worst single loss" if problem.config.design.tolerate_failures else "criterion",
+        evaluations_asked=asked,
+        evaluations_spent=_spent(steps),
     )
     if best is None:
         return PlanOutcome(None, None, None, info, complete=False)
     return PlanOutcome(best.positions_m, best.gain, score, info, complete)
+
+
+#: How the evaluation account names a stage.
+_STAGE_WORDS = {"refine": "refinement", "warm start": "stored start"}
+
+
+def _spent(steps: Sequence[Step]) -> tuple[tuple[str, int], ...]:
+    """Objective evaluations per stage, in order: the layouts each stage scored, and apart
+    the refinement proposals that broke the mounting rules (evaluated, not recorded)."""
+    scored: dict[str, int] = {}
+    broke: dict[str, int] = {}
+    for s in steps:
+        n = len(s.history) if s.evaluated is None else s.evaluated
+        if n or s.history:
+            name = _STAGE_WORDS.get(s.stage, s.stage)
+            kept = min(len(s.history), n) if s.stage != "baselines" else n
+            scored[name] = scored.get(name, 0) + kept
+            if n > kept:
+                broke[name] = broke.get(name, 0) + n - kept
+    out = list(scored.items())
+    out += [(f"{name} proposals that broke the mounting rules", n) for name, n in broke.items()]
+    return tuple(out)
 
 
 def _last(values):
@@ -165,7 +192,14 @@ def plan(
         if progress is not None:
             progress(step.stage, step.done, step.total)
         steps.append(step)
-    return make_outcome(problem, steps, history=history, complete=not halt.stopped, started=started)
+    return make_outcome(
+        problem,
+        steps,
+        history=history,
+        complete=not halt.stopped,
+        started=started,
+        asked=settings.evaluations,
+    )
 
 
 def d_efficiency(value: float, bound: float | None, n_params: int) -> float | None:

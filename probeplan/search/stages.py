@@ -82,6 +82,10 @@ class Step:
         The certified bound, on the last step of a finished bound stage.
     grid : Candidates or None
         The candidate grid, once its rows are computed.
+    evaluated : int or None
+        Objective evaluations this step spent, where they differ from ``len(history)``:
+        refinement proposals that break the mounting rules are evaluated but not recorded,
+        and baseline layouts are evaluated outside the history.
     """
 
     stage: str
@@ -93,6 +97,7 @@ class Step:
     baselines: tuple[Baseline, ...] = ()
     bound: Relaxation | None = None
     grid: object | None = None
+    evaluated: int | None = None
 
 
 class Halt:
@@ -320,9 +325,11 @@ def _refine_stage(
     radius = REFINE_RADIUS_CELLS * cand.spacing_m if cand.spacing_m > 0 else None
     yield Step("refine", 0, evaluations)
     last = None
+    used = 0
     steps = refine_steps(p, best.positions_m, best.gain, regions, evaluations, rng, radius)
     for last in steps:  # noqa: B007
-        yield Step("refine", last.used, evaluations, history=last.recorded)
+        batch, used = last.used - used, last.used
+        yield Step("refine", used, evaluations, history=last.recorded, evaluated=batch)
         if halt():
             break
     found = Layout(last.layout, best.gain, last.value)
@@ -341,7 +348,8 @@ def _baseline_stage(
         regular = None  # no regular layout fits the rules: nothing to compare
     if regular is not None:
         rv = exact(problem, regular, problem.gain_at(regular))
-        yield Step("baselines", 1, 2, baselines=(Baseline("regular", rv, regular),))
+        regular_baseline = (Baseline("regular", rv, regular),)
+        yield Step("baselines", 1, 2, baselines=regular_baseline, evaluated=1)
     if n_random <= 0 or halt():
         return
     rand = site.random_layouts(n_random, count, rng)
@@ -352,7 +360,7 @@ def _baseline_stage(
             return  # a best of fewer layouts than announced is no baseline
         sl = slice(start, min(start + RANDOM_BATCH, n_random))
         rvals[sl] = problem.objective(rand[sl], g[sl])
-        yield Step("baselines", 1, 2)
+        yield Step("baselines", 1, 2, evaluated=sl.stop - sl.start)
     k = int(np.argmax(rvals) if problem.criterion.maximise else np.argmin(rvals))
     best = Baseline(f"best of {n_random} random", float(rvals[k]), rand[k])
     yield Step("baselines", 2, 2, baselines=(best,))
