@@ -27,6 +27,7 @@ import numpy as np
 
 from . import report, reruns
 from .errors import EXIT_INTERRUPTED, EXIT_OK, InputError
+from .resulttypes import probe_names
 
 # --------------------------------------------------------------------------------------------
 # Signals: SIGINT / SIGTERM end the search cleanly
@@ -241,18 +242,21 @@ def cmd_score(args: argparse.Namespace, written: list[Path]) -> int:
         score = problem.score(positions, gain, axes, reruns.grade_names(grades))
     except SingularPointError as exc:  # a probe placed on a point charge: the layout's fault
         raise InputError(f"{where} (installed probes counted first): {exc}") from None
-    # Scoring a layout that breaks the mounting rules is allowed (it may be what is installed
-    # today), but the summary says which rules it breaks.
-    notes = tuple(
-        f"{where} (new probes counted from 0 in file order): {v} The mounting rules of "
-        f"{config.path} do not allow this."
-        for v in problem.site.violations(positions)
-    )
     names = reruns.score_names(config, score, layout, problem.installed_m.shape[0])
     changes = None
     if old is not None:
         changes = reruns.changes(old, args.from_file, "rescore", config, score)
-    result = make_result("score", config, score, changes=changes, notes=notes, probe_names=names)
+    result = make_result("score", config, score, changes=changes, probe_names=names)
+    # Scoring a layout that breaks the mounting rules is allowed (it may be what is installed
+    # today), but the summary says which rules it breaks, naming the probes as its layout
+    # table does (installed first, then the CSV's names or new-k), never by a row number.
+    shown = probe_names(result)
+    n_inst = problem.installed_m.shape[0]
+    notes = tuple(
+        f"{where}: {v} The mounting rules of {config.path} do not allow this."
+        for v in problem.site.violations(positions, shown[n_inst:], shown[:n_inst])
+    )
+    result = replace(result, notes=notes)
     summary(result, args.quiet)
     if args.out:
         path = record_write(lambda: write_result(result, args.out, force=args.force), written)

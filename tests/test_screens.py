@@ -671,3 +671,29 @@ def test_a_plan_accounts_for_every_evaluation(tmp_path):
     out = flat(render(result_of("plan", cfg, outcome.score, search=info)))
     assert "evaluations: 4 refinement evaluations asked for; " in out
     assert f"{sum(spent.values())} spent (greedy 1, exchange 1, " in out
+
+
+@pytest.mark.parametrize(
+    ("header", "rows", "named"),
+    [
+        ("name,x_m,y_m,z_m", ["north,100,1500,0", "shed,10,10,0", "far,16430,0,0"], True),
+        ("x_m,y_m,z_m", ["100,1500,0", "10,10,0", "16430,0,0"], False),
+    ],
+)
+def test_rule_notes_name_probes_as_the_table_does(tmp_path, capsys, header, rows, named):
+    from probeplan.cli import main
+
+    config = write_site(
+        tmp_path / "rules.toml",
+        probes={"count": 3, "installed": [{"name": "gatehouse", "position_m": [-1500, -1000, 0]}]},
+        keepout=[{"kind": "rectangle", "name": "shed", "min_m": [-50, -50], "max_m": [50, 50]}],
+    )
+    layout = tmp_path / "layout.csv"
+    layout.write_text("\n".join([header, *rows]) + "\n")
+    assert main(["score", str(config), "--layout", str(layout)]) == 0
+    out = flat(capsys.readouterr().out)
+    inside, outside = ("shed", "far") if named else ("new-1", "new-2")
+    assert f"Note: {layout}: probe '{inside}' at (10, 10, 0) m lies in keep-out 0" in out
+    assert f"probe '{outside}' at (16430, 0, 0) m lies outside every mounting region" in out
+    assert "14.4 km away" in out  # 16.43 km from a region ending at 2 km: not 1.44e+04 m
+    assert "counted from 0" not in out and "probe 1 " not in out

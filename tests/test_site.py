@@ -449,13 +449,20 @@ def test_violations_name_every_broken_rule():
     assert any(
         m.startswith("probe 1 at (40, 5, 1) m lies outside every mounting region") for m in msgs
     )
-    assert any("10 m away" in m for m in msgs)
+    assert any("10.0 m away" in m for m in msgs)
     assert any(
-        m.startswith("probes 2 and 3 are 2 m apart, closer than the minimum spacing of 4 m")
+        m.startswith("probes 2 and 3 are 2.00 m apart, closer than the minimum spacing of 4.00 m")
         for m in msgs
     )
-    assert any(m.startswith("probe 4 and installed probe 0 are 1 m apart") for m in msgs)
+    assert any(m.startswith("probe 4 and installed probe 0 are 1.00 m apart") for m in msgs)
     assert len(msgs) == 4
+    # With the names the summary uses, the sentences name the probes so, never by a number.
+    named = site.violations(bad, names=list("abcde"), installed_names=["mast"])
+    assert "probe 'a' at (15, 15, 1) m lies in keep-out 0 (rectangle 'shed')." in named
+    assert any(m.startswith("probe 'c' and probe 'd' are 2.00 m apart") for m in named)
+    assert any(m.startswith("probe 'e' and installed probe 'mast' are 1.00 m apart") for m in named)
+    far = site.violations(np.array([[16430.0, 5.0, 1.0]]))
+    assert far[0].endswith("16.4 km away).")  # not 1.64e+04 m
 
 
 # ============================================================================================

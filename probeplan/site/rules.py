@@ -19,6 +19,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import shapely
 
+from ..resulttypes import format_quantity
 from . import layouts
 from ._common import (
     COINCIDENT_M,
@@ -198,7 +199,7 @@ class Site:
                 ok[lo : lo + block] &= np.all(self._far_enough(d2), axis=(1, 2))
         return ok
 
-    def violations(self, layout_m) -> list[str]:
+    def violations(self, layout_m, names=None, installed_names=None) -> list[str]:
         """Human-readable reasons a layout breaks the mounting rules.
 
         Parameters
@@ -206,6 +207,9 @@ class Site:
         layout_m : (n_probes, 3) float
             One layout, m. Probes are numbered from 0 in this order; installed probes from 0 in
             ``installed_m`` order; regions and keep-outs from 0 in the site's order.
+        names, installed_names : sequence of str or None
+            What the user calls the probes and the installed probes (the summary's names):
+            the sentences name them so, instead of by number.
 
         Returns
         -------
@@ -216,6 +220,10 @@ class Site:
         out: list[str] = []
         if len(p) == 0:
             return out
+
+        def probe(i, names=names, word="probe") -> str:
+            return f"{word} {names[i]!r}" if names is not None else f"{word} {i}"
+
         inside = self._in_regions(p)
         if not inside.all():
             bad = np.flatnonzero(~inside)
@@ -224,29 +232,34 @@ class Site:
             for j, i in enumerate(bad):
                 r = int(nearest[j])
                 out.append(
-                    f"probe {i} at {fmt(p[i])} m lies outside every mounting region (nearest: "
-                    f"{label('region', r, self.regions[r])}, {dist[r, j]:.3g} m away)."
+                    f"{probe(i)} at {fmt(p[i])} m lies outside every mounting region (nearest: "
+                    f"{label('region', r, self.regions[r])}, "
+                    f"{format_quantity(dist[r, j], 'm')} away)."
                 )
         for k, ko in enumerate(self.keepouts):
             for i in np.flatnonzero(ko._contains(p)):
-                out.append(f"probe {i} at {fmt(p[i])} m lies in {label('keep-out', k, ko)}.")
+                out.append(f"{probe(i)} at {fmt(p[i])} m lies in {label('keep-out', k, ko)}.")
         d = np.linalg.norm(p[:, None, :] - p[None, :, :], axis=-1)
         ii, jj = np.triu_indices(len(p), 1)
         close = ~self._far_enough(d[ii, jj] ** 2)
         for i, j in zip(ii[close], jj[close], strict=True):
-            out.append(self._too_close(f"probes {i} and {j} are", d[i, j]))
+            pair = (
+                f"{probe(i)} and {probe(j)} are" if names is not None else f"probes {i} and {j} are"
+            )
+            out.append(self._too_close(pair, d[i, j]))
         if len(self.installed_m):
             di = np.linalg.norm(p[:, None, :] - self.installed_m[None, :, :], axis=-1)
             for i, k in zip(*np.nonzero(~self._far_enough(di**2)), strict=True):
-                out.append(self._too_close(f"probe {i} and installed probe {k} are", di[i, k]))
+                other = probe(k, installed_names, "installed probe")
+                out.append(self._too_close(f"{probe(i)} and {other} are", di[i, k]))
         return out
 
     def _too_close(self, who: str, dist: float) -> str:
         if dist <= COINCIDENT_M:
             return f"{who} at the same position; a mounting position holds one meter."
         return (
-            f"{who} {dist:.3g} m apart, closer than the minimum spacing of "
-            f"{self.min_spacing_m:g} m (`min_spacing_m`)."
+            f"{who} {format_quantity(dist, 'm')} apart, closer than the minimum spacing of "
+            f"{format_quantity(self.min_spacing_m, 'm')} (`min_spacing_m`)."
         )
 
     # ---------------------------------------------------------------- layouts (see .layouts)
