@@ -24,7 +24,6 @@ import math
 import tomllib
 
 import numpy as np
-from scipy.constants import epsilon_0
 
 from .resulttypes import format_number, format_quantity, param_unit
 
@@ -37,7 +36,6 @@ RATIO_LOW = 0.5
 #: between C, mC, µC and nC is a factor of 1,000 or more.
 SLIP_FACTOR = 1e3
 
-_K = 1.0 / (4.0 * math.pi * epsilon_0)  # Coulomb constant, from scipy.constants (CODATA)
 _SIZE_WORDS = {"radius": "radius", "sigma": "spread (sigma)"}
 
 
@@ -186,8 +184,8 @@ def wide_bounds(result) -> list[str]:
 def units_slip(result) -> list[str]:
     """Loud warnings for a config that cannot mean what it says, with the likely cause.
 
-    Triggers: every meter saturates in every scenario, the criterion is not finite, or the
-    nominal fields at the meters are a thousandth of their noise or less. The likely cause is
+    Triggers: every meter saturates in every scenario, the criterion is not finite, or an
+    estimated charge's nominal bound exceeds a thousand times the charge. The likely cause is
     read from the nominal charges of the config text: the point-charge field k|q|/d² at the
     nearest meter beside the meters' range and noise (a slip between C and µC is a factor of
     a million).
@@ -196,11 +194,7 @@ def units_slip(result) -> list[str]:
     sat = np.asarray(s.saturated, dtype=float)
     all_saturated = bool(sat.size) and bool(np.all(sat >= 1.0))
     finite = math.isfinite(float(s.value))
-    probes = config_tables(result).get("probes", {})
-    probes = probes if isinstance(probes, dict) else {}
-    field, who = _nearest_field(result)
-    noise = _number(probes.get("noise_v_per_m"))
-    faint = bool(who) and noise is not None and field < noise / SLIP_FACTOR
+    faint = _faint_charges(s)
     if not all_saturated and finite and not faint:
         return []
     what = []
@@ -213,13 +207,35 @@ def units_slip(result) -> list[str]:
             f"estimated parameters in {len(s.singular) - n_sing} of {len(s.singular)} scenarios"
         )
     if faint and not all_saturated:
-        what.append("the charges' fields at the meters are far below the meters' noise")
+        what.append(
+            "the charge is not resolved to within a thousand times its own size even in the "
+            "nominal scenario: its field at the meters is far below the meters' noise"
+        )
+    probes = config_tables(result).get("probes", {})
+    probes = probes if isinstance(probes, dict) else {}
+    field, who = _nearest_field(result)
     cause = _likely_cause(field, who, probes, all_saturated)
     return [f"{'; '.join(what)}. {cause}"]
 
 
+def _faint_charges(score) -> bool:
+    """Whether an estimated charge's nominal 1-sigma bound exceeds :data:`SLIP_FACTOR` times
+    the charge itself (a field a thousandth of the noise or less)."""
+    theta = np.asarray(score.theta, dtype=float)
+    crb = np.asarray(score.crb_std, dtype=float)
+    if theta.ndim != 2 or theta.shape[0] == 0 or crb.shape != theta.shape:
+        return False
+    cols = [j for j, n in enumerate(score.names) if n.endswith(".charge_c")]
+    q, sd = np.abs(theta[0, cols]), crb[0, cols]
+    return bool(np.any((q > 0) & np.isfinite(sd) & (sd > SLIP_FACTOR * q)))
+
+
 def _nearest_field(result) -> tuple[float, str]:
     """The largest nominal point-charge field k|q|/d² at a meter, V/m, and which source."""
+    # Imported here, only for a warning: scipy.constants costs ~0.7 s, every start would pay.
+    from scipy.constants import epsilon_0
+
+    k_coulomb = 1.0 / (4.0 * math.pi * epsilon_0)  # from scipy.constants (CODATA)
     pos = np.asarray(result.score.positions_m, dtype=float).reshape(-1, 3)
     best, who = 0.0, ""
     for i, src in enumerate(_sources(result)):
@@ -234,7 +250,7 @@ def _nearest_field(result) -> tuple[float, str]:
         if not pos.size:
             continue
         d = float(np.min(np.linalg.norm(pos - centre, axis=1)))
-        field = _K * abs(q) / max(d, 1e-9) ** 2
+        field = k_coulomb * abs(q) / max(d, 1e-9) ** 2
         if field > best:
             best = field
             who = (
