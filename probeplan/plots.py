@@ -36,10 +36,15 @@ from matplotlib.lines import Line2D
 from matplotlib.patches import Circle, Patch, Polygon
 from matplotlib.ticker import FixedFormatter, FixedLocator, NullFormatter
 
+from .figtext import colorbar_ticks as colorbar_ticks
+from .figtext import decade_levels as _decade_levels
+from .figtext import height_caption as _height_caption
+from .figtext import label_keepout, label_meters, label_source, meter_names
+from .figtext import level_label as _level_label
+from .figtext import title as _title
 from .fisher import CRITERIA, covariance, fisher_from_rows
 from .probes import whitened_rows
 from .problem import draw_scenarios
-from .report import safe_text
 from .resulttypes import format_quantity, param_unit, probe_names
 from .store.files import write_atomically
 
@@ -52,8 +57,6 @@ DPI: int = 120
 KM_SPAN_M: float = 2000.0
 #: Grid points of the coverage map per batch (keeps the Jacobian near a few MB).
 _COVERAGE_BATCH = 2048
-#: Characters of a title line (an 8-inch figure at 11 pt holds about 75).
-TITLE_CHARS = 64
 
 SIGN_CAPTION = (
     "Local frame, z up, ground plan (x, y). Fields: physics sign convention "
@@ -209,7 +212,7 @@ def site_map(config, result_or_score, path) -> Path:
     score = getattr(result_or_score, "score", result_or_score)
     pos = np.asarray(score.positions_m, dtype=float).reshape(-1, 3)
     installed = np.asarray(score.installed, dtype=bool).reshape(-1)
-    names = _names(config, result_or_score, installed)
+    names = meter_names(config, result_or_score, installed)
     x0, y0, x1, y1 = _extent(config, pos, margin=0.06)
     scale, unit = _scale(x0, y0, x1, y1, config)
 
@@ -312,7 +315,7 @@ def _coverage_figure(problem, positions_m, gain, resolution, *, axes, grades, na
             ax.clabel(cs, fmt=_level_label, fontsize=7)
     _draw_keepouts(ax, config.keepouts, scale, fill=False)
     if names is None:
-        names = _names(config, None, meters.installed)
+        names = meter_names(config, None, meters.installed)
     handles = _draw_probes(ax, meters.positions_m, meters.installed, scale, names)
     ax.set_xlim(cov.x_m[0] / scale, cov.x_m[-1] / scale)
     ax.set_ylim(cov.y_m[0] / scale, cov.y_m[-1] / scale)
@@ -432,14 +435,8 @@ def budget_curve(budget_table, path, criterion: str, target: float | None) -> Pa
 
 
 class PlotFiles(list):
-    """The files :func:`plot_all` wrote (a list of Path), and what it could not draw.
-
-    Attributes
-    ----------
-    skipped : list of (str, str)
-        ``(file name, why it was not drawn)`` for a plot that applies to such results but not
-        to this one.
-    """
+    """The files :func:`plot_all` wrote (Paths); ``skipped``: ``(file name, why)`` of each
+    plot that applies to such results but could not be drawn for this one."""
 
     def __init__(self, paths=()) -> None:
         super().__init__(paths)
@@ -490,14 +487,11 @@ def plot_all(result, config, problem, folder, fmt: str = "png") -> PlotFiles:
         out.append(path)
     else:
         estimated = ", ".join(problem.names) or "nothing"
-        out.skipped.append(
-            (
-                coverage,
-                "it shows the horizontal location error of source 0, which this config does "
-                f'not estimate (it estimates {estimated}); add "x" and "y" to '
-                "source[0].estimate to draw it.",
-            )
+        why = (
+            "it shows the horizontal location error of source 0, which this config does not "
+            f'estimate (it estimates {estimated}); add "x" and "y" to source[0].estimate.'
         )
+        out.skipped.append((coverage, why))
     if result.budget is not None:
         out.append(
             budget_curve(
@@ -567,20 +561,6 @@ def _locate_times(loc) -> tuple[np.ndarray, str]:
     return loc.time_s, "time (s)"
 
 
-def colorbar_ticks(lo: float, hi: float) -> np.ndarray:
-    """At least two labelled ticks for a logarithmic colour bar from ``lo`` to ``hi`` (> 0).
-
-    Values 1, 2, 5 × 10^k inside the range (decades only when there are many); where fewer
-    than two fall inside it (a narrow range), its ends and their geometric mean.
-    """
-    if not (lo > 0 and hi > lo):
-        return np.array([lo]) if lo > 0 else np.zeros(0)
-    inside = _decade_levels(lo, hi, ends=True)
-    if inside.size >= 2:
-        return inside
-    return np.array([lo, float(np.sqrt(lo * hi)), hi])
-
-
 # --------------------------------------------------------------------------------------------
 # Private helpers
 # --------------------------------------------------------------------------------------------
@@ -603,40 +583,6 @@ def _legend_and_caption(fig: Figure, handles: list, caption: str) -> None:
     fig.legend(handles=handles, loc="outside right upper", fontsize=8, frameon=False)
     lines = [w for line in caption.split("\n") for w in textwrap.wrap(line, 120) or [""]]
     fig.supxlabel("\n".join(lines), fontsize=7, color="0.3")
-
-
-def _plain(text: object) -> str:
-    """User text for a figure: escaped (:func:`safe_text`) and never read as mathematics."""
-    return safe_text(text).replace("$", r"\$")
-
-
-def _title(ax, title: str, what: str) -> None:
-    """The config's title (at most two lines of :data:`TITLE_CHARS`) over what the plot is."""
-    lines = textwrap.wrap(_plain(title or "(untitled)"), TITLE_CHARS, max_lines=2, placeholder=" …")
-    ax.set_title("\n".join([*lines, what]), fontsize=11)
-
-
-def _names(config, result, installed: np.ndarray) -> tuple[str, ...]:
-    """Meter names, installed first: the result's, else the config's installed names, new-k."""
-    if result is not None and hasattr(result, "config_text"):
-        return probe_names(result)
-    n_new = int(np.count_nonzero(~installed))
-    inst = tuple(getattr(p, "name", f"installed-{k}") for k, p in enumerate(config.installed))
-    return inst + tuple(f"new-{k}" for k in range(n_new))
-
-
-def _heights_differ(pos: np.ndarray) -> bool:
-    z = pos[:, 2]
-    return z.size > 1 and float(np.ptp(z)) > 1e-6 * max(1.0, float(np.max(np.abs(z))))
-
-
-def _height_caption(pos: np.ndarray) -> str:
-    """A caption line on the meters' heights: each label has it when they differ."""
-    if not pos.size:
-        return ""
-    if _heights_differ(pos):
-        return "Meters stand at different heights: each label gives its z.\n"
-    return f"Every meter at z = {format_quantity(float(pos[0, 2]), 'm')}.\n"
 
 
 def _check_path(path) -> tuple[Path, str]:
@@ -718,37 +664,16 @@ def _draw_keepouts(ax, keepouts, scale: float, fill: bool = True) -> bool:
             lw=1.0 if fill else 1.4,
         )
         if not geom.is_empty:
-            x, y = np.asarray(geom.representative_point().coords[0]) / scale
-            name = getattr(r, "name", "") or f"keep-out {k}"
-            ax.annotate(
-                _plain(name),
-                (x, y),
-                fontsize=7,
-                color=_KEEPOUT_EDGE,
-                ha="center",
-                va="center",
-                bbox={"boxstyle": "round,pad=0.15", "fc": "white", "ec": "none", "alpha": 0.6},
-                zorder=3,  # under the meters and the charges
-            )
+            xy = np.asarray(geom.representative_point().coords[0]) / scale
+            label_keepout(ax, xy, getattr(r, "name", "") or f"keep-out {k}", _KEEPOUT_EDGE)
     return bool(keepouts)
 
 
 def _draw_probes(ax, pos: np.ndarray, installed: np.ndarray, scale: float, names=None) -> list:
     """The meters as markers, each labelled with its name (and its height when they differ)."""
     handles = []
-    heights = _heights_differ(pos)
-    for k in range(pos.shape[0] if names is not None else 0):
-        label = _plain(names[k])
-        if heights:
-            label += f"\nz = {format_quantity(float(pos[k, 2]), 'm')}"
-        ax.annotate(
-            label,
-            (pos[k, 0] / scale, pos[k, 1] / scale),
-            textcoords="offset points",
-            xytext=(6, 4),
-            fontsize=7,
-            zorder=8,
-        )
+    if names is not None:
+        label_meters(ax, pos, names, scale)
     for mask, style in ((installed, _INSTALLED), (~installed, _NEW)):
         if mask.any():
             (h,) = ax.plot(
@@ -794,16 +719,7 @@ def _draw_sources(ax, config, scale: float) -> None:
             )
         star = {"color": _SOURCE, "ms": 14, "mec": "white", "mew": 0.5, "zorder": 6}
         ax.plot(c[0] / scale, c[1] / scale, "*", **star)
-        name = getattr(spec, "name", "") or f"s{i}"
-        ax.annotate(
-            _plain(name),
-            c[:2] / scale,
-            xytext=(7, -10),
-            textcoords="offset points",
-            fontsize=7,
-            color=_SOURCE,
-            zorder=8,
-        )
+        label_source(ax, c[:2] / scale, getattr(spec, "name", "") or f"s{i}", _SOURCE)
 
 
 def _scenario_xy(config, score) -> np.ndarray | None:
@@ -886,22 +802,3 @@ def _map_furniture(ax) -> None:
         fontweight="bold",
         arrowprops={"arrowstyle": "-|>", "color": "black", "lw": 1.5},
     )
-
-
-def _decade_levels(lo: float, hi: float, ends: bool = False) -> np.ndarray:
-    """Levels 1, 2, 5 × 10^k in (lo, hi) ([lo, hi] with ``ends``); decades only if many."""
-    if not (lo > 0 and hi > lo):
-        return np.zeros(0)
-    ks = np.arange(np.floor(np.log10(lo)), np.ceil(np.log10(hi)) + 1)
-    levels = (np.array([1.0, 2.0, 5.0])[None, :] * 10.0 ** ks[:, None]).ravel()
-    if ends:
-        levels = levels[(levels >= lo) & (levels <= hi)]
-    else:
-        levels = levels[(levels > lo) & (levels < hi)]
-    if levels.size > 6:  # a wide range: decades only, to keep the labels readable
-        levels = levels[np.isclose(np.log10(levels) % 1.0, 0.0, atol=1e-9)]
-    return levels
-
-
-def _level_label(v: float) -> str:
-    return format_quantity(v, "m")

@@ -171,10 +171,6 @@ def _wrapped(line: Text, width: int, hang: bool) -> Iterator[Text]:
         yield out
 
 
-def _prose(part):
-    return Prose(part) if isinstance(part, Text) else part
-
-
 def _table(title: str | None = None, **kw) -> Table:
     """A summary table: a plain title (user text in it is escaped, never markup)."""
     kw.setdefault("box", box.SIMPLE_HEAD)
@@ -200,9 +196,7 @@ def _row(table: Table, *cells, style: str | None = None) -> None:
 
 def _value(x: float) -> str:
     """A ``d`` value with enough digits to compare layouts (and to parse back)."""
-    if not math.isfinite(x):
-        return f"{x:g}"
-    return f"{x:.6g}"
+    return f"{x:.6g}" if math.isfinite(x) else f"{x:g}"
 
 
 def _crit(result: Result, x: float) -> str:
@@ -284,7 +278,7 @@ def summary_parts(result: Result) -> list:
         parts.append(Panel(text, title="Caution", title_align="left", width=80))
     else:
         parts.append(Text(CAUTION_LINE))  # even `caution = "none"` keeps one line of it
-    return [_prose(p) for p in parts]
+    return [Prose(p) if isinstance(p, Text) else p for p in parts]
 
 
 def _findings_text(label: str, sentences, style: str) -> Text | None:

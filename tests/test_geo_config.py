@@ -271,8 +271,11 @@ def test_map_furniture_on_a_site_with_a_frame(tmp_path):
     ax.set_ylim(-3.0, 3.0)
     pos = np.array([[-1500.0, -1500.0, 2.0], [100.0, 200.0, 0.0]])
     plots._axis_labels(ax, config, "km")
-    plots._map_furniture(ax, config, pos, ("gate", "new-0"), 1000.0)
-    texts = [t.get_text() for t in ax.texts]
+    plots._map_furniture(ax)
+    # The names of meters and keep-outs are on every map, drawn with them.
+    plots._draw_probes(ax, pos, np.array([True, False]), 1000.0, ("gate", "new-0"))
+    plots._draw_keepouts(ax, config.keepouts, 1000.0)
+    texts = [t.get_text().split("\n")[0] for t in ax.texts]  # a meter's height follows
     assert {"N", "gate", "new-0", "tank"} <= set(texts)
     (bar,) = [a for a in ax.artists if isinstance(a, AnchoredSizeBar)]
     assert bar.txt_label.get_text() == "1 km"  # a fifth of 6 km, rounded down to 1-2-5
