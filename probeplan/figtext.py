@@ -8,7 +8,7 @@ import textwrap
 
 import numpy as np
 
-from .report import safe_text
+from .prose import safe_text
 from .resulttypes import format_quantity, probe_names
 
 #: Characters of a title line (an 8-inch figure at 11 pt holds about 75).

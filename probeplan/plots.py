@@ -11,15 +11,12 @@ written.
   source 0 for a charge at each horizontal position (Cramér–Rao, batched over the grid).
 * :func:`budget_curve` — cost against the criterion for every grade, the Pareto front and the
   target.
-* :func:`plot_all` — the plots that apply to a result, in one folder, and why any other was
-  not drawn.
+* :func:`plot_all` — the plots that apply to a result, and why any other was not drawn.
 
 Symbols (our own): installed meters are blue squares, new meters orange triangles, charges
 purple stars; mounting regions are light green, keep-outs red hatching. Meters and keep-outs
-carry their names; when the meters stand at different heights (walls, masts, ceilings) each
-label gives its height too. Every number goes through
-:func:`~probeplan.resulttypes.format_quantity`, every user string through
-:func:`~probeplan.report.safe_text` (and ``$`` is never read as mathematics).
+carry their names, and their heights when these differ (walls, masts); the words and numbers
+are :mod:`probeplan.figtext`'s (rounded, escaped, ``$`` never read as mathematics).
 """
 
 from __future__ import annotations
@@ -435,8 +432,7 @@ def budget_curve(budget_table, path, criterion: str, target: float | None) -> Pa
 
 
 class PlotFiles(list):
-    """The files :func:`plot_all` wrote (Paths); ``skipped``: ``(file name, why)`` of each
-    plot that applies to such results but could not be drawn for this one."""
+    """The files :func:`plot_all` wrote; ``skipped``: ``(file name, why)`` of those not drawn."""
 
     def __init__(self, paths=()) -> None:
         super().__init__(paths)
