@@ -7,10 +7,12 @@ so every ``plan`` here takes a second or two.
 from __future__ import annotations
 
 import re
+import shutil
 
+import h5py
 import numpy as np
 import pytest
-from sites import write_site
+from sites import meter_grade, write_site
 
 from probeplan.cli import main
 from probeplan.site import Site, make_region
@@ -55,3 +57,137 @@ def test_a_crowded_site_keeps_its_plan_and_says_how_many_baselines_fit(tmp_path,
     placed, missing = (int(n) for n in re.findall(r"\d+", name)[:2])
     assert placed + missing == 200 and missing > 0, name
     assert "could not place" in out
+
+
+# ---------------------------------------------------------------- 5. damaged result files
+
+# A small site with an installed meter and two grades, so a plan and a budget write every
+# section that a result of theirs can hold.
+SMALL = {
+    "probes": {"installed": [{"name": "gate", "position_m": [-1500.0, -1000.0, 0.0]}]},
+    "design": {"random_layouts": 10, "grid_spacing_m": 1000.0},
+    "grade": [meter_grade("standard", 20.0, 1000.0), meter_grade("fine", 5.0, 3000.0)],
+    "budget": {"counts": [4, 5]},
+}
+
+
+@pytest.fixture(scope="module")
+def real_results(tmp_path_factory):
+    """A real plan result and a real budget result of the small site."""
+    d = tmp_path_factory.mktemp("real")
+    cfg = write_site(d / "small.toml", SMALL)
+    assert main(["plan", str(cfg), "--out", str(d / "plan.h5"), "--quiet"]) == 0
+    assert main(["budget", str(cfg), "--out", str(d / "budget.h5"), "--quiet"]) == 0
+    return d / "plan.h5", d / "budget.h5"
+
+
+def _datasets(path) -> list[str]:
+    names: list[str] = []
+    with h5py.File(path, "r") as f:
+        f.visititems(lambda n, o: names.append(n) if isinstance(o, h5py.Dataset) else None)
+    return names
+
+
+def _replace(f: h5py.File, name: str, data) -> None:
+    attrs = dict(f[name].attrs)
+    del f[name]
+    data = np.asarray(data)
+    f.create_dataset(name, data=data, dtype=h5py.string_dtype() if data.dtype.kind == "O" else None)
+    f[name].attrs.update(attrs)
+
+
+def _corrupt(f: h5py.File, name: str, kind: str) -> bool:
+    """Damage dataset ``name`` in the way ``kind`` says; False when it does not apply."""
+    data = f[name][()]
+    text = h5py.check_string_dtype(f[name].dtype) is not None
+    if kind == "missing":
+        del f[name]
+    elif kind == "wrong type":
+        bad = np.full(np.shape(data), 7.0) if text else np.full(np.shape(data), "x", dtype="S1")
+        _replace(f, name, bad)
+    elif kind == "wrong rank":
+        _replace(f, name, np.asarray(data)[..., None])
+    elif kind == "wrong length":
+        if np.ndim(data) == 0 or len(data) == 0:
+            return False
+        _replace(f, name, np.concatenate([data, data[:1]]))
+    elif kind in ("nan", "inf", "fraction", "big"):
+        arr = np.array(data)
+        if text or arr.size == 0 or arr.dtype.kind not in "fiub":
+            return False
+        value = {"nan": np.nan, "inf": np.inf, "fraction": 0.5, "big": 1e300}[kind]
+        flat = arr.astype(float).ravel()
+        if kind in ("fraction", "big") and arr.dtype.kind == "f":
+            return False  # any finite number is a number
+        flat[0] = value
+        _replace(f, name, flat.reshape(arr.shape))
+    return True
+
+
+KINDS = ("missing", "wrong type", "wrong rank", "wrong length", "nan", "inf", "fraction", "big")
+# What a reader may accept because the result means it: optional datasets, ±inf where the
+# criterion is infinite (a singular layout), lists of any length, and the sections whose
+# dataclass states NaN as "not computed".
+OPTIONAL = {"layout/axes", "layout/grade", "layout/names", "notes", "search/bound"}
+OPTIONAL |= {"search/bound_gap", "score/failure_values"}
+INFINITE = {"score/crb_std", "score/per_scenario", "score/value", "score/failure_values"}
+INFINITE |= {"search/history", "search/bound", "search/bound_gap", "search/stage_values"}
+INFINITE |= {"search/baseline_values", "budget/value"}
+ANY_LENGTH = {"notes", "search/history"}
+
+
+def _accepted(name: str, kind: str) -> bool:
+    if kind == "missing":
+        return name in OPTIONAL
+    if kind == "inf":
+        return name in INFINITE
+    if kind == "wrong length":
+        # A baseline's or budget option's layout has as many probes as it has.
+        return name in ANY_LENGTH or name.startswith(("search/baselines/", "budget/layouts/"))
+    return False
+
+
+@pytest.mark.parametrize("which", [0, 1], ids=["plan", "budget"])
+@pytest.mark.parametrize("kind", KINDS)
+def test_every_damaged_dataset_is_refused_naming_file_and_dataset(
+    real_results, which, kind, tmp_path, capsys
+):
+    src = real_results[which]
+    failures = []
+    for name in _datasets(src):
+        copy = tmp_path / f"{name.replace('/', '_')}.h5"
+        shutil.copy(src, copy)
+        with h5py.File(copy, "r+") as f:
+            if not _corrupt(f, name, kind):
+                continue
+        code, out, err = run(capsys, "show", copy)
+        if code == 0 and _accepted(name, kind):
+            continue
+        if code != 2 or str(copy) not in err or f"/{name}" not in err:
+            failures.append(f"{name} ({kind}): exit {code}: {err.strip()[:300]}")
+    assert not failures, "\n".join(failures)
+
+
+ATTRS = [
+    ("", "complete", "no"),
+    ("", "complete", np.int64(1)),
+    ("", "seed", 2.5),
+    ("", "seed", "three"),
+    ("", "title", np.float64(3.0)),
+    ("", "ground_z_m", "low"),
+    ("score/value", "criterion", np.int64(4)),
+    ("score/unresolved_text", "scenario", "first"),
+    ("scenarios/params", "names", np.float64(1.0)),
+]
+
+
+@pytest.mark.parametrize(("path", "key", "value"), ATTRS)
+def test_every_damaged_attribute_is_refused_naming_file_and_key(
+    real_results, path, key, value, tmp_path, capsys
+):
+    copy = tmp_path / "r.h5"
+    shutil.copy(real_results[0], copy)
+    with h5py.File(copy, "r+") as f:
+        (f[path] if path else f).attrs[key] = value
+    code, _, err = run(capsys, "show", copy)
+    assert code == 2 and str(copy) in err and f"`{key}`" in err, err
