@@ -37,6 +37,7 @@ class OptionPlan:
     positions_m: np.ndarray  # (count, 3)
     gain: np.ndarray  # (count,)
     complete: bool = True  # False when a stop request ended its search early
+    reason: str = ""  # why the mounting rules cannot hold this count ("" when they can)
 
 
 def plan_chain(
@@ -72,13 +73,26 @@ def plan_chain(
     stop = stop_event.is_set if stop_event is not None else None
     out: list[OptionPlan] = []
     warm = warm_start_m
+    site = config.site()
+    worst = -np.inf if config.design.criterion == "d" else np.inf
     for count in counts:
         if stop is not None and stop():
             break
-        problem = build_problem(config, count=count, grade=grade)
-        outcome = plan(
-            problem, warm_start_m=warm, evaluations=evaluations, random_layouts=0, stop=stop
-        )
+        cost = float(count * grade.cost)
+        try:
+            site.check_feasible(count)
+            problem = build_problem(config, count=count, grade=grade)
+            outcome = plan(
+                problem, warm_start_m=warm, evaluations=evaluations, random_layouts=0, stop=stop
+            )
+        except (ValueError, InputError) as exc:
+            # The rules cannot hold this count (check_feasible's ValueError) or the candidate
+            # grid cannot (the greedy step's InputError): a row marked so; the chain goes on.
+            empty = np.zeros((0, 3))
+            out.append(
+                OptionPlan(count, grade_name, cost, worst, empty, np.zeros(0), True, str(exc))
+            )
+            continue
         if not outcome.has_layout:
             break  # stopped before this count had a layout: nothing to tabulate
         warm = outcome.positions_m
@@ -86,7 +100,7 @@ def plan_chain(
             OptionPlan(
                 count=count,
                 grade=grade_name,
-                cost=float(count * grade.cost),
+                cost=cost,
                 value=float(outcome.score.value),
                 positions_m=outcome.positions_m,
                 gain=outcome.gain,
@@ -258,11 +272,12 @@ def tabulate(options: list[OptionPlan], config) -> BudgetTable:
     maximise = config.design.criterion == "d"
     cost = np.array([o.cost for o in options], dtype=float)
     value = np.array([o.value for o in options], dtype=float)
+    fits = np.array([not o.reason for o in options], dtype=bool)
     target = config.budget.target
     if target is None:
         meets = np.zeros(len(options), dtype=bool)
     else:
-        meets = value >= target if maximise else value <= target
+        meets = fits & (value >= target if maximise else value <= target)
     return BudgetTable(
         count=np.array([o.count for o in options], dtype=int),
         grade=np.array([o.grade for o in options], dtype=object),
@@ -273,6 +288,8 @@ def tabulate(options: list[OptionPlan], config) -> BudgetTable:
         cheapest=cheapest_meeting(cost, value, meets, maximise),
         target=target,
         layouts=tuple(o.positions_m for o in options),
+        feasible=fits,
+        reason=tuple(o.reason for o in options),
     )
 
 
@@ -282,4 +299,5 @@ def chosen_option(table: BudgetTable, maximise: bool) -> int:
     if table.cheapest >= 0:
         return table.cheapest
     v = np.where(np.isnan(table.value), -np.inf, table.value if maximise else -table.value)
-    return int(np.argmax(v))
+    rows = np.flatnonzero(table.fits())  # a row that does not fit has no layout to score
+    return int(rows[np.argmax(v[rows])]) if rows.size else int(np.argmax(v))

@@ -473,6 +473,8 @@ def _budget_table(result: Result) -> Table:
             notes.append("CHEAPEST")
         if b.pareto[k]:
             notes.append("pareto")
+        if not b.fits()[k]:
+            notes.append("does not fit")
         table.add_row(
             str(k),
             str(int(b.count[k])),

@@ -59,15 +59,51 @@ def test_a_crowded_site_keeps_its_plan_and_says_how_many_baselines_fit(tmp_path,
     assert "could not place" in out
 
 
+# ---------------------------------------------------------------- 2. budgets that do not fit
+
+
+@pytest.mark.parametrize(
+    ("counts", "fit"),
+    [([4, 5, 30], [4, 5]), ([30, 4], [4]), ([4, 25, 30], [4])],
+    ids=["largest", "unsorted", "two"],
+)
+def test_a_budget_count_that_does_not_fit_is_a_row_marked_so(tmp_path, capsys, counts, fit):
+    layer = {**SMALL, "grade": SMALL["grade"][:1], "budget": {"counts": counts, "target": 0.0}}
+    cfg = write_site(tmp_path / "b.toml", layer)
+    code, out, err = run(capsys, "budget", cfg, "--out", tmp_path / "b.h5")
+    assert code == 0, err
+    b = read_result(tmp_path / "b.h5").budget
+    assert sorted(b.count[b.fits()].tolist()) == fit
+    bad = ~b.fits()
+    assert sorted(b.count[bad].tolist()) == sorted(set(counts) - set(fit))
+    # A row that does not fit: the worst value (never NaN), an empty layout, a reason, and it
+    # never meets the target nor is chosen.
+    assert np.all(b.value[bad] == -np.inf) and not b.meets_target[bad].any()
+    assert all("cannot place" in b.reason[k] for k in np.flatnonzero(bad))
+    assert all(len(b.layouts[k]) == 0 for k in np.flatnonzero(bad))
+    assert b.cheapest < 0 or b.fits()[b.cheapest]
+    assert f"largest count asked for that fits is {max(fit)}" in " ".join(out.split())
+
+
+def test_a_budget_none_of_whose_counts_fit_is_refused(tmp_path, capsys):
+    layer = {**SMALL, "budget": {"counts": [25, 30]}}
+    code, _, err = run(capsys, "budget", write_site(tmp_path / "b.toml", layer))
+    assert code == 2 and "b.toml" in err and "budget.counts" in err and "cannot place" in err
+
+
 # ---------------------------------------------------------------- 5. damaged result files
 
 # A small site with an installed meter and two grades, so a plan and a budget write every
 # section that a result of theirs can hold.
+# 30 meters 1.5 km apart do not fit its 4 km square (about 19 do): a budget row marked so.
 SMALL = {
-    "probes": {"installed": [{"name": "gate", "position_m": [-1500.0, -1000.0, 0.0]}]},
-    "design": {"random_layouts": 10, "grid_spacing_m": 1000.0},
+    "probes": {
+        "installed": [{"name": "gate", "position_m": [-1500.0, -1000.0, 0.0]}],
+        "min_spacing_m": 1500.0,
+    },
+    "design": {"random_layouts": 10, "grid_spacing_m": 500.0},
     "grade": [meter_grade("standard", 20.0, 1000.0), meter_grade("fine", 5.0, 3000.0)],
-    "budget": {"counts": [4, 5]},
+    "budget": {"counts": [4, 5, 30], "target": 0.0},
 }
 
 
@@ -129,7 +165,7 @@ KINDS = ("missing", "wrong type", "wrong rank", "wrong length", "nan", "inf", "f
 # criterion is infinite (a singular layout), lists of any length, and the sections whose
 # dataclass states NaN as "not computed".
 OPTIONAL = {"layout/axes", "layout/grade", "layout/names", "notes", "search/bound"}
-OPTIONAL |= {"search/bound_gap", "score/failure_values"}
+OPTIONAL |= {"search/bound_gap", "score/failure_values", "budget/feasible", "budget/reason"}
 INFINITE = {"score/crb_std", "score/per_scenario", "score/value", "score/failure_values"}
 INFINITE |= {"search/history", "search/bound", "search/bound_gap", "search/stage_values"}
 INFINITE |= {"search/baseline_values", "budget/value"}

@@ -388,4 +388,9 @@ def _read_budget(r: _Reader) -> BudgetTable:
             r.array(f"budget/layouts/{row}/positions_m", shape=(None, 3))
             for row in range(count.size)
         ),
+        # Written since a count that does not fit became a row rather than an error.
+        feasible=(
+            r.array("budget/feasible", dtype=bool, shape=rows) if r.has("budget/feasible") else None
+        ),
+        reason=r.strings("budget/reason", "n_rows") if r.has("budget/reason") else (),
     )

@@ -217,6 +217,8 @@ def _write_budget(g: h5py.Group, b: BudgetTable, vunit: str) -> None:
     _dataset(g, "value", np.asarray(b.value, dtype=float), vunit)
     _dataset(g, "meets_target", np.asarray(b.meets_target, dtype=bool))
     _dataset(g, "pareto", np.asarray(b.pareto, dtype=bool))
+    _dataset(g, "feasible", b.fits())
+    _strings(g, "reason", list(b.reason) if b.feasible is not None else [""] * len(b.count))
     g.attrs["cheapest"] = np.int64(b.cheapest)
     if b.target is not None:
         g.attrs["target"] = np.float64(b.target)
