@@ -12,6 +12,8 @@ import shutil
 import h5py
 import numpy as np
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 from sites import meter_grade, write_site
 
 from probeplan.cli import main
@@ -227,3 +229,62 @@ def test_every_damaged_attribute_is_refused_naming_file_and_key(
         (f[path] if path else f).attrs[key] = value
     code, _, err = run(capsys, "show", copy)
     assert code == 2 and str(copy) in err and f"`{key}`" in err, err
+
+
+# ---------------------------------------------------------------- 5. degenerate layouts: no NaN
+
+
+def _nan_datasets(path) -> list[str]:
+    found: list[str] = []
+
+    def visit(name, obj):
+        if isinstance(obj, h5py.Dataset) and obj.dtype.kind == "f" and np.isnan(obj[()]).any():
+            found.append(name)
+
+    with h5py.File(path, "r") as f:
+        f.visititems(visit)
+    return found
+
+
+# Classes of degenerate layouts about the base site's charge at (0, 0, 3000) m (tests/sites.py):
+# all probes at one point, far beyond any field, collinear, about the charge (within a
+# nanometre, or a hair outside), and the bottom of the float range.
+DEGENERATE = st.sampled_from(
+    [
+        lambda u: [[u, u, 0.0]] * 4,
+        lambda u: [[1e15 * (1 + k + u), 0.0, 0.0] for k in range(4)],
+        lambda u: [[k * (1 + u), 0.0, 0.0] for k in range(4)],
+        lambda u: [[u * 1e-160, 0.0, 3000.0], [100, 0, 0], [0, 100, 0], [5, 5, 0]],
+        lambda u: [[0.0, 0.0, 3000.0 - 1e-6 * (1 + u)], [100, 0, 0], [0, 100, 0], [5, 5, 0]],
+        lambda u: [[u * 1e-300, k * 1e-300, 0.0] for k in range(4)],
+    ]
+)
+
+
+@settings(
+    max_examples=12, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
+@given(make=DEGENERATE, u=st.floats(0.0, 1.0))
+def test_no_written_result_holds_nan_over_degenerate_layouts(tmp_path, capsys, make, u):
+    cfg = write_site(tmp_path / "s.toml", design={"random_layouts": 10, "grid_spacing_m": 1000.0})
+    csv = tmp_path / "lay.csv"
+    csv.write_text("x_m,y_m,z_m\n" + "".join(f"{x!r},{y!r},{z!r}\n" for x, y, z in make(u)))
+    out = tmp_path / "r.h5"
+    code, _, err = run(capsys, "score", cfg, "--layout", csv, "--out", out, "--force")
+    assert code in (0, 2), err
+    if code == 2:
+        assert str(csv) in err
+    else:
+        assert _nan_datasets(out) == []
+
+
+def test_a_plan_on_a_site_too_far_for_any_field_holds_no_nan(tmp_path, capsys):
+    # Meters 1e12 m away read nothing: every layout is singular, every bound −inf, never NaN.
+    far = {"kind": "rectangle", "min_m": [1e12, 1e12], "max_m": [1e12 + 4e3, 1e12 + 4e3]}
+    cfg = write_site(
+        tmp_path / "far.toml", region=[far], design={"random_layouts": 10, "grid_spacing_m": 1e3}
+    )
+    code, _, err = run(capsys, "plan", cfg, "--out", tmp_path / "r.h5")
+    assert code in (0, 2), err
+    if code == 0:
+        assert _nan_datasets(tmp_path / "r.h5") == []
