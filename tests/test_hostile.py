@@ -288,3 +288,43 @@ def test_a_plan_on_a_site_too_far_for_any_field_holds_no_nan(tmp_path, capsys):
     assert code in (0, 2), err
     if code == 0:
         assert _nan_datasets(tmp_path / "r.h5") == []
+
+
+# ---------------------------------------------------------------- 5. configs beyond any run
+
+BEYOND = [
+    ("nul in title", {"title": "a\x00b"}, ["`title`", "NUL"]),
+    (
+        "nul in a name",
+        {"probes": {"installed": [{"name": "g\x00", "position_m": [0, 0, 0]}]}},
+        ["NUL"],
+    ),
+    (
+        "huge vertex",
+        {
+            "region": [
+                {"kind": "polygon", "vertices_m": [[0, 0], [1e308, 0], [1e308, 1e308]], "z_m": 0}
+            ]
+        },
+        ["vertices_m[1][0]", "1e+08 m"],
+    ),
+    (
+        "huge rectangle",
+        {"region": [{"kind": "rectangle", "min_m": [-1e300, 0], "max_m": [1, 1], "z_m": 0}]},
+        ["min_m[0]", "1e+08 m"],
+    ),
+    ("scenarios", {"design": {"scenarios": 10**9}}, ["design.scenarios", "GiB", "limit"]),
+    ("scenarios overflow", {"design": {"scenarios": 10**30}}, ["design.scenarios", "limit"]),
+    ("random layouts", {"design": {"random_layouts": 10**12}}, ["random_layouts", "limit"]),
+    ("evaluations", {"design": {"evaluations": 10**12}}, ["design.evaluations", "limit"]),
+    ("count", {"probes": {"count": 10**9}}, ["probes.count", "limit"]),
+]
+
+
+@pytest.mark.parametrize(("layer", "pieces"), [c[1:] for c in BEYOND], ids=[c[0] for c in BEYOND])
+def test_a_config_beyond_any_run_is_refused_at_once(tmp_path, capsys, layer, pieces):
+    cfg = write_site(tmp_path / "big.toml", layer)
+    code, _, err = run(capsys, "plan", cfg, "--out", tmp_path / "r.h5")
+    assert code == 2, err
+    assert str(cfg) in err and all(p in err for p in pieces), err
+    assert not (tmp_path / "r.h5").exists()
