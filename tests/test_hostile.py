@@ -328,3 +328,66 @@ def test_a_config_beyond_any_run_is_refused_at_once(tmp_path, capsys, layer, pie
     assert code == 2, err
     assert str(cfg) in err and all(p in err for p in pieces), err
     assert not (tmp_path / "r.h5").exists()
+
+
+def test_a_layout_of_a_million_rows_is_refused_at_once(tmp_path, capsys):
+    cfg = write_site(tmp_path / "s.toml")
+    csv = tmp_path / "million.csv"
+    csv.write_text("x_m,y_m,z_m\n" + "1,2,0\n" * 1_000_000)
+    code, _, err = run(capsys, "score", cfg, "--layout", csv)
+    assert code == 2 and str(csv) in err and "at most" in err, err
+
+
+# ---------------------------------------------------------------- 7. every file error names it
+
+BAD_CSV = {
+    "empty": b"",
+    "comments only": b"# nothing\n",
+    "header only": b"x_m,y_m,z_m\n",
+    "unknown column": b"x_m,y_m,z_m,colour\n1,2,0,red\n",
+    "missing column": b"x_m,y_m\n1,2\n",
+    "twice": b"x_m,y_m,z_m,x_m\n1,2,0,1\n",
+    "text number": b"x_m,y_m,z_m\n1,two,0\n",
+    "nan": b"x_m,y_m,z_m\n1,nan,0\n",
+    "inf": b"x_m,y_m,z_m\n1,inf,0\n",
+    "huge": b"x_m,y_m,z_m\n1,1e400,0\n",
+    "short row": b"x_m,y_m,z_m\n1,2\n",
+    "long row": b"x_m,y_m,z_m\n1,2,0,4\n",
+    "bad component": b"x_m,y_m,z_m,component\n1,2,0,sideways\n",
+    "not utf-8": b"x_m,y_m,z_m\n1,2,\xff\n",
+    "nul": b"x_m,y_m,z_m\n1,2,0\x00\n",
+    "on the charge": b"x_m,y_m,z_m\n0,0,3000\n1,2,0\n3,4,0\n5,6,0\n",
+}
+
+
+@pytest.mark.parametrize("data", BAD_CSV.values(), ids=BAD_CSV.keys())
+@pytest.mark.parametrize("command", ["score", "simulate"])
+def test_every_layout_csv_error_names_the_file(tmp_path, capsys, data, command):
+    cfg = write_site(tmp_path / "s.toml")
+    csv = tmp_path / "lay.csv"
+    csv.write_bytes(data)
+    argv = [command, cfg, "--layout", csv] if command == "score" else [command, csv]
+    code, _, err = run(capsys, *argv)
+    assert code == 2, err
+    assert str(csv) in err or (command == "simulate" and "lay.csv" in err), err
+
+
+@pytest.mark.parametrize(
+    "data",
+    [b"", b"not hdf5 at all", b"\x89HDF\r\n\x1a\n" + b"\x00" * 64],
+    ids=["empty", "text", "truncated"],
+)
+@pytest.mark.parametrize("command", ["show", "simulate", "plot", "resume", "from"])
+def test_every_result_file_error_names_the_file(tmp_path, capsys, data, command):
+    cfg = write_site(tmp_path / "s.toml")
+    bad = tmp_path / "bad.h5"
+    bad.write_bytes(data)
+    argv = {
+        "show": ["show", bad],
+        "simulate": ["simulate", bad],
+        "plot": ["plot", bad],
+        "resume": ["plan", "--resume", bad],
+        "from": ["plan", cfg, "--from", bad],
+    }[command]
+    code, _, err = run(capsys, *argv)
+    assert code == 2 and str(bad) in err, err
