@@ -10,17 +10,19 @@ the same ``submit`` interface) can take its place without changing this module.
 
 from __future__ import annotations
 
-import multiprocessing
 import os
 import signal
+import threading
+import time
 from collections.abc import Callable
 from concurrent.futures import FIRST_COMPLETED, Executor, ProcessPoolExecutor, wait
 from dataclasses import dataclass
+from multiprocessing.managers import SyncManager
 
 import numpy as np
 
 from .config import parse_config
-from .errors import InputError
+from .errors import EXIT_INTERRUPTED, InputError
 from .problem import build_problem
 from .resulttypes import BudgetTable
 from .search import plan
@@ -110,10 +112,26 @@ def plan_chain(
     return out
 
 
-def _ignore_interrupts() -> None:
-    """Worker initialiser: Ctrl-C reaches the whole process group; only the parent handles it
-    (it sets the shared stop event, and the workers finish their current step)."""
+#: Seconds between a helper process's checks that its parent is still alive.
+_PARENT_POLL_S = 0.5
+
+
+def _helper_init(parent_pid: int) -> None:
+    """Initialiser of the pool's workers and the stop flag's manager.
+
+    Ctrl-C reaches the whole process group; only the parent handles it (it sets the shared
+    stop event, and the workers finish their current step). A parent that dies without
+    shutting the pool down (SIGKILL, a crash) cannot stop them either: a daemon thread in each
+    helper ends it once its parent is gone (it is then re-parented, so ``getppid`` changes).
+    """
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+    def watch() -> None:
+        while os.getppid() == parent_pid:
+            time.sleep(_PARENT_POLL_S)
+        os._exit(EXIT_INTERRUPTED)
+
+    threading.Thread(target=watch, name="parent-watch", daemon=True).start()
 
 
 def pareto_front(cost: np.ndarray, value: np.ndarray, maximise: bool) -> np.ndarray:
@@ -199,8 +217,13 @@ def run_budget(
     own = executor is None
     workers = max(1, min(len(grades), os.cpu_count() or 1))
     if own and workers > 1:
-        executor = ProcessPoolExecutor(max_workers=workers, initializer=_ignore_interrupts)
-    manager = multiprocessing.Manager() if own and executor is not None else None
+        executor = ProcessPoolExecutor(
+            max_workers=workers, initializer=_helper_init, initargs=(os.getpid(),)
+        )
+    manager = None
+    if own and executor is not None:
+        manager = SyncManager()
+        manager.start(_helper_init, (os.getpid(),))
     event = manager.Event() if manager is not None else _LocalEvent()
     results: list[OptionPlan] = [o for o in done if o.grade in grades and o.count in counts]
     args = []

@@ -6,8 +6,13 @@ so every ``plan`` here takes a second or two.
 
 from __future__ import annotations
 
+import os
 import re
 import shutil
+import signal
+import subprocess
+import sys
+import time
 
 import h5py
 import numpy as np
@@ -391,3 +396,81 @@ def test_every_result_file_error_names_the_file(tmp_path, capsys, data, command)
     }[command]
     code, _, err = run(capsys, *argv)
     assert code == 2 and str(bad) in err, err
+
+
+# ---------------------------------------------------------------- 3, 4. real processes
+
+
+def _children(pid: int) -> set[int]:
+    """Every descendant of ``pid`` (Linux /proc)."""
+    out: set[int] = set()
+    todo = [pid]
+    while todo:
+        p = todo.pop()
+        try:
+            with open(f"/proc/{p}/task/{p}/children") as fh:
+                kids = {int(k) for k in fh.read().split()}
+        except OSError:
+            kids = set()
+        out |= kids
+        todo += kids
+    return out
+
+
+def _alive(pid: int) -> bool:
+    try:
+        with open(f"/proc/{pid}/stat") as fh:
+            return fh.read().split(")")[-1].split()[0] != "Z"
+    except OSError:
+        return False
+
+
+@pytest.mark.skipif(not os.path.exists("/proc/self/task"), reason="needs Linux /proc")
+def test_budget_workers_do_not_outlive_their_parent(tmp_path):
+    layer = {**SMALL, "design": {"random_layouts": 10, "grid_spacing_m": 100.0, "scenarios": 40}}
+    cfg = write_site(tmp_path / "b.toml", layer)
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "probeplan", "budget", str(cfg), "--out", str(tmp_path / "b.h5")],
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+    )
+    kids: set[int] = set()
+    deadline = time.monotonic() + 120
+    while len(kids) < 2 and proc.poll() is None and time.monotonic() < deadline:
+        time.sleep(0.05)  # poll for the pool's workers (and the stop flag's manager)
+        kids = _children(proc.pid)
+    proc.kill()  # the parent dies without a chance to shut its pool down
+    proc.wait()
+    deadline = time.monotonic() + 30
+    while any(_alive(k) for k in kids) and time.monotonic() < deadline:
+        time.sleep(0.1)
+    left = [k for k in kids if _alive(k)]
+    for k in left:
+        os.kill(k, signal.SIGKILL)
+    assert kids and not left
+
+
+def test_two_runs_writing_at_once_never_replace_each_other(tmp_path):
+    cfg = write_site(tmp_path / "s.toml", design={"random_layouts": 10, "grid_spacing_m": 1000.0})
+
+    def start(*extra):
+        return subprocess.Popen(
+            [sys.executable, "-m", "probeplan", "plan", str(cfg), "--quiet", *extra],
+            cwd=tmp_path,
+            stdout=subprocess.PIPE,
+            stderr=subprocess.PIPE,
+            text=True,
+        )
+
+    # Two runs to one explicit name, two to the default name, all at once.
+    runs = [start("--out", "same.h5"), start("--out", "same.h5"), start(), start()]
+    done = [(p.wait(timeout=300), p.stderr.read()) for p in runs]
+    codes = sorted(c for c, _ in done[:2])
+    assert codes == [0, 2], done
+    assert "exists" in next(e for c, e in done[:2] if c == 2)
+    assert [c for c, _ in done[2:]] == [0, 0], done
+    h5 = sorted(p.name for p in tmp_path.glob("*.h5"))
+    assert len(h5) == 3 and "same.h5" in h5, h5
+    for name in h5:
+        assert read_result(tmp_path / name).complete
+    assert not list(tmp_path.glob(".tmp-*")) and not list(tmp_path.glob("*.tmp*"))
