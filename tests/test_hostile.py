@@ -22,6 +22,7 @@ from hypothesis import strategies as st
 from sites import meter_grade, write_site
 
 from probeplan.cli import main
+from probeplan.errors import EXIT_INTERRUPTED
 from probeplan.site import Site, make_region
 from probeplan.store import read_result
 
@@ -474,3 +475,54 @@ def test_two_runs_writing_at_once_never_replace_each_other(tmp_path):
     for name in h5:
         assert read_result(tmp_path / name).complete
     assert not list(tmp_path.glob(".tmp-*")) and not list(tmp_path.glob("*.tmp*"))
+
+
+def _signal_run(folder, cfg, sig, delay_s: float) -> tuple[int, str, str]:
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "probeplan", "plan", str(cfg), "--out", "r.h5"],
+        cwd=folder,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+        env={**os.environ, "PROBEPLAN_DEBUG": ""},
+    )
+    time.sleep(delay_s)
+    proc.send_signal(sig)
+    out, err = proc.communicate(timeout=300)
+    return proc.returncode, out, err
+
+
+@pytest.mark.skipif(sys.platform != "linux", reason="POSIX signals and Linux start-up times")
+def test_a_signal_at_any_moment_keeps_the_contract(tmp_path):
+    # The moments are fractions of one uninterrupted run's time, so the signals fall, on any
+    # machine, in the start-up, the config check, the search stages, the write and the
+    # summary; whichever it hits, the contract holds (contract.md, "stop cleanly").
+    cfg = write_site(tmp_path / "s.toml", design={"random_layouts": 200, "grid_spacing_m": 200.0})
+    start = time.monotonic()
+    subprocess.run(
+        [sys.executable, "-m", "probeplan", "plan", str(cfg), "--out", "full.h5", "--quiet"],
+        cwd=tmp_path,
+        check=True,
+        capture_output=True,
+    )
+    whole_s = time.monotonic() - start
+    sigs = [signal.SIGTERM, signal.SIGINT]
+    for k, frac in enumerate((0.15, 0.35, 0.55, 0.75, 0.9, 0.98)):
+        folder = tmp_path / f"m{k}"
+        folder.mkdir()
+        code, out, err = _signal_run(folder, cfg, sigs[k % 2], frac * whole_s)
+        where = f"signal at {frac:.0%} of {whole_s:.1f} s: exit {code}\n{out[-300:]}\n{err}"
+        assert "Traceback" not in err and "Exception ignored" not in err, where
+        assert not [p for p in folder.iterdir() if p.name != "r.h5"], where  # no temporary
+        result = folder / "r.h5"
+        if code == 0:
+            assert read_result(result).complete, where  # done before the signal came
+            continue
+        assert code == EXIT_INTERRUPTED, where
+        if result.exists():
+            assert "no result file was written" not in err, where
+            r = read_result(result)
+            said = (out + err).lower()
+            assert "interrupted" in said and (not r.complete or "r.h5" in err), where
+        else:
+            assert "no result file was written" in err, where
