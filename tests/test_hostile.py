@@ -324,6 +324,8 @@ BEYOND = [
     ("random layouts", {"design": {"random_layouts": 10**12}}, ["random_layouts", "limit"]),
     ("evaluations", {"design": {"evaluations": 10**12}}, ["design.evaluations", "limit"]),
     ("count", {"probes": {"count": 10**9}}, ["probes.count", "limit"]),
+    ("grid spacing", {"design": {"grid_spacing_m": 1e-6}}, ["grid_spacing_m", "limit"]),
+    ("grid and scenarios", {"design": {"grid_spacing_m": 2.0, "scenarios": 10**4}}, ["limit"]),
 ]
 
 

@@ -22,6 +22,9 @@ from .reader import Checker
 #: under a workstation's memory, so the refusal comes before the machine swaps.
 MEMORY_LIMIT_BYTES = 4 * 2**30
 
+#: Candidate positions a grid may have (as ``site.kinds`` caps one region's lattice).
+LATTICE_LIMIT = 4_000_000
+
 #: Candidate positions the search scores at once (the automatic lattice's target, see
 #: ``site.layouts.candidate_grid``): the per-scenario Jacobian of the grid is its largest array.
 _CANDIDATES = 1500
@@ -48,11 +51,17 @@ def _gib(n_bytes: float) -> str:
     return f"{n_bytes / 2**30:,.3g} GiB"
 
 
+def _lattice_size(config: Config, spacing_m: float) -> float:
+    """About how many candidate positions a lattice of ``spacing_m`` puts in the regions."""
+    return sum(r.measure / spacing_m**r.dimension if r.dimension else 1.0 for r in config.regions)
+
+
 def check_sizes(ck: Checker, config: Config) -> None:
     """Refuse sizes whose largest array would exceed :data:`MEMORY_LIMIT_BYTES`.
 
     The arrays (float64, 8 bytes a number), with S scenarios, P estimated parameters and n
-    probes: the candidate grid's Jacobian S · 1500 · 3 · P and the Fisher matrices S · P²
+    probes: the candidate grid's Jacobian S · c · 3 · P (c = 1500, or the lattice of
+    ``grid_spacing_m`` in the regions) and the Fisher matrices S · P²
     (per scenario); a layout's Jacobian S · n · 3 · P (per probe); the random baselines'
     positions and gains 4 · n per layout; the refinement's Gaussian-process kernel, the square
     of the evaluations.
@@ -62,8 +71,19 @@ def check_sizes(ck: Checker, config: Config) -> None:
     n_params = max(1, n_params + (3 if config.background and config.background.estimate else 0))
     counts = [config.probes.count, *(config.budget.counts if config.budget else ())]
     n_probes = max(counts) + len(config.installed)
-    per_scenario = 8 * (_CANDIDATES * 3 * n_params + n_params**2)
-    needs = [
+    needs = []
+    if d.grid_spacing_m is not None:
+        n_cand = _lattice_size(config, d.grid_spacing_m)
+        grid = 8.0 * d.scenarios * (n_cand * 3 * n_params + n_params**2)
+        if n_cand > LATTICE_LIMIT:
+            ck.fail(
+                f"`design.grid_spacing_m` = {d.grid_spacing_m:g} m puts about {n_cand:,.0f} "
+                f"candidate positions in the regions, more than the {LATTICE_LIMIT:,} limit a "
+                "candidate grid may have; use a coarser spacing."
+            )
+        needs.append(("design.grid_spacing_m", d.grid_spacing_m, grid))
+    per_scenario = 8.0 * (_CANDIDATES * 3 * n_params + n_params**2)
+    needs += [
         ("design.scenarios", d.scenarios, d.scenarios * per_scenario),
         (
             "probes.count" if max(counts) == config.probes.count else "budget.counts",
@@ -76,7 +96,8 @@ def check_sizes(ck: Checker, config: Config) -> None:
     for key, value, n_bytes in needs:
         if n_bytes > MEMORY_LIMIT_BYTES:
             ck.fail(
-                f"`{key}` = {value:,}: its largest array would need about {_gib(n_bytes)}, "
+                f"`{key}` = {value:,}{' m' if key.endswith('_m') else ''}: its largest array "
+                f"would need about {_gib(n_bytes)}, "
                 f"more than the {_gib(MEMORY_LIMIT_BYTES)} limit a run may use "
                 f"({d.scenarios:,} scenarios, {n_params} estimated parameters, {n_probes:,} "
                 "probes); ask for fewer."
