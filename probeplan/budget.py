@@ -11,9 +11,6 @@ the same ``submit`` interface) can take its place without changing this module.
 from __future__ import annotations
 
 import os
-import signal
-import threading
-import time
 from collections.abc import Callable
 from concurrent.futures import FIRST_COMPLETED, Executor, ProcessPoolExecutor, wait
 from dataclasses import dataclass
@@ -22,7 +19,7 @@ from multiprocessing.managers import SyncManager
 import numpy as np
 
 from .config import parse_config
-from .errors import EXIT_INTERRUPTED, InputError
+from .errors import InputError, helper_process_init
 from .problem import build_problem
 from .resulttypes import BudgetTable
 from .search import plan
@@ -112,28 +109,6 @@ def plan_chain(
     return out
 
 
-#: Seconds between a helper process's checks that its parent is still alive.
-_PARENT_POLL_S = 0.5
-
-
-def _helper_init(parent_pid: int) -> None:
-    """Initialiser of the pool's workers and the stop flag's manager.
-
-    Ctrl-C reaches the whole process group; only the parent handles it (it sets the shared
-    stop event, and the workers finish their current step). A parent that dies without
-    shutting the pool down (SIGKILL, a crash) cannot stop them either: a daemon thread in each
-    helper ends it once its parent is gone (it is then re-parented, so ``getppid`` changes).
-    """
-    signal.signal(signal.SIGINT, signal.SIG_IGN)
-
-    def watch() -> None:
-        while os.getppid() == parent_pid:
-            time.sleep(_PARENT_POLL_S)
-        os._exit(EXIT_INTERRUPTED)
-
-    threading.Thread(target=watch, name="parent-watch", daemon=True).start()
-
-
 def pareto_front(cost: np.ndarray, value: np.ndarray, maximise: bool) -> np.ndarray:
     """Options no other option dominates (cheaper or equal and better or equal, one strictly);
     options with a non-finite value (a singular layout) are never on the front.
@@ -218,12 +193,12 @@ def run_budget(
     workers = max(1, min(len(grades), os.cpu_count() or 1))
     if own and workers > 1:
         executor = ProcessPoolExecutor(
-            max_workers=workers, initializer=_helper_init, initargs=(os.getpid(),)
+            max_workers=workers, initializer=helper_process_init, initargs=(os.getpid(),)
         )
     manager = None
     if own and executor is not None:
         manager = SyncManager()
-        manager.start(_helper_init, (os.getpid(),))
+        manager.start(helper_process_init, (os.getpid(),))
     event = manager.Event() if manager is not None else _LocalEvent()
     results: list[OptionPlan] = [o for o in done if o.grade in grades and o.count in counts]
     args = []

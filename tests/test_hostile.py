@@ -19,12 +19,13 @@ import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+from result_builders import make_result
 from sites import meter_grade, write_site
 
 from probeplan.cli import main
 from probeplan.errors import EXIT_INTERRUPTED
 from probeplan.site import Site, make_region
-from probeplan.store import read_result
+from probeplan.store import free_names, read_result, write_result
 
 # A 4 km fence with meters 1.8 km apart: three fit (near both ends and the middle), but a
 # random draw that puts its first meter near the middle leaves no room for the third.
@@ -528,3 +529,14 @@ def test_a_signal_at_any_moment_keeps_the_contract(tmp_path):
             assert "interrupted" in said and (not r.complete or "r.h5" in err), where
         else:
             assert "no result file was written" in err, where
+
+
+def test_a_default_name_taken_before_the_write_begins_moves_on(tmp_path):
+    # The race the real processes above can hit: another run wrote the default name between
+    # this run's choice of it and the start of its write.
+    names = free_names("site", tmp_path)
+    first = next(names)
+    first.write_bytes(b"the other run")
+    r = make_result(np.random.default_rng(5))
+    assert write_result(r, first, names=names) == tmp_path / "site-2.h5"
+    assert first.read_bytes() == b"the other run"
