@@ -10,17 +10,16 @@ the same ``submit`` interface) can take its place without changing this module.
 
 from __future__ import annotations
 
-import multiprocessing
 import os
-import signal
 from collections.abc import Callable
 from concurrent.futures import FIRST_COMPLETED, Executor, ProcessPoolExecutor, wait
 from dataclasses import dataclass
+from multiprocessing.managers import SyncManager
 
 import numpy as np
 
 from .config import parse_config
-from .errors import InputError
+from .errors import InputError, helper_process_init
 from .problem import build_problem
 from .resulttypes import BudgetTable
 from .search import plan
@@ -37,6 +36,7 @@ class OptionPlan:
     positions_m: np.ndarray  # (count, 3)
     gain: np.ndarray  # (count,)
     complete: bool = True  # False when a stop request ended its search early
+    reason: str = ""  # why the mounting rules cannot hold this count ("" when they can)
 
 
 def plan_chain(
@@ -72,13 +72,26 @@ def plan_chain(
     stop = stop_event.is_set if stop_event is not None else None
     out: list[OptionPlan] = []
     warm = warm_start_m
+    site = config.site()
+    worst = -np.inf if config.design.criterion == "d" else np.inf
     for count in counts:
         if stop is not None and stop():
             break
-        problem = build_problem(config, count=count, grade=grade)
-        outcome = plan(
-            problem, warm_start_m=warm, evaluations=evaluations, random_layouts=0, stop=stop
-        )
+        cost = float(count * grade.cost)
+        try:
+            site.check_feasible(count)
+            problem = build_problem(config, count=count, grade=grade)
+            outcome = plan(
+                problem, warm_start_m=warm, evaluations=evaluations, random_layouts=0, stop=stop
+            )
+        except (ValueError, InputError) as exc:
+            # The rules cannot hold this count (check_feasible's ValueError) or the candidate
+            # grid cannot (the greedy step's InputError): a row marked so; the chain goes on.
+            empty = np.zeros((0, 3))
+            out.append(
+                OptionPlan(count, grade_name, cost, worst, empty, np.zeros(0), True, str(exc))
+            )
+            continue
         if not outcome.has_layout:
             break  # stopped before this count had a layout: nothing to tabulate
         warm = outcome.positions_m
@@ -86,7 +99,7 @@ def plan_chain(
             OptionPlan(
                 count=count,
                 grade=grade_name,
-                cost=float(count * grade.cost),
+                cost=cost,
                 value=float(outcome.score.value),
                 positions_m=outcome.positions_m,
                 gain=outcome.gain,
@@ -94,12 +107,6 @@ def plan_chain(
             )
         )
     return out
-
-
-def _ignore_interrupts() -> None:
-    """Worker initialiser: Ctrl-C reaches the whole process group; only the parent handles it
-    (it sets the shared stop event, and the workers finish their current step)."""
-    signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 
 def pareto_front(cost: np.ndarray, value: np.ndarray, maximise: bool) -> np.ndarray:
@@ -185,8 +192,13 @@ def run_budget(
     own = executor is None
     workers = max(1, min(len(grades), os.cpu_count() or 1))
     if own and workers > 1:
-        executor = ProcessPoolExecutor(max_workers=workers, initializer=_ignore_interrupts)
-    manager = multiprocessing.Manager() if own and executor is not None else None
+        executor = ProcessPoolExecutor(
+            max_workers=workers, initializer=helper_process_init, initargs=(os.getpid(),)
+        )
+    manager = None
+    if own and executor is not None:
+        manager = SyncManager()
+        manager.start(helper_process_init, (os.getpid(),))
     event = manager.Event() if manager is not None else _LocalEvent()
     results: list[OptionPlan] = [o for o in done if o.grade in grades and o.count in counts]
     args = []
@@ -258,11 +270,12 @@ def tabulate(options: list[OptionPlan], config) -> BudgetTable:
     maximise = config.design.criterion == "d"
     cost = np.array([o.cost for o in options], dtype=float)
     value = np.array([o.value for o in options], dtype=float)
+    fits = np.array([not o.reason for o in options], dtype=bool)
     target = config.budget.target
     if target is None:
         meets = np.zeros(len(options), dtype=bool)
     else:
-        meets = value >= target if maximise else value <= target
+        meets = fits & (value >= target if maximise else value <= target)
     return BudgetTable(
         count=np.array([o.count for o in options], dtype=int),
         grade=np.array([o.grade for o in options], dtype=object),
@@ -273,6 +286,8 @@ def tabulate(options: list[OptionPlan], config) -> BudgetTable:
         cheapest=cheapest_meeting(cost, value, meets, maximise),
         target=target,
         layouts=tuple(o.positions_m for o in options),
+        feasible=fits,
+        reason=tuple(o.reason for o in options),
     )
 
 
@@ -282,4 +297,5 @@ def chosen_option(table: BudgetTable, maximise: bool) -> int:
     if table.cheapest >= 0:
         return table.cheapest
     v = np.where(np.isnan(table.value), -np.inf, table.value if maximise else -table.value)
-    return int(np.argmax(v))
+    rows = np.flatnonzero(table.fits())  # a row that does not fit has no layout to score
+    return int(rows[np.argmax(v[rows])]) if rows.size else int(np.argmax(v))

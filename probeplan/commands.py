@@ -298,6 +298,7 @@ def cmd_budget(args: argparse.Namespace, written: list[Path]) -> int:
         f"the layout and bounds below are budget row {row}: {table.count[row]} new "
         f'"{table.grade[row]}" meters, cost {table.cost[row]:,.0f} ({why}).'
     )
+    notes = (note, *_budget_fit_notes(table))
     result = make_result(
         "budget",
         config,
@@ -306,10 +307,23 @@ def cmd_budget(args: argparse.Namespace, written: list[Path]) -> int:
         complete=complete,
         extra={"budget_row_scored": float(row)},
         changes=changes,
-        notes=(note,),
+        notes=notes,
         probe_names=reruns.run_names(config, score),
     )
     return finish(run, result, args.quiet, written)
+
+
+def _budget_fit_notes(table) -> tuple[str, ...]:
+    """One note for the counts the mounting rules cannot hold, naming the largest that fits."""
+    fits = table.fits()
+    if fits.all():
+        return ()
+    bad = sorted({int(c) for c in table.count[~fits]})
+    why = next(r for r, f in zip(table.reason, fits, strict=True) if not f)
+    largest = f"the largest count asked for that fits is {int(table.count[fits].max())}"
+    counts = ("count " if len(bad) == 1 else "counts ") + ", ".join(map(str, bad))
+    verb = "does" if len(bad) == 1 else "do"
+    return (f"{counts} {verb} not fit the mounting rules, not planned ({why}); {largest}.",)
 
 
 def cmd_show(args: argparse.Namespace, written: list[Path]) -> int:

@@ -8,6 +8,11 @@ point (:mod:`probeplan._entry`) can use it before numpy and the rest are loaded.
 
 from __future__ import annotations
 
+import os
+import signal
+import threading
+import time
+
 #: Exit status of a finished command.
 EXIT_OK = 0
 #: Exit status of an internal error (a bug in probeplan).
@@ -30,3 +35,31 @@ class InputError(ValueError):
 def raise_interrupt(signum, frame) -> None:
     """A signal handler: SIGTERM means what Ctrl-C means (KeyboardInterrupt, exit status 130)."""
     raise KeyboardInterrupt
+
+
+#: Seconds between a helper process's checks that its parent is still alive.
+PARENT_POLL_S = 0.5
+
+
+def helper_process_init(parent_pid: int) -> None:
+    """Initialiser of a command's helper processes (worker pools, a stop flag's manager).
+
+    Ctrl-C reaches the whole process group; only the parent handles it (it sets the shared
+    stop flag or cancels what has not started, and the helpers finish their current step). A
+    parent that dies without shutting its helpers down (SIGKILL, a crash) cannot stop them: a
+    daemon thread in each helper ends it once its parent is gone (it is then re-parented, so
+    ``getppid`` changes).
+
+    Parameters
+    ----------
+    parent_pid : int
+        ``os.getpid()`` of the parent, taken before the helpers start.
+    """
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+    def watch() -> None:
+        while os.getppid() == parent_pid:
+            time.sleep(PARENT_POLL_S)
+        os._exit(EXIT_INTERRUPTED)
+
+    threading.Thread(target=watch, name="parent-watch", daemon=True).start()

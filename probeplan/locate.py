@@ -48,7 +48,7 @@ Shapes: ``n_times`` steps, ``n_probes`` meters (installed first), ``n_axes`` rea
 
 from __future__ import annotations
 
-import signal
+import os
 from collections.abc import Callable
 from concurrent.futures import Executor, ProcessPoolExecutor, as_completed
 from dataclasses import dataclass, replace
@@ -57,7 +57,7 @@ from typing import NamedTuple
 import numpy as np
 from scipy import stats
 
-from .errors import InputError
+from .errors import InputError, helper_process_init
 from .fisher import covariance, fisher_from_rows
 from .fit import ReadingFit, fit_bounds, inside
 from .probes import Meters, readings, whitened_rows
@@ -467,7 +467,9 @@ def _run_chunks(tasks, workers: int, executor, progress, sizes) -> list:
     own = executor is None
     if own:
         executor = ProcessPoolExecutor(
-            max_workers=min(workers, len(tasks)), initializer=_workers_ignore_sigint
+            max_workers=min(workers, len(tasks)),
+            initializer=helper_process_init,
+            initargs=(os.getpid(),),
         )
     try:
         futures = [executor.submit(fit_chunk, *task) for task in tasks]
@@ -480,12 +482,6 @@ def _run_chunks(tasks, workers: int, executor, progress, sizes) -> list:
     finally:
         if own:
             executor.shutdown(wait=True, cancel_futures=True)
-
-
-def _workers_ignore_sigint() -> None:
-    """Worker initialiser: Ctrl-C reaches the whole process group; only the parent handles it
-    (it stops waiting and cancels the chains not started)."""
-    signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 
 def _planned_bounds(problem, meters: Meters, known: np.ndarray) -> np.ndarray:

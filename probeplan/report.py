@@ -475,6 +475,8 @@ def _budget_table(result: Result) -> Table:
             notes.append("CHEAPEST")
         if b.pareto[k]:
             notes.append("Pareto")
+        if not b.fits()[k]:
+            notes.append("does not fit")
         _row(
             table,
             str(k),

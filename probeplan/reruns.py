@@ -248,9 +248,12 @@ def stored_options(stored) -> tuple:
     b = stored.budget
     if b is None:
         return ()
+    rows = zip(b.count, b.grade, b.cost, b.value, b.layouts, b.fits(), strict=True)
+    # A row that did not fit is checked again (the config may have changed), not resumed.
     return tuple(
         OptionPlan(int(c), str(g), float(cost), float(v), np.asarray(lay), np.ones(len(lay)))
-        for c, g, cost, v, lay in zip(b.count, b.grade, b.cost, b.value, b.layouts, strict=True)
+        for c, g, cost, v, lay, fits in rows
+        if fits
     )
 
 

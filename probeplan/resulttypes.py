@@ -355,6 +355,13 @@ class BudgetTable:
         Row of the cheapest option meeting the target, −1 if none.
     target : float or None
     layouts : tuple of (n_i, 3) float arrays
+        Empty ``(0, 3)`` for a row that does not fit.
+    feasible : (n_options,) bool or None
+        False for a count the mounting rules cannot hold (its value is the worst, ∓inf, and it
+        never meets the target); None when every row fits (results written before this field).
+    reason : tuple of str
+        Why each infeasible row does not fit ("" for the others, or empty when ``feasible`` is
+        None).
     """
 
     count: np.ndarray
@@ -366,6 +373,14 @@ class BudgetTable:
     cheapest: int
     target: float | None
     layouts: tuple[np.ndarray, ...]
+    feasible: np.ndarray | None = None
+    reason: tuple[str, ...] = ()
+
+    def fits(self) -> np.ndarray:
+        """``(n_options,) bool``: the rows whose count the mounting rules can hold."""
+        if self.feasible is None:
+            return np.ones(len(self.count), dtype=bool)
+        return np.asarray(self.feasible, dtype=bool)
 
 
 @dataclass(frozen=True, eq=False)

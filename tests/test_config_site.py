@@ -125,9 +125,11 @@ def test_count_times_spacing_does_not_fit(tmp_path):
     )
 
 
-def test_budget_count_that_does_not_fit(tmp_path):
+def test_budget_none_of_whose_counts_fit(tmp_path):
+    # A larger count that does not fit is a budget row marked so (tests/test_hostile.py); the
+    # config is refused only when even the smallest does not.
     text = edited("count = 4", "count = 2\nmin_spacing_m = 400.0")
-    text += '\n[[grade]]\nname = "std"\ncost = 1.0\n[budget]\ncounts = [2, 60]\n'
+    text += '\n[[grade]]\nname = "std"\ncost = 1.0\n[budget]\ncounts = [70, 60]\n'
     msg = message(tmp_path, text)
     assert_pieces(msg, "with `budget.counts` = 60", "cannot place 60 probes")
 

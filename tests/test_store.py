@@ -79,7 +79,14 @@ def test_round_trip_simulation_section(tmp_path):
 
 
 @settings(max_examples=25, deadline=None)
-@given(arrays(np.float64, st.tuples(st.integers(1, 4), st.just(3))))
+@given(
+    arrays(
+        np.float64,
+        st.tuples(st.integers(1, 4), st.just(3)),
+        # Positions are finite in every result (the reader refuses others as damaged).
+        elements=st.floats(allow_nan=False, allow_infinity=False),
+    )
+)
 def test_positions_round_trip_bit_for_bit(tmp_path_factory, positions):
     rng = np.random.default_rng(3)
     r = make_result(rng, search=False, budget=False)
@@ -91,6 +98,9 @@ def test_positions_round_trip_bit_for_bit(tmp_path_factory, positions):
             "installed": np.zeros(n, dtype=bool),
             "gain": np.ones(n),
             "saturated": np.zeros(n),
+            "failure_values": None,
+            "axes": None,
+            "grade": None,
         }
     )
     r = Result(**{**r.__dict__, "score": score})

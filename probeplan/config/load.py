@@ -19,6 +19,7 @@ from .design import check_estimates, parse_design
 from .frame import parse_frame
 from .grades import check_installed_grades, parse_budget, parse_grades
 from .ground import parse_ground
+from .limits import check_sizes, check_text
 from .maps import check_installed_names, parse_map_regions
 from .model import Config
 from .probes import parse_probes
@@ -144,6 +145,7 @@ def config_from_mapping(
 def _check(data: dict, text: str, path: str, base: Path) -> Config:
     """Every check, section by section; ``base`` is the folder of relative paths."""
     ck = Checker(path)
+    check_text(ck, data)
     root = Table(ck, data, "", "the top level")
     root.check_keys(ROOT_KEYS)
     title = root.string("title", default="")
@@ -189,6 +191,7 @@ def _check(data: dict, text: str, path: str, base: Path) -> Config:
         caution=caution,
         frame=frame,
     )
+    check_sizes(ck, config)
     check_regions_clear(ck, config)
     check_feasible(ck, config)
     return config

@@ -28,6 +28,17 @@ XYZ = "3 numbers (x, y, z) in metres"
 REQUIRED: Any = object()
 
 
+#: The largest length (m) a config may give: 100,000 km, far beyond any site or storm, and
+#: small enough that areas and squared distances of such lengths stay finite floats.
+LENGTH_LIMIT_M = 1e8
+
+
+def _is_length(key: str) -> bool:
+    """A key in metres: its name (indices dropped) ends in ``_m`` but not ``_per_m``."""
+    name = re.sub(r"\[\d+\]", "", key).rsplit(".", 1)[-1]
+    return name.endswith("_m") and not name.endswith("_per_m")
+
+
 class Checker:
     """Checks of raw TOML values; every failure names the file."""
 
@@ -58,6 +69,11 @@ class Checker:
         if math.isnan(x) or (math.isinf(x) and not (allow_inf and x > 0)):
             extra = " (inf means no limit)" if allow_inf else ""
             self.fail(f"`{key}` must be a finite number{extra}; got {show(value)}.")
+        if abs(x) > LENGTH_LIMIT_M and _is_length(key) and not math.isinf(x):
+            self.fail(
+                f"`{key}` = {x:g} m is beyond the {LENGTH_LIMIT_M:g} m any length may have "
+                "(lengths that far apart overflow areas and squared distances); check the units."
+            )
         if gt is not None and not x > gt:
             self.fail(f"`{key}` must be > {gt:g}; got {x!r}.")
         if ge is not None and not x >= ge:

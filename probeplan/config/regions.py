@@ -144,7 +144,9 @@ def check_feasible(ck: Checker, config: Config) -> None:
     """Let the site check that the mounting rules can hold for every count asked for."""
     checks = [("probes.count", config.probes.count)] if config.probes.count > 0 else []
     if config.budget is not None:
-        checks.append(("budget.counts", max(config.budget.counts)))
+        # A budget needs one count that fits; larger ones that do not are rows marked
+        # infeasible (the sweep plans the others), not a refused config.
+        checks.append(("budget.counts", min(config.budget.counts)))
     try:
         site = config.site()
     except ValueError as exc:

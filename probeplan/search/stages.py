@@ -352,15 +352,23 @@ def _baseline_stage(
         yield Step("baselines", 1, 2, baselines=regular_baseline, evaluated=1)
     if n_random <= 0 or halt():
         return
-    rand = site.random_layouts(n_random, count, rng)
+    # On a crowded site a few random layouts may not fit every probe: the plan is compared
+    # with those that do, and the baseline's name says how many that was.
+    rand = site.random_layouts(n_random, count, rng, keep_placed=True)
+    n_placed = len(rand)
+    if n_placed == 0:
+        return  # no random layout fits the rules: nothing to compare
     g = problem.gain_at(rand.reshape(-1, 3)).reshape(rand.shape[:2])
-    rvals = np.empty(n_random)
-    for start in range(0, n_random, RANDOM_BATCH):
+    rvals = np.empty(n_placed)
+    for start in range(0, n_placed, RANDOM_BATCH):
         if halt():
             return  # a best of fewer layouts than announced is no baseline
-        sl = slice(start, min(start + RANDOM_BATCH, n_random))
+        sl = slice(start, min(start + RANDOM_BATCH, n_placed))
         rvals[sl] = problem.objective(rand[sl], g[sl])
         yield Step("baselines", 1, 2, evaluated=sl.stop - sl.start)
     k = int(np.argmax(rvals) if problem.criterion.maximise else np.argmin(rvals))
-    best = Baseline(f"best of {n_random} random", float(rvals[k]), rand[k])
+    name = f"best of {n_placed} random"
+    if n_placed < n_random:
+        name += f" ({n_random - n_placed} of {n_random} could not place every probe)"
+    best = Baseline(name, float(rvals[k]), rand[k])
     yield Step("baselines", 2, 2, baselines=(best,))

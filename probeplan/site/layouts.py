@@ -186,7 +186,12 @@ def _draw(
 
 
 def random_layouts(
-    site: Site, n_layouts: int, count: int, rng: np.random.Generator, max_tries: int = 50
+    site: Site,
+    n_layouts: int,
+    count: int,
+    rng: np.random.Generator,
+    max_tries: int = 50,
+    keep_placed: bool = False,
 ) -> np.ndarray:
     """Random feasible layouts.
 
@@ -207,17 +212,21 @@ def random_layouts(
         The source of randomness.
     max_tries : int
         Rounds allowed per slot before giving up.
+    keep_placed : bool
+        On a crowded site some layouts may leave a slot empty after ``max_tries`` rounds: when
+        true they are dropped and the others returned (possibly none); when false that raises.
 
     Returns
     -------
-    (n_layouts, count, 3) float
-        Every layout passes ``site.allowed`` and ``site.spacing_ok``.
+    (n_placed, count, 3) float
+        Every layout passes ``site.allowed`` and ``site.spacing_ok``; ``n_placed`` is
+        ``n_layouts`` unless ``keep_placed`` dropped some.
 
     Raises
     ------
     ValueError
-        When the rules cannot hold (``site.check_feasible``) or a slot stays empty after
-        ``max_tries`` rounds.
+        When the rules cannot hold (``site.check_feasible``) or, unless ``keep_placed``, a slot
+        stays empty after ``max_tries`` rounds.
     """
     n_layouts = positive_int(n_layouts, "n_layouts")
     count = positive_int(count, "count")
@@ -225,8 +234,11 @@ def random_layouts(
     site.check_feasible(count)
     weights = region_weights(site.regions)
     out = np.zeros((n_layouts, count, 3))
+    placed_ok = np.ones(n_layouts, dtype=bool)  # layouts whose every slot so far is filled
     for slot in range(count):
-        pending = np.arange(n_layouts)
+        pending = np.flatnonzero(placed_ok)
+        if len(pending) == 0:
+            break
         for attempt in range(max_tries):
             m, k = len(pending), min(_DRAWS_FIRST_ROUND << attempt, _DRAWS_MAX)
             cand = _draw(site.regions, m * k, rng, weights)
@@ -242,7 +254,9 @@ def random_layouts(
             pending = pending[~hit]
             if len(pending) == 0:
                 break
-        if len(pending):
+        if len(pending) and keep_placed:
+            placed_ok[pending] = False
+        elif len(pending):
             raise ValueError(
                 f"cannot place probe {slot + 1} of {count} in {len(pending)} of "
                 f"{n_layouts} random layouts after {max_tries} rounds: the mounting rules "
@@ -250,7 +264,7 @@ def random_layouts(
                 f"{len(site.keepouts)} keep-outs, {len(site.installed_m)} installed probes). "
                 "Lower `count` or `min_spacing_m`, or enlarge the mounting regions."
             )
-    return out
+    return out[placed_ok]
 
 
 # --------------------------------------------------------------------------------------------

@@ -269,10 +269,15 @@ class Site:
         return layouts.candidate_grid(self, spacing_m, target)
 
     def random_layouts(
-        self, n_layouts: int, count: int, rng: np.random.Generator, max_tries: int = 50
+        self,
+        n_layouts: int,
+        count: int,
+        rng: np.random.Generator,
+        max_tries: int = 50,
+        keep_placed: bool = False,
     ) -> np.ndarray:
-        """``(n_layouts, count, 3)``: random feasible layouts (:func:`.layouts.random_layouts`)."""
-        return layouts.random_layouts(self, n_layouts, count, rng, max_tries)
+        """``(n_placed, count, 3)``: random feasible layouts (:func:`.layouts.random_layouts`)."""
+        return layouts.random_layouts(self, n_layouts, count, rng, max_tries, keep_placed)
 
     def regular_layout(self, count: int) -> np.ndarray:
         """``(count, 3)``: the layout an engineer would draw by hand

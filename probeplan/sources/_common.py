@@ -100,7 +100,8 @@ def _check_not_on_charge(mask: np.ndarray, pts_block: np.ndarray, blk: slice, wh
 
 
 _INFINITE_FIELD = (
-    "the field is infinite; move the point or use a finite-size source (sphere, gaussian)."
+    "the field is infinite (within 1 nm, as at the charge itself); move the point or use a "
+    "finite-size source (sphere, gaussian)."
 )
 
 

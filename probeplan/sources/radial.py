@@ -24,6 +24,13 @@ from .kinds import K_COULOMB
 
 _RADIAL_POINT, _RADIAL_BALL, _RADIAL_GAUSSIAN = 0, 1, 2
 
+#: Squared distance (m²) below which a point lies on a point charge. A point charge is a model
+#: of a charge cloud, meaningless at atomic scales, and closer than about 1e-48 m its field's
+#: gradient squared overflows a float64 (the Fisher information then held NaN): within 1 nm
+#: the point is on the charge, as at r = 0. Read as a global by the compiled loop (a fixed
+#: number, never changed).
+_ON_POINT_M2 = 1e-18
+
 # Series of (φ − 3h)/(−3 h(0) e^{−z}) in z = r²/(2σ²) for the Gaussian near its centre, where the
 # closed form is 0/0: from the series of P(3/2, z) (Abramowitz & Stegun 6.5.29).
 _GAUSS_SERIES = (
@@ -94,7 +101,7 @@ def _radial_loop(kind, k_coulomb, params, pts, E, jac, want_jac):
                 dy = py - params[s, n, 2]
                 dz = pz - params[s, n, 3]
                 r2 = dx * dx + dy * dy + dz * dz
-                if r2 == 0.0 and kind == _RADIAL_POINT:
+                if r2 < _ON_POINT_M2 and kind == _RADIAL_POINT:
                     if singular < 0:
                         singular = s * M + m
                     continue

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import csv
 import difflib
+import itertools
 import math
 import os
 from dataclasses import dataclass
@@ -67,6 +68,11 @@ class LayoutFile:
     path: str = "<layout>"
 
 
+#: Lines a layout CSV may hold (header and comments included): checked while reading, so a
+#: file of a million rows is refused at once rather than read whole.
+MAX_LINES = 10_000
+
+
 def read_layout_csv(path: str | os.PathLike) -> LayoutFile:
     """Read a layout CSV: a header row with at least ``x_m,y_m,z_m``, then one probe a row.
 
@@ -91,7 +97,13 @@ def read_layout_csv(path: str | os.PathLike) -> LayoutFile:
     with csv_errors(name, "layout"), open(name, encoding="utf-8-sig", newline="") as fh:
         reader = csv.reader(fh)
         # line_num after a read is the file line the row ended on: what a user sees.
-        rows = [(reader.line_num, row) for row in reader]
+        rows = [(reader.line_num, row) for row in itertools.islice(reader, MAX_LINES + 1)]
+    if len(rows) > MAX_LINES:
+        raise InputError(
+            f"{name}: more than {MAX_LINES:,} lines; a layout may list at most that many "
+            "(each probe's Jacobian needs about 100 kB per 1,000 scenarios, so more could "
+            "not be scored within the memory a run may use)."
+        )
     return _parse_layout(name, rows)
 
 

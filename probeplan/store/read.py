@@ -25,18 +25,38 @@ from ..resulttypes import (
     StructureSurfaces,
 )
 
+#: Dataset dtypes a reader accepts, by the dtype asked for: numpy dtype kinds.
+_KINDS = {float: "fiu", np.int64: "iu", bool: "biu"}
+_KIND_WORDS = {float: "numbers", np.int64: "integers", bool: "true/false flags"}
+_ATTR_WORDS = {str: "text", bool: "true or false", int: "an integer", float: "a finite number"}
+
 
 class _Reader:
-    """Reads paths of one open file; a missing one is an InputError naming the file and path."""
+    """The one checked reader of a result file's paths.
+
+    Every dataset is read through :meth:`array` or :meth:`strings`, which check it against what
+    the result means before anything uses it: present, a dataset, of a numeric (or string)
+    type, of the expected rank and of the expected length along each named dimension (the
+    first dataset to name a dimension, e.g. ``"n_probes"``, fixes it for the others), finite
+    where the meaning requires it and never NaN, flags 0 or 1. A failure is one
+    :class:`InputError` naming the file, the dataset, what was found and what is allowed.
+    """
 
     def __init__(self, f: h5py.File, name: str) -> None:
         self.f = f
         self.name = name
+        self.dims: dict[str, tuple[int, str]] = {}  # dimension name → (length, set by)
 
     def missing(self, what: str) -> InputError:
         return InputError(
             f"{self.name}: not a complete probeplan result file: {what} is missing "
             "(was it written by another program, or by an older probeplan?)."
+        )
+
+    def bad(self, path: str, found: str, allowed: str) -> InputError:
+        return InputError(
+            f"{self.name}: the dataset /{path.lstrip('/')} {found}; {allowed}. The file is "
+            "damaged or was edited by hand."
         )
 
     def has(self, path: str) -> bool:
@@ -47,34 +67,99 @@ class _Reader:
             raise self.missing(f"/{path.lstrip('/')}")
         return self.f[path]
 
-    def array(self, path: str, dtype=float, ndim: int | None = None) -> np.ndarray:
+    def dataset(self, path: str) -> h5py.Dataset:
         ds = self.node(path)
         if not isinstance(ds, h5py.Dataset):
             raise self.missing(f"the dataset /{path.lstrip('/')}")
-        out = np.asarray(ds[()], dtype=dtype)
-        if ndim is not None and out.ndim != ndim:
-            raise InputError(
-                f"{self.name}: /{path.lstrip('/')} has {out.ndim} dimensions; expected {ndim}."
-            )
-        return out
+        return ds
 
-    def scalar(self, path: str) -> float:
-        return float(self.array(path, ndim=0))
+    def _check_shape(self, path: str, shape: tuple[int, ...], want: tuple) -> None:
+        if len(shape) != len(want):
+            raise self.bad(path, f"has {len(shape)} dimensions", f"expected {len(want)}")
+        for axis, (n, w) in enumerate(zip(shape, want, strict=True)):
+            by = ""
+            if isinstance(w, str):
+                w, by = self.dims.setdefault(w, (n, path))
+            if w is not None and n != w:
+                like = f" like /{by.lstrip('/')}" if by else ""
+                raise self.bad(path, f"has length {n} along axis {axis}", f"expected {w}{like}")
 
-    def strings(self, path: str) -> tuple[str, ...]:
-        ds = self.node(path)
-        return tuple(str(s) for s in ds.asstr()[()])
+    def array(
+        self,
+        path: str,
+        dtype=float,
+        shape: tuple | None = None,
+        finite: bool = True,
+        nan: bool = False,
+    ) -> np.ndarray:
+        """The dataset at ``path`` as ``dtype``, checked (see the class).
+
+        ``shape`` gives each axis as a length, a dimension name, or None (any); ``finite``
+        false allows ±inf where the meaning has an infinite value; ``nan`` allows NaN where a
+        section's own docstring gives it a meaning (``Changes.old_rescored``).
+        """
+        ds = self.dataset(path)
+        kind = ds.dtype.kind
+        if kind not in _KINDS[dtype]:
+            raise self.bad(path, f"holds {ds.dtype} values", f"expected {_KIND_WORDS[dtype]}")
+        if shape is not None:
+            self._check_shape(path, ds.shape, shape)
+        raw = np.asarray(ds[()])
+        if not nan and raw.dtype.kind == "f" and np.isnan(raw).any():
+            raise self.bad(path, "holds NaN", "expected numbers")
+        if dtype is not float and raw.dtype.kind == "f" and not np.all(raw == np.round(raw)):
+            raise self.bad(path, "holds fractions", f"expected {_KIND_WORDS[dtype]}")
+        if finite and raw.dtype.kind == "f" and not np.isfinite(raw[~np.isnan(raw)]).all():
+            raise self.bad(path, "holds an infinite value", "expected finite numbers")
+        if dtype is bool and not np.isin(raw, (0, 1)).all():
+            raise self.bad(path, "holds values other than 0 and 1", "expected true/false flags")
+        if dtype is np.int64 and raw.size and np.abs(raw.astype(float)).max() > 2.0**53:
+            raise self.bad(path, "holds an integer too large", "expected a count")
+        return raw.astype(dtype)
+
+    def scalar(self, path: str, finite: bool = True, nan: bool = False) -> float:
+        return float(self.array(path, shape=(), finite=finite, nan=nan))
+
+    def strings(self, path: str, length: str | int | None = None) -> tuple[str, ...]:
+        ds = self.dataset(path)
+        if h5py.check_string_dtype(ds.dtype) is None:
+            raise self.bad(path, f"holds {ds.dtype} values", "expected text")
+        self._check_shape(path, ds.shape, (length,))
+        try:
+            return tuple(str(s) for s in ds.asstr()[()])
+        except UnicodeDecodeError:
+            raise self.bad(path, "holds text that is not UTF-8", "expected UTF-8 text") from None
 
     def attr(self, path: str, key: str, convert: Callable = str):
         obj = self.node(path) if path not in ("", "/") else self.f
+        where = "the root" if path in ("", "/") else f"/{path.lstrip('/')}"
         if key not in obj.attrs:
-            where = "the root" if path in ("", "/") else f"/{path.lstrip('/')}"
             raise self.missing(f"the attribute `{key}` of {where}")
-        return convert(obj.attrs[key])
+        value = obj.attrs[key]
+        # Each type read strictly: `complete = "no"` is not true, `seed = 2.5` is not 2.
+        ok = {
+            str: isinstance(value, str | bytes),
+            bool: isinstance(value, bool | np.bool_),
+            int: isinstance(value, int | np.integer) and not isinstance(value, bool | np.bool_),
+            float: isinstance(value, float | int | np.floating | np.integer) and np.isfinite(value),
+            _str_list: all(isinstance(v, str | bytes) for v in np.atleast_1d(value).tolist()),
+        }.get(convert, True)
+        if not ok:
+            raise InputError(
+                f"{self.name}: the attribute `{key}` of {where} is {value!r}; expected "
+                f"{_ATTR_WORDS.get(convert, 'a value')}. The file is damaged or was edited "
+                "by hand."
+            )
+        if convert is str and isinstance(value, bytes):
+            value = value.decode("utf-8", "replace")
+        return convert(value)
 
 
 def _str_list(value) -> tuple[str, ...]:
     return tuple(v.decode() if isinstance(v, bytes) else str(v) for v in np.atleast_1d(value))
+
+
+_ATTR_WORDS[_str_list] = "a list of names"
 
 
 def read_result(path: str | os.PathLike) -> Result:
@@ -117,84 +202,73 @@ def read_result(path: str | os.PathLike) -> Result:
         return _read(_Reader(f, name))
 
 
-def _layout_axes(r: _Reader, n_probes: int) -> np.ndarray | None:
+def _layout_axes(r: _Reader) -> np.ndarray | None:
     if not r.has("layout/axes"):
         return None  # written before each meter's axes were stored
-    axes = r.array("layout/axes", ndim=3)
-    if axes.shape[0] != n_probes or axes.shape[2] != 3 or not np.all(np.isfinite(axes)):
-        raise InputError(
-            f"{r.name}: /layout/axes must be finite with shape ({n_probes}, n_axes, 3), one "
-            f"table per probe; found shape {axes.shape}. The file is inconsistent."
-        )
-    return axes
+    return r.array("layout/axes", shape=("n_probes", None, 3))
 
 
-def _layout_grade(r: _Reader, n_probes: int) -> tuple[str, ...] | None:
+def _layout_grade(r: _Reader) -> tuple[str, ...] | None:
     if not r.has("layout/grade"):
         return None
-    grade = r.strings("layout/grade")
-    if len(grade) != n_probes:
-        raise InputError(
-            f"{r.name}: /layout/grade holds {len(grade)} names for {n_probes} probes; the file "
-            "is inconsistent."
-        )
-    return grade
+    return r.strings("layout/grade", "n_probes")
 
 
 def _read(r: _Reader) -> Result:
     names = r.attr("scenarios/params", "names", _str_list)
-    n_params = len(names)
-    positions = r.array("layout/positions_m", ndim=2)
-    theta = r.array("scenarios/params", ndim=2)
-    fisher = r.array("score/fisher", ndim=3)
-    weights = r.array("score/unresolved_weights", ndim=2)
-    texts = r.strings("score/unresolved_text")
-    eig = r.array("score/unresolved_eigenvalue", ndim=1)
-    sing = r.array("score/unresolved_singular", dtype=bool, ndim=1)
+    r.dims["n_params"] = (len(names), "scenarios/params (attr names)")
+    positions = r.array("layout/positions_m", shape=("n_probes", 3))
+    theta = r.array("scenarios/params", shape=("n_scenarios", "n_params"))
+    fisher = r.array("score/fisher", shape=("n_scenarios", "n_params", "n_params"))
+    weights = r.array("score/unresolved_weights", shape=("n_unresolved", "n_params"))
+    texts = r.strings("score/unresolved_text", "n_unresolved")
+    eig = r.array("score/unresolved_eigenvalue", shape=("n_unresolved",))
+    sing = r.array("score/unresolved_singular", dtype=bool, shape=("n_unresolved",))
     directions = [
         Direction(weights[k].copy(), float(eig[k]), bool(sing[k]), texts[k])
         for k in range(len(texts))
     ]
-    if theta.shape[1] != n_params or fisher.shape[1:] != (n_params, n_params):
-        raise InputError(
-            f"{r.name}: /scenarios/params names {n_params} parameters but the stored arrays "
-            f"have {theta.shape[1]}; the file is inconsistent."
-        )
     score = Score(
         positions_m=positions,
-        installed=r.array("layout/installed", dtype=bool, ndim=1),
-        gain=r.array("score/gain", ndim=1),
+        installed=r.array("layout/installed", dtype=bool, shape=("n_probes",)),
+        gain=r.array("score/gain", shape=("n_probes",)),
         names=names,
         theta=theta,
         fisher=fisher,
-        crb_std=r.array("score/crb_std", ndim=2),
-        per_scenario=r.array("score/per_scenario", ndim=1),
-        value=r.scalar("score/value"),
+        crb_std=r.array("score/crb_std", shape=("n_scenarios", "n_params"), finite=False),
+        per_scenario=r.array("score/per_scenario", shape=("n_scenarios",), finite=False),
+        value=r.scalar("score/value", finite=False),
         criterion=str(r.attr("score/value", "criterion")),
         aggregate=str(r.attr("score/value", "aggregate")),
-        singular=r.array("score/singular", dtype=bool, ndim=1),
-        saturated=r.array("score/saturated", ndim=1),
+        singular=r.array("score/singular", dtype=bool, shape=("n_scenarios",)),
+        saturated=r.array("score/saturated", shape=("n_probes",)),
         unresolved=directions,
         unresolved_scenario=int(r.attr("score/unresolved_text", "scenario", int)),
         failure_values=(
-            r.array("score/failure_values", ndim=1) if r.has("score/failure_values") else None
+            r.array("score/failure_values", shape=("n_probes",), finite=False)
+            if r.has("score/failure_values")
+            else None
         ),
-        axes=_layout_axes(r, positions.shape[0]),
-        grade=_layout_grade(r, positions.shape[0]),
-        enhancement=r.array("score/enhancement", ndim=1) if r.has("score/enhancement") else None,
+        axes=_layout_axes(r),
+        grade=_layout_grade(r),
+        enhancement=(
+            r.array("score/enhancement", shape=("n_probes",))
+            if r.has("score/enhancement")
+            else None
+        ),
     )
     search = _read_search(r) if r.has("search") else None
     budget = _read_budget(r) if r.has("budget") else None
     extra = {}
     if r.has("extra"):
-        extra = {str(k): float(v) for k, v in r.f["extra"].attrs.items()}
+        extra = {str(k): r.attr("extra", str(k), float) for k in r.f["extra"].attrs}
     row = int(extra.get("budget_row_scored", -1))
     if score.grade is None and budget is not None and 0 <= row < len(budget.grade):
         # Written before each meter's grade was stored: the new meters of a budget result are
         # of the scored row's grade, installed ones of [probes]' (the only ones there were).
         grade = tuple("" if inst else str(budget.grade[row]) for inst in score.installed)
         score = dataclasses.replace(score, grade=grade)
-    ground = r.f.attrs.get("ground_z_m")
+    ground = r.attr("", "ground_z_m", float) if "ground_z_m" in r.f.attrs else None
     sections = {}
     if r.has("frame"):
         keys = ("origin_lon_deg", "origin_lat_deg", "origin_height_m")
@@ -215,7 +289,7 @@ def _read(r: _Reader) -> Result:
             delivery = _read_dataclass(r, "locate/delivery", Delivery)
             location = dataclasses.replace(location, delivery=delivery)
         sections["location"] = location
-    names = r.strings("layout/names") if r.has("layout/names") else None
+    names = r.strings("layout/names", "n_probes") if r.has("layout/names") else None
     notes = r.strings("notes") if r.has("notes") else ()
     sources = r.strings("scenarios/source_names") if r.has("scenarios/source_names") else None
     return Result(
@@ -250,14 +324,15 @@ def _read_dataclass(r: _Reader, path: str, cls):
         if name in none_fields:
             kwargs[name] = None
         elif name in g:
-            ds = g[name]
+            ds = r.dataset(f"{path}/{name}")
             kind = ds.attrs.get("python_type", "array")
             if kind == "tuple of str":
                 kwargs[name] = r.strings(f"{path}/{name}")
             elif kind == "float":
-                kwargs[name] = float(ds[()])
+                kwargs[name] = r.scalar(f"{path}/{name}", finite=False, nan=True)
             else:
-                kwargs[name] = np.asarray(ds[()])
+                want = {"b": bool, "i": np.int64, "u": np.int64}.get(ds.dtype.kind, float)
+                kwargs[name] = r.array(f"{path}/{name}", want, finite=False, nan=True)
         elif name in g.attrs:
             v = g.attrs[name]
             if isinstance(v, np.bool_):
@@ -271,32 +346,34 @@ def _read_dataclass(r: _Reader, path: str, cls):
 
 
 def _read_search(r: _Reader) -> SearchInfo:
-    names = r.strings("search/baseline_names")
-    values = r.array("search/baseline_values", ndim=1)
+    names = r.strings("search/baseline_names", "n_baselines")
+    values = r.array("search/baseline_values", shape=("n_baselines",), finite=False)
     baselines = tuple(
-        Baseline(names[k], float(values[k]), r.array(f"search/baselines/{k}/positions_m", ndim=2))
+        Baseline(
+            names[k],
+            float(values[k]),
+            r.array(f"search/baselines/{k}/positions_m", shape=(None, 3)),
+        )
         for k in range(len(names))
     )
-    stage_names = r.strings("search/stage_names")
-
-    stage_values = r.array("search/stage_values", ndim=1)
+    stage_names = r.strings("search/stage_names", "n_stages")
+    stage_values = r.array("search/stage_values", shape=("n_stages",), finite=False)
     spent = ()
     if r.has("search/evaluations_spent"):
-        stages = r.strings("search/evaluation_stages")
-        counts = r.array("search/evaluations_spent", dtype=np.int64, ndim=1)
-        if len(stages) != counts.size:
-            raise InputError(
-                f"{r.name}: /search/evaluation_stages names {len(stages)} stages but "
-                f"/search/evaluations_spent holds {counts.size} counts; the file is damaged."
-            )
+        stages = r.strings("search/evaluation_stages", "n_evaluation_stages")
+        counts = r.array(
+            "search/evaluations_spent", dtype=np.int64, shape=("n_evaluation_stages",)
+        )
         spent = tuple((stages[k], int(counts[k])) for k in range(counts.size))
     asked = r.f["search"].attrs.get("evaluations_asked")
     return SearchInfo(
-        history=r.array("search/history", ndim=1),
-        bound=r.scalar("search/bound") if r.has("search/bound") else None,
-        bound_gap=r.scalar("search/bound_gap") if r.has("search/bound_gap") else None,
+        history=r.array("search/history", shape=(None,), finite=False),
+        bound=r.scalar("search/bound", finite=False) if r.has("search/bound") else None,
+        bound_gap=(
+            r.scalar("search/bound_gap", finite=False) if r.has("search/bound_gap") else None
+        ),
         grid_spacing_m=r.scalar("search/grid_spacing_m"),
-        n_candidates=int(r.array("search/n_candidates", dtype=np.int64, ndim=0)),
+        n_candidates=int(r.array("search/n_candidates", dtype=np.int64, shape=())),
         baselines=baselines,
         stages=tuple((stage_names[k], float(stage_values[k])) for k in range(len(stage_names))),
         seconds=r.scalar("search/seconds"),
@@ -307,18 +384,25 @@ def _read_search(r: _Reader) -> SearchInfo:
 
 
 def _read_budget(r: _Reader) -> BudgetTable:
-    count = r.array("budget/count", dtype=np.int64, ndim=1)
-    target = r.f["budget"].attrs.get("target")
+    rows = ("n_rows",)
+    count = r.array("budget/count", dtype=np.int64, shape=rows)
+    target = r.attr("budget", "target", float) if "target" in r.f["budget"].attrs else None
     return BudgetTable(
         count=count,
-        grade=np.array(r.strings("budget/grade"), dtype=object),
-        cost=r.array("budget/cost", ndim=1),
-        value=r.array("budget/value", ndim=1),
-        meets_target=r.array("budget/meets_target", dtype=bool, ndim=1),
-        pareto=r.array("budget/pareto", dtype=bool, ndim=1),
+        grade=np.array(r.strings("budget/grade", "n_rows"), dtype=object),
+        cost=r.array("budget/cost", shape=rows),
+        value=r.array("budget/value", shape=rows, finite=False),
+        meets_target=r.array("budget/meets_target", dtype=bool, shape=rows),
+        pareto=r.array("budget/pareto", dtype=bool, shape=rows),
         cheapest=r.attr("budget", "cheapest", int),
-        target=None if target is None else float(target),
+        target=target,
         layouts=tuple(
-            r.array(f"budget/layouts/{row}/positions_m", ndim=2) for row in range(count.size)
+            r.array(f"budget/layouts/{row}/positions_m", shape=(None, 3))
+            for row in range(count.size)
         ),
+        # Written since a count that does not fit became a row rather than an error.
+        feasible=(
+            r.array("budget/feasible", dtype=bool, shape=rows) if r.has("budget/feasible") else None
+        ),
+        reason=r.strings("budget/reason", "n_rows") if r.has("budget/reason") else (),
     )

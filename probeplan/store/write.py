@@ -57,7 +57,16 @@ def write_result(
         link, a FIFO, a device …), its folder is missing, or the file cannot be written there
         (read-only folder, full disk …); nothing is left behind.
     """
-    target = check_writable(path, force=force, option=option)
+    names = iter(names)
+    target = Path(os.fspath(path))
+    # A default name another run took since this one began: move on to the next free one
+    # here too (the final link moves on the same way if one is taken during the write).
+    while not force and os.path.lexists(target):
+        following = next(names, None)
+        if following is None:
+            break  # an explicit name: check_writable says it exists
+        target = following
+    target = check_writable(target, force=force, option=option)
 
     def write(tmp: Path) -> None:
         # The file is built in memory and written with plain file I/O: HDF5's own writes on
@@ -224,6 +233,8 @@ def _write_budget(g: h5py.Group, b: BudgetTable, vunit: str) -> None:
     _dataset(g, "value", np.asarray(b.value, dtype=float), vunit)
     _dataset(g, "meets_target", np.asarray(b.meets_target, dtype=bool))
     _dataset(g, "pareto", np.asarray(b.pareto, dtype=bool))
+    _dataset(g, "feasible", b.fits())
+    _strings(g, "reason", list(b.reason) if b.feasible is not None else [""] * len(b.count))
     g.attrs["cheapest"] = np.int64(b.cheapest)
     if b.target is not None:
         g.attrs["target"] = np.float64(b.target)
