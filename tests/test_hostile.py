@@ -65,7 +65,8 @@ def test_a_crowded_site_keeps_its_plan_and_says_how_many_baselines_fit(tmp_path,
     (name,) = [b.name for b in r.search.baselines if "random" in b.name]
     placed, missing = (int(n) for n in re.findall(r"\d+", name)[:2])
     assert placed + missing == 200 and missing > 0, name
-    assert "could not place" in out
+    # The summary may wrap the baseline's name inside its table cell (other cells between).
+    assert re.search(r"of 200 could\b.*?\bnot place every probe", out, re.DOTALL), out
 
 
 # ---------------------------------------------------------------- 2. budgets that do not fit
@@ -175,6 +176,8 @@ KINDS = ("missing", "wrong type", "wrong rank", "wrong length", "nan", "inf", "f
 # dataclass states NaN as "not computed".
 OPTIONAL = {"layout/axes", "layout/grade", "layout/names", "notes", "search/bound"}
 OPTIONAL |= {"search/bound_gap", "score/failure_values", "budget/feasible", "budget/reason"}
+# Added later than the first result files, so a file without them still reads.
+OPTIONAL |= {"scenarios/source_names", "search/evaluations_spent", "search/evaluation_stages"}
 INFINITE = {"score/crb_std", "score/per_scenario", "score/value", "score/failure_values"}
 INFINITE |= {"search/history", "search/bound", "search/bound_gap", "search/stage_values"}
 INFINITE |= {"search/baseline_values", "budget/value"}

@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import dataclasses
 import os
+import tomllib
 from collections.abc import Callable
 from pathlib import Path
 
@@ -291,7 +292,9 @@ def _read(r: _Reader) -> Result:
         sections["location"] = location
     names = r.strings("layout/names", "n_probes") if r.has("layout/names") else None
     notes = r.strings("notes") if r.has("notes") else ()
-    sources = r.strings("scenarios/source_names") if r.has("scenarios/source_names") else None
+    sources = None
+    if r.has("scenarios/source_names"):
+        sources = r.strings("scenarios/source_names", _source_count(r))
     return Result(
         command=r.attr("", "command"),
         config_text=r.attr("", "config_toml"),
@@ -345,6 +348,19 @@ def _read_dataclass(r: _Reader, path: str, cls):
     return cls(**kwargs)
 
 
+def _source_count(r: _Reader) -> int | None:
+    """How many ``[[source]]`` tables the stored config has (None if its text does not parse).
+
+    The source names must match them one for one; the config text is the file's own record.
+    """
+    try:
+        data = tomllib.loads(r.attr("", "config_toml"))
+    except tomllib.TOMLDecodeError:
+        return None
+    tables = data.get("source", [])
+    return len(tables) if isinstance(tables, list) else None
+
+
 def _read_search(r: _Reader) -> SearchInfo:
     names = r.strings("search/baseline_names", "n_baselines")
     values = r.array("search/baseline_values", shape=("n_baselines",), finite=False)
@@ -361,9 +377,7 @@ def _read_search(r: _Reader) -> SearchInfo:
     spent = ()
     if r.has("search/evaluations_spent"):
         stages = r.strings("search/evaluation_stages", "n_evaluation_stages")
-        counts = r.array(
-            "search/evaluations_spent", dtype=np.int64, shape=("n_evaluation_stages",)
-        )
+        counts = r.array("search/evaluations_spent", dtype=np.int64, shape=("n_evaluation_stages",))
         spent = tuple((stages[k], int(counts[k])) for k in range(counts.size))
     asked = r.f["search"].attrs.get("evaluations_asked")
     return SearchInfo(
