@@ -157,7 +157,7 @@ def test_relaxation_bound_is_above_every_subset(seed):
     # certifies the bound however early the solver stops.
     problem, cand, rows = grid_problem(seed)
     exact = GridObjective(problem, rows, prior=False)
-    relax = relaxation_bound(exact.info, problem.fisher_installed, 3)
+    relax = relaxation_bound(exact.rows, problem.fisher_installed, 3)
     _, vals = all_subset_values(exact, 3, problem)
     assert relax.bound >= vals.max()
     assert relax.bound == pytest.approx(relax.value + relax.gap)
@@ -172,7 +172,7 @@ def big_problem():
     """A 16 × 16 lattice (256 candidates), 6 probes, 5 parameters, and its relaxation bound."""
     problem, cand, rows = grid_problem(5, spacing_m=800.0, count=6, background=FAIR_WEATHER)
     obj = GridObjective(problem, rows, prior=False)
-    return problem, cand, rows, relaxation_bound(obj.info, problem.fisher_installed, 6)
+    return problem, cand, rows, relaxation_bound(obj.rows, problem.fisher_installed, 6)
 
 
 @settings(max_examples=30, deadline=None)
@@ -207,7 +207,7 @@ def test_relaxation_bound_is_tight_when_every_candidate_is_taken():
     n_c = cand.n_candidates
     assert n_c == 16
     exact = GridObjective(problem, rows, prior=False)
-    relax = relaxation_bound(exact.info, problem.fisher_installed, n_c)
+    relax = relaxation_bound(exact.rows, problem.fisher_installed, n_c)
     everything = problem.layout_values(cand.positions_m[None])[0]
     assert relax.bound >= everything - 1e-9
     assert relax.bound - everything <= problem.n_params * 2e-3 + 1e-9

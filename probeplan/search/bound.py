@@ -14,7 +14,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .grid import drain
+from .grid import candidate_chunks, drain
 
 #: Stop the relaxation when its certified gap is below this (in log det units, per parameter).
 BOUND_GAP_PER_PARAM = 2e-3
@@ -56,14 +56,29 @@ class Relaxation:
     iterations: int
 
 
-def _relaxed(w: np.ndarray, info: np.ndarray, base: np.ndarray) -> tuple[float, np.ndarray | None]:
-    """f(w) and ∇f(w) ``(C,)``; (−inf, None) where a weighted information is singular."""
-    m = base + np.einsum("c,scpq->spq", w, info)
+def _relaxed(w: np.ndarray, rows: np.ndarray, base: np.ndarray) -> tuple[float, np.ndarray | None]:
+    """f(w) and ∇f(w) ``(C,)``; (−inf, None) where a weighted information is singular.
+
+    M_s = base_s + R_sᵀ diag(w) R_s and ∂f/∂w_c = mean_s tr(M_s⁻¹ A_sc) = mean_s Σ_a
+    r_sca M_s⁻¹ r_scaᵀ: stacked matrix products over the scenarios, chunk by chunk of
+    candidates (:func:`~probeplan.search.grid.candidate_chunks`), never the (S, C, p, p)
+    information.
+    """
+    n_s, n_c, n_a, n_p = rows.shape
+    m = base.copy()
+    for sl in candidate_chunks(rows):
+        r = rows[:, sl].reshape(n_s, -1, n_p)  # (S, c·a, p)
+        wr = r * np.repeat(w[sl], n_a)[None, :, None]
+        m += np.matmul(np.swapaxes(wr, -1, -2), r)
     sign, ld = np.linalg.slogdet(m)
     if np.any(sign <= 0):
         return -np.inf, None
     minv = np.linalg.inv(m)
-    grad = np.einsum("spq,scqp->c", minv, info) / info.shape[0]
+    grad = np.empty(n_c)
+    for sl in candidate_chunks(rows):
+        r = rows[:, sl].reshape(n_s, -1, n_p)
+        q = np.einsum("sip,sip->i", np.matmul(r, minv), r)  # Σ_s, (c·a,)
+        grad[sl] = q.reshape(-1, n_a).sum(axis=1) / n_s
     return float(ld.mean()), grad
 
 
@@ -82,7 +97,7 @@ def _certificate(f: float, gap: float, w: np.ndarray, iterations: int) -> Relaxa
 
 
 def relaxation_steps(
-    info: np.ndarray,
+    rows: np.ndarray,
     base: np.ndarray,
     count: int,
     max_iter: int = 400,
@@ -93,8 +108,8 @@ def relaxation_steps(
 
     Parameters
     ----------
-    info : (n_scenarios, n_candidates, n_params, n_params) float
-        Information of one probe at each candidate.
+    rows : (n_scenarios, n_candidates, n_axes, n_params) float
+        Whitened rows of one probe at each candidate (its information is A = Rᵀ R).
     base : (n_scenarios, n_params, n_params) float
         Information that every layout has (installed probes).
     count : int
@@ -110,10 +125,10 @@ def relaxation_steps(
         The certificate of the best weights so far, after every evaluation: each is a valid
         bound; the last one is the tightest.
     """
-    n_c, p = info.shape[1], info.shape[2]
+    n_c, p = rows.shape[1], rows.shape[3]
     gap_tol = p * BOUND_GAP_PER_PARAM if gap_tol is None else gap_tol
     w = np.full(n_c, count / n_c)
-    f, g = _relaxed(w, info, base)
+    f, g = _relaxed(w, rows, base)
     if g is None:
         # Singular with every candidate at equal weight: then Σ_c A_c is singular and so is
         # every subset's information (it is dominated by a multiple of that sum); the best any
@@ -129,7 +144,7 @@ def relaxation_steps(
         # Backtracking projected gradient ascent, with the step allowed to grow again.
         while True:
             w_new = _project_capped_simplex(w + step * g, count)
-            f_new, g_new = _relaxed(w_new, info, base)
+            f_new, g_new = _relaxed(w_new, rows, base)
             if f_new >= f + 1e-4 * g @ (w_new - w) and np.isfinite(f_new):
                 break
             step *= 0.5

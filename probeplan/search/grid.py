@@ -46,28 +46,41 @@ class GridObjective:
     ) -> None:
         self.problem = problem
         self.rows = rows
-        self.info = np.einsum("scap,scaq->scpq", rows, rows)  # (S, C, p, p)
         # Information of probes that every layout has and that may fail: (S, k, p, p).
         if fixed_info is None:
             fixed_info = problem.probe_information(np.zeros((0, 3)))
         self.fixed_info = fixed_info
         base = fixed_info.sum(axis=1)
         if prior:
-            diag = np.diagonal(self.info, axis1=-2, axis2=-1).mean(axis=1)  # (S, p)
+            # The diagonal of every candidate's information, Σ_a r², without forming the
+            # (S, C, p, p) information itself (9 × the rows at 9 parameters).
+            diag = np.einsum("scap,scap->scp", rows, rows).mean(axis=1)  # (S, p)
             scale = np.where(diag > 0, diag, 1.0) * PRIOR_FRACTION
             base = base + scale[:, :, None] * np.eye(problem.n_params)
         self.base = base
         self.robust = robust
 
+    @property
+    def info(self) -> np.ndarray:
+        """Information of one probe at every candidate, ``(S, C, p, p)``: formed on request
+        only (it is p/a times the rows; the search itself never needs all of it)."""
+        return self.info_of(np.arange(self.rows.shape[1]))
+
+    def info_of(self, chosen: np.ndarray) -> np.ndarray:
+        """Information of one probe at each candidate of ``chosen (k,) int``, ``(S, k, p, p)``."""
+        r = self.rows[:, chosen]
+        return np.einsum("scap,scaq->scpq", r, r)
+
     def matrix(self, chosen: np.ndarray) -> np.ndarray:
         """M_s of a candidate set: ``(k,) int`` → ``(n_scenarios, p, p)``."""
-        return self.base + self.info[:, chosen].sum(axis=1)
+        return self.base + self.info_of(chosen).sum(axis=1)
 
     def _losses(self, chosen: np.ndarray) -> list[np.ndarray]:
         """M_s of the set with each one probe (fixed or chosen) lost."""
         m = self.matrix(chosen)
         out = [m - self.fixed_info[:, k] for k in range(self.fixed_info.shape[1])]
-        out += [m - self.info[:, c] for c in chosen]
+        info = self.info_of(chosen)
+        out += [m - info[:, i] for i in range(chosen.size)]
         return out
 
     def values(self, m: np.ndarray) -> np.ndarray:
@@ -107,24 +120,58 @@ class GridObjective:
         """Criterion of M_s + A_sc for every candidate c: ``(S, p, p)`` → ``(C,)``.
 
         For ``d``: log det(M + Rᵀ R) = log det M + log det(I + R M⁻¹ Rᵀ) (matrix determinant
-        lemma). For the error criteria: the diagonal of (M + Rᵀ R)⁻¹ by Woodbury.
+        lemma). For the error criteria: the diagonal of (M + Rᵀ R)⁻¹ by Woodbury. The
+        candidates are swept in chunks of :func:`candidate_chunks`: one stacked matrix product
+        over the scenarios per chunk, and working memory bounded by :data:`WORK_BYTES`.
         """
         p = self.problem
-        minv = np.linalg.inv(m)  # (S, p, p)
-        u = np.einsum("spq,scaq->scpa", minv, self.rows)  # M⁻¹ Rᵀ
-        small = np.eye(self.rows.shape[2]) + np.einsum("scap,scpb->scab", self.rows, u)
-        if p.criterion.name == "d":
-            sign, ld0 = np.linalg.slogdet(m)
-            sign_c, ld = np.linalg.slogdet(small)
-            per = np.where(sign_c > 0, ld0[:, None] + ld, -np.inf)  # (S, C)
+        minv_t = np.swapaxes(np.linalg.inv(m), -1, -2)  # (S, p, p)
+        ld0 = np.linalg.slogdet(m)[1][:, None] if p.criterion.name == "d" else None
+        out = np.empty(self.rows.shape[1])
+        for sl in candidate_chunks(self.rows):
+            out[sl] = self._add_chunk(self.rows[:, sl], minv_t, ld0)
+        return out
+
+    def _add_chunk(self, rows: np.ndarray, minv_t: np.ndarray, ld0) -> np.ndarray:
+        """:meth:`add_values` of the candidates of ``rows (S, c, a, p)``, ``(c,)``."""
+        p = self.problem
+        n_s, n_c, n_a, n_p = rows.shape
+        # u = R M⁻¹ (rows of M⁻¹ Rᵀ): one (c·a, p) × (p, p) product per scenario.
+        u = np.matmul(rows.reshape(n_s, n_c * n_a, n_p), minv_t).reshape(rows.shape)
+        small = np.einsum("scap,scbp->scab", rows, u)
+        small += np.eye(n_a)
+        if ld0 is not None:
+            if n_a == 1:  # the 1 × 1 determinant is the number itself
+                val = small[:, :, 0, 0]
+                with np.errstate(divide="ignore", invalid="ignore"):
+                    per = np.where(val > 0, ld0 + np.log(np.where(val > 0, val, 1.0)), -np.inf)
+            else:
+                sign_c, ld = np.linalg.slogdet(small)
+                per = np.where(sign_c > 0, ld0 + ld, -np.inf)  # (S, c)
         else:
-            k = np.linalg.inv(small)  # (S, C, a, a)
-            var = np.zeros(u.shape[:2])
+            minv = np.swapaxes(minv_t, -1, -2)
+            k = np.linalg.inv(small)  # (S, c, a, a)
+            var = np.zeros((n_s, n_c))
             for i in p.criterion.error_indices:
-                ui = u[:, :, i, :]  # (S, C, a)
+                ui = u[:, :, :, i]  # (S, c, a)
                 var += minv[:, i, i][:, None] - np.einsum("sca,scab,scb->sc", ui, k, ui)
             per = p.criterion.error_from_variance(var, p.theta_est)
         return aggregate(per.T, p.aggregate, p.criterion.maximise)
+
+
+#: Bytes of working arrays per chunk of candidates in the grid sweeps and the relaxation: the
+#: memory a search needs beyond the candidates' rows themselves (the data, S·C·a·p·8 bytes) is
+#: bounded by a few times this, whatever the grid (a chunk of a few MB also stays in cache
+#: between the two products of a sweep).
+WORK_BYTES = 1 << 22
+
+
+def candidate_chunks(rows: np.ndarray) -> Iterator[slice]:
+    """Slices of the candidate axis of ``rows (S, C, a, p)``, each about :data:`WORK_BYTES`."""
+    n_s, n_c, n_a, n_p = rows.shape
+    step = max(1, WORK_BYTES // max(n_s * n_a * max(n_p, 1) * 8, 1))
+    for start in range(0, n_c, step):
+        yield slice(start, min(start + step, n_c))
 
 
 def _spacing_mask(positions: np.ndarray, fixed: np.ndarray, min_spacing: float) -> np.ndarray:

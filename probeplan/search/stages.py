@@ -308,7 +308,7 @@ def _bound_stage(grid: _Grid, halt: Halt) -> Iterator[Step]:
     p = grid.problem
     yield Step("bound", 0, 1)
     relax = None
-    for relax in relaxation_steps(grid.objective.info, p.fisher_installed, p.count):  # noqa: B007
+    for relax in relaxation_steps(grid.objective.rows, p.fisher_installed, p.count):  # noqa: B007
         yield Step("bound", 0, 1)
         if halt():
             return
