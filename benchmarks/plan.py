@@ -24,11 +24,11 @@ plan_seconds, plan_seconds_<stage>
     Wall time of the whole ``plan()`` (best of the repeats) and of each of its stages, from
     the progress callback ("final score" is the scoring of the chosen layout after the last
     stage).
-scaling_exponent_candidates
+plan_scaling_exponent_candidates
     Least-squares slope of log(time) against log(candidates) for GridObjective + greedy +
     exchange on candidate grids of about 500, 1,000, 2,000 and 4,000 points (the rows of the
     forward model are computed beforehand and not timed). The number of exchange passes
-    depends on the grid, so ``scaling_exponent_candidates_per_call`` gives the slope of the
+    depends on the grid, so ``plan_scaling_exponent_candidates_per_call`` gives the slope of the
     time per objective sweep (one rank-1 update over every candidate) as well.
 """
 
@@ -151,8 +151,8 @@ def run(quick: bool = False) -> dict:
     }
     for stage, s in stages.items():
         figures[f"plan_seconds_{stage.replace(' ', '_')}"] = round(s, 2)
-    figures["scaling_exponent_candidates"] = round(slope, 3)
-    figures["scaling_exponent_candidates_per_call"] = round(slope_call, 3)
+    figures["plan_scaling_exponent_candidates"] = round(slope, 3)
+    figures["plan_scaling_exponent_candidates_per_call"] = round(slope_call, 3)
     repeat_text = "one run" if len(runs) == 1 else f"best of {len(runs)} runs"
     if len(runs) > 1 and same:
         repeat_text += ", the same layout every run"
@@ -165,7 +165,7 @@ def run(quick: bool = False) -> dict:
         ),
         "plan_bo_gain": f"refinement: {config.design.evaluations} evaluations",
         "plan_seconds": f"{repeat_text}; 10 probes × 64 scenarios",
-        "scaling_exponent_candidates": grid_detail,
+        "plan_scaling_exponent_candidates": grid_detail,
     }
     if not same:
         figures["_notes"]["plan_seconds"] += "; LAYOUTS DIFFER BETWEEN RUNS (not deterministic)"

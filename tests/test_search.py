@@ -485,3 +485,31 @@ def test_a_stop_at_any_poll_ends_the_search_within_one_step(monkeypatch):
             assert out.positions_m is None and out.gain is None and out.score is None
         assert stop.work["rows"] <= closing.work["rows"], (stage, stop.work)
     assert 0 < no_layout < len(ks)
+
+
+@pytest.mark.parametrize("seed, spacing_m", [(0, 5000.0), (3, 7000.0)])
+def test_spacing_aware_bound_is_above_every_allowed_subset(seed, spacing_m):
+    # The weights inside any open disc of radius spacing/2 sum to at most 1 in every layout
+    # the spacing rule allows (two points in such a disc are closer than the spacing), so the
+    # Lagrangian relaxation of those constraints still bounds every allowed subset; checked
+    # by brute force over all allowed 3-subsets of a 7 × 7 lattice.
+    problem, cand, rows = grid_problem(seed)
+    exact = GridObjective(problem, rows, prior=False)
+    plain = relaxation_bound(exact.rows, problem.fisher_installed, 3)
+    rule = relaxation_bound(
+        exact.rows,
+        problem.fisher_installed,
+        3,
+        positions_m=cand.positions_m,
+        min_spacing_m=spacing_m,
+        installed_m=problem.installed_m,
+    )
+    combos, vals = all_subset_values(exact, 3, problem)
+    pos = cand.positions_m[combos]  # (n, 3, 3)
+    d = np.linalg.norm(pos[:, :, None] - pos[:, None, :], axis=-1)
+    allowed = np.all((d >= spacing_m) | np.eye(3, dtype=bool), axis=(1, 2))
+    assert allowed.any() and not allowed.all()
+    assert rule.bound >= vals[allowed].max()
+    assert rule.bound <= plain.bound
+    if seed == 3:  # here the plain relaxation puts weight on probes 6 km apart (measured)
+        assert rule.bound < plain.bound - 0.01

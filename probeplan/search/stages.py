@@ -308,7 +308,15 @@ def _bound_stage(grid: _Grid, halt: Halt) -> Iterator[Step]:
     p = grid.problem
     yield Step("bound", 0, 1)
     relax = None
-    for relax in relaxation_steps(grid.objective.rows, p.fisher_installed, p.count):  # noqa: B007
+    steps = relaxation_steps(
+        grid.objective.rows,
+        p.fisher_installed,
+        p.count,
+        positions_m=grid.positions_m,
+        min_spacing_m=grid.min_spacing_m,
+        installed_m=p.installed_m,
+    )
+    for relax in steps:  # noqa: B007
         yield Step("bound", 0, 1)
         if halt():
             return
