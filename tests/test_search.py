@@ -513,3 +513,13 @@ def test_spacing_aware_bound_is_above_every_allowed_subset(seed, spacing_m):
     assert rule.bound <= plain.bound
     if seed == 3:  # here the plain relaxation puts weight on probes 6 km apart (measured)
         assert rule.bound < plain.bound - 0.01
+
+
+def test_bound_progress_runs_from_its_first_gap_to_the_tolerance():
+    from probeplan.search.stages import _converged_percent
+
+    # A geometric shrinking of the gap reads as even progress (log scale).
+    assert _converged_percent(1.0, 1.0, 1e-4) == 0
+    assert _converged_percent(1.0, 1e-2, 1e-4) == 50
+    assert _converged_percent(1.0, 1e-5, 1e-4) == 100
+    assert _converged_percent(1e-5, 1e-5, 1e-4) == 100  # converged from the start
