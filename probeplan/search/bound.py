@@ -163,7 +163,7 @@ def relaxation_steps(
         yield best
     if positions_m is not None and min_spacing_m > 0:
         yield from spacing_steps(
-            rows, base, count, best, positions_m, min_spacing_m, upper, max_iter, gap_tol
+            rows, base, count, best, positions_m, min_spacing_m, upper, gap_tol
         )
 
 
@@ -208,7 +208,7 @@ def _conflicts(positions_m: np.ndarray, min_spacing_m: float):
 
 
 def spacing_steps(
-    rows, base, count, start: Relaxation, positions_m, min_spacing_m, upper, max_iter, gap_tol
+    rows, base, count, start: Relaxation, positions_m, min_spacing_m, upper, gap_tol
 ) -> Iterator[Relaxation]:
     """Tighten a bound with the spacing rule, by Lagrangian relaxation.
 
