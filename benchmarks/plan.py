@@ -88,14 +88,17 @@ def _grid_scaling(problem, repeats: int) -> tuple[float, float, str]:
         for _ in range(repeats):
             t = time.perf_counter()
             obj = GridObjective(problem, rows, prior=True)
-            sweep = obj.add_values
             counter = [0]
+            # A sweep: every candidate tried once, by the greedy (add_values) or by the
+            # exchange (removal_values, a downdate).
+            for name in ("add_values", "removal_values"):
+                sweep = getattr(obj, name)
 
-            def counted(m, _sweep=sweep, _counter=counter):
-                _counter[0] += 1
-                return _sweep(m)
+                def counted(*a, _sweep=sweep, _counter=counter):
+                    _counter[0] += 1
+                    return _sweep(*a)
 
-            obj.add_values = counted
+                setattr(obj, name, counted)
             chosen = greedy(
                 obj, problem.count, cand.positions_m, cfg.probes.min_spacing_m, problem.installed_m
             )
