@@ -4,8 +4,9 @@
 
 Runs the forward-model, scoring, planning, structures and regional benchmarks (``forward.py``,
 ``score.py``, ``plan.py``, ``structures.py``, ``regional.py`` beside this file), prints one
-table (figure, value, target, pass/fail) and writes the figures as one flat JSON object to FILE (default ``benchmarks/results/latest.json``), plus a
-dated copy ``benchmarks/results/<UTC date-time>.json`` so that the trend can be followed.
+table (figure, value, target, pass/fail) and writes the figures as one flat JSON object to
+FILE (default ``benchmarks/results/latest.json``), plus a dated copy
+``benchmarks/results/<UTC date-time>.json`` so that the trend can be followed.
 
 The machines these run on are shared and noisy, so the speed figures that matter are ratios
 measured side by side in the same run (probeplan against a plain numpy reference), and
