@@ -1,7 +1,7 @@
 """What the benchmark scripts share: paths, targets, the table, the JSON files, timing.
 
-``run.py``, ``forward.py``, ``score.py`` and ``plan.py`` import this module by its plain name:
-Python puts the folder of the script it runs first on ``sys.path``, so ``python
+``run.py``, ``forward.py``, ``score.py``, ``plan.py`` and ``regional.py`` import this module
+by its plain name: Python puts the folder of the script it runs first on ``sys.path``, so ``python
 benchmarks/run.py`` and ``python benchmarks/score.py`` both find it, with no path set by hand.
 """
 
@@ -40,8 +40,12 @@ TARGETS: dict[str, tuple] = {
     "plan_d_ratio_vs_regular": (">=", 1.0, "≥ 1.0"),
     "plan_bo_gain": ("report", None, "reported"),
     "plan_seconds": ("<=", 60.0, "≤ 60"),
-    "scaling_exponent_candidates": ("<=", 1.2, "report; ≤ 1.2"),
-    "scaling_exponent_candidates_per_call": ("report", None, "reported"),
+    "plan_scaling_exponent_candidates": ("<=", 1.2, "report; ≤ 1.2"),
+    "plan_scaling_exponent_candidates_per_call": ("report", None, "reported"),
+    "plan_regional_seconds": ("<=", 60.0, "≤ 60"),
+    "plan_regional_peak_gb": ("<=", 4.0, "≤ 4"),
+    "scaling_exponent_candidates": ("<=", 1.1, "≤ 1.1"),
+    "plan_regional_d_efficiency_vs_bound": ("report", None, "reported"),
     "locate_seconds_10k": ("<=", 30.0, "≤ 30"),
     "locate_steps_per_s": ("report", None, "reported"),
     "locate_cpu_seconds_10k": ("report", None, "reported"),

@@ -24,11 +24,11 @@ plan_seconds, plan_seconds_<stage>
     Wall time of the whole ``plan()`` (best of the repeats) and of each of its stages, from
     the progress callback ("final score" is the scoring of the chosen layout after the last
     stage).
-scaling_exponent_candidates
+plan_scaling_exponent_candidates
     Least-squares slope of log(time) against log(candidates) for GridObjective + greedy +
     exchange on candidate grids of about 500, 1,000, 2,000 and 4,000 points (the rows of the
     forward model are computed beforehand and not timed). The number of exchange passes
-    depends on the grid, so ``scaling_exponent_candidates_per_call`` gives the slope of the
+    depends on the grid, so ``plan_scaling_exponent_candidates_per_call`` gives the slope of the
     time per objective sweep (one rank-1 update over every candidate) as well.
 """
 
@@ -88,14 +88,17 @@ def _grid_scaling(problem, repeats: int) -> tuple[float, float, str]:
         for _ in range(repeats):
             t = time.perf_counter()
             obj = GridObjective(problem, rows, prior=True)
-            sweep = obj.add_values
             counter = [0]
+            # A sweep: every candidate tried once, by the greedy (add_values) or by the
+            # exchange (removal_values, a downdate).
+            for name in ("add_values", "removal_values"):
+                sweep = getattr(obj, name)
 
-            def counted(m, _sweep=sweep, _counter=counter):
-                _counter[0] += 1
-                return _sweep(m)
+                def counted(*a, _sweep=sweep, _counter=counter):
+                    _counter[0] += 1
+                    return _sweep(*a)
 
-            obj.add_values = counted
+                setattr(obj, name, counted)
             chosen = greedy(
                 obj, problem.count, cand.positions_m, cfg.probes.min_spacing_m, problem.installed_m
             )
@@ -151,8 +154,8 @@ def run(quick: bool = False) -> dict:
     }
     for stage, s in stages.items():
         figures[f"plan_seconds_{stage.replace(' ', '_')}"] = round(s, 2)
-    figures["scaling_exponent_candidates"] = round(slope, 3)
-    figures["scaling_exponent_candidates_per_call"] = round(slope_call, 3)
+    figures["plan_scaling_exponent_candidates"] = round(slope, 3)
+    figures["plan_scaling_exponent_candidates_per_call"] = round(slope_call, 3)
     repeat_text = "one run" if len(runs) == 1 else f"best of {len(runs)} runs"
     if len(runs) > 1 and same:
         repeat_text += ", the same layout every run"
@@ -165,7 +168,7 @@ def run(quick: bool = False) -> dict:
         ),
         "plan_bo_gain": f"refinement: {config.design.evaluations} evaluations",
         "plan_seconds": f"{repeat_text}; 10 probes × 64 scenarios",
-        "scaling_exponent_candidates": grid_detail,
+        "plan_scaling_exponent_candidates": grid_detail,
     }
     if not same:
         figures["_notes"]["plan_seconds"] += "; LAYOUTS DIFFER BETWEEN RUNS (not deterministic)"

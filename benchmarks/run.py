@@ -2,10 +2,11 @@
 
     python benchmarks/run.py [--quick] [--json FILE]
 
-Runs the forward-model, scoring and planning benchmarks (``forward.py``, ``score.py``,
-``plan.py`` beside this file), prints one table (figure, value, target, pass/fail) and writes
-the figures as one flat JSON object to FILE (default ``benchmarks/results/latest.json``), plus a
-dated copy ``benchmarks/results/<UTC date-time>.json`` so that the trend can be followed.
+Runs the forward-model, scoring, planning, structures and regional benchmarks (``forward.py``,
+``score.py``, ``plan.py``, ``structures.py``, ``regional.py`` beside this file), prints one
+table (figure, value, target, pass/fail) and writes the figures as one flat JSON object to
+FILE (default ``benchmarks/results/latest.json``), plus a dated copy
+``benchmarks/results/<UTC date-time>.json`` so that the trend can be followed.
 
 The machines these run on are shared and noisy, so the speed figures that matter are ratios
 measured side by side in the same run (probeplan against a plain numpy reference), and
@@ -25,6 +26,7 @@ from pathlib import Path
 
 import forward
 import plan
+import regional
 import score
 import structures
 from _common import RESULTS, print_table, run_meta, write_json
@@ -46,6 +48,7 @@ def main(argv: list[str] | None = None) -> int:
         ("score", score.run, ("score_layouts_per_s",)),
         ("plan", plan.run, ("plan_d_efficiency_vs_bound", "plan_seconds")),
         ("structures", structures.run, ("bem_seconds_4000", "bem_offsurface_max_rel_err")),
+        ("regional", regional.run, ("plan_regional_seconds", "plan_regional_peak_gb")),
     ]
     for name, runner, main_keys in benches:
         t = time.perf_counter()

@@ -445,6 +445,8 @@ def _search_notes(result: Result) -> Text:
             text.append("exp((plan - bound)/n_params)\n")
             if eff > 1.0:
                 text.append("  (over 100 %: refinement moved probes off the grid it covers)\n")
+            elif eff < LOOSE_BOUND_EFFICIENCY:
+                text.append(_LOOSE_BOUND_TEXT)
     spacing = (
         f"spacing {format_quantity(info.grid_spacing_m, 'm')}"
         if info.grid_spacing_m > 0
@@ -605,9 +607,22 @@ def _simulation_parts(result: Result) -> list:
 # --------------------------------------------------------------------------------------------
 
 
+#: D-efficiency below which the summary explains what a wide gap to the bound means.
+LOOSE_BOUND_EFFICIENCY = 0.9
+
+_LOOSE_BOUND_TEXT = (
+    "  A wide gap here usually means a loose bound, not a poor plan: the bound lets\n"
+    "  fractions of meters spread over every candidate, so that together they see every\n"
+    "  scenario's charge, where whole meters cannot (the spacing rule and installed meters\n"
+    "  are taken into account). It promises only that no layout on the grid beats it; it\n"
+    "  does not say how close the best layout on the grid comes to it.\n"
+)
+
+
 @contextlib.contextmanager
 def progress_bar(console: Console | None = None) -> Iterator[Callable[[str, int, int], None]]:
-    """A progress callback for the search, drawn as a rich progress bar.
+    """A progress callback for the search, drawn as a rich progress bar: one line a stage
+    (its name, a bar, done of total, the time spent and an estimate of the time left).
 
     Parameters
     ----------
@@ -628,6 +643,7 @@ def progress_bar(console: Console | None = None) -> Iterator[Callable[[str, int,
         Progress,
         TextColumn,
         TimeElapsedColumn,
+        TimeRemainingColumn,
     )
 
     columns = (
@@ -635,6 +651,8 @@ def progress_bar(console: Console | None = None) -> Iterator[Callable[[str, int,
         BarColumn(bar_width=30),
         MofNCompleteColumn(),
         TimeElapsedColumn(),
+        TextColumn("left"),
+        TimeRemainingColumn(),
     )
     with Progress(*columns, console=con, transient=True) as bar:
         tasks: dict[str, int] = {}

@@ -157,7 +157,7 @@ def test_relaxation_bound_is_above_every_subset(seed):
     # certifies the bound however early the solver stops.
     problem, cand, rows = grid_problem(seed)
     exact = GridObjective(problem, rows, prior=False)
-    relax = relaxation_bound(exact.info, problem.fisher_installed, 3)
+    relax = relaxation_bound(exact.rows, problem.fisher_installed, 3)
     _, vals = all_subset_values(exact, 3, problem)
     assert relax.bound >= vals.max()
     assert relax.bound == pytest.approx(relax.value + relax.gap)
@@ -172,7 +172,7 @@ def big_problem():
     """A 16 × 16 lattice (256 candidates), 6 probes, 5 parameters, and its relaxation bound."""
     problem, cand, rows = grid_problem(5, spacing_m=800.0, count=6, background=FAIR_WEATHER)
     obj = GridObjective(problem, rows, prior=False)
-    return problem, cand, rows, relaxation_bound(obj.info, problem.fisher_installed, 6)
+    return problem, cand, rows, relaxation_bound(obj.rows, problem.fisher_installed, 6)
 
 
 @settings(max_examples=30, deadline=None)
@@ -207,7 +207,7 @@ def test_relaxation_bound_is_tight_when_every_candidate_is_taken():
     n_c = cand.n_candidates
     assert n_c == 16
     exact = GridObjective(problem, rows, prior=False)
-    relax = relaxation_bound(exact.info, problem.fisher_installed, n_c)
+    relax = relaxation_bound(exact.rows, problem.fisher_installed, n_c)
     everything = problem.layout_values(cand.positions_m[None])[0]
     assert relax.bound >= everything - 1e-9
     assert relax.bound - everything <= problem.n_params * 2e-3 + 1e-9
@@ -485,3 +485,41 @@ def test_a_stop_at_any_poll_ends_the_search_within_one_step(monkeypatch):
             assert out.positions_m is None and out.gain is None and out.score is None
         assert stop.work["rows"] <= closing.work["rows"], (stage, stop.work)
     assert 0 < no_layout < len(ks)
+
+
+@pytest.mark.parametrize("seed, spacing_m", [(0, 5000.0), (3, 7000.0)])
+def test_spacing_aware_bound_is_above_every_allowed_subset(seed, spacing_m):
+    # The weights inside any open disc of radius spacing/2 sum to at most 1 in every layout
+    # the spacing rule allows (two points in such a disc are closer than the spacing), so the
+    # Lagrangian relaxation of those constraints still bounds every allowed subset; checked
+    # by brute force over all allowed 3-subsets of a 7 × 7 lattice.
+    problem, cand, rows = grid_problem(seed)
+    exact = GridObjective(problem, rows, prior=False)
+    plain = relaxation_bound(exact.rows, problem.fisher_installed, 3)
+    rule = relaxation_bound(
+        exact.rows,
+        problem.fisher_installed,
+        3,
+        positions_m=cand.positions_m,
+        min_spacing_m=spacing_m,
+        installed_m=problem.installed_m,
+    )
+    combos, vals = all_subset_values(exact, 3, problem)
+    pos = cand.positions_m[combos]  # (n, 3, 3)
+    d = np.linalg.norm(pos[:, :, None] - pos[:, None, :], axis=-1)
+    allowed = np.all((d >= spacing_m) | np.eye(3, dtype=bool), axis=(1, 2))
+    assert allowed.any() and not allowed.all()
+    assert rule.bound >= vals[allowed].max()
+    assert rule.bound <= plain.bound
+    if seed == 3:  # here the plain relaxation puts weight on probes 6 km apart (measured)
+        assert rule.bound < plain.bound - 0.01
+
+
+def test_bound_progress_runs_from_its_first_gap_to_the_tolerance():
+    from probeplan.search.stages import _converged_percent
+
+    # A geometric shrinking of the gap reads as even progress (log scale).
+    assert _converged_percent(1.0, 1.0, 1e-4) == 0
+    assert _converged_percent(1.0, 1e-2, 1e-4) == 50
+    assert _converged_percent(1.0, 1e-5, 1e-4) == 100
+    assert _converged_percent(1e-5, 1e-5, 1e-4) == 100  # converged from the start

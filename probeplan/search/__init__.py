@@ -20,7 +20,10 @@ result):
    Selection via Convex Optimization", IEEE TSP 57(2), 2009): weights w ∈ [0, 1]^C with
    Σ w = count, f(w) = mean_s log det(J0_s + Σ_c w_c A_sc) is concave. Projected gradient ascent
    finds a good w; the Frank–Wolfe duality gap max_v ∇f(w)·(v − w) certifies
-   f* ≤ f(w) + gap, so the stored bound is valid however early the solver stops.
+   f* ≤ f(w) + gap, so the stored bound is valid however early the solver stops. The
+   spacing rule tightens it (``bound.spacing_steps``: weights of candidates closer than the
+   spacing sum to at most 1, by Lagrangian relaxation; candidates too close to an installed
+   meter get weight 0). Every product runs on chunks of candidate rows (``grid.WORK_BYTES``).
 5. **Bayesian refinement** (scikit-optimize ``Optimizer``, ask/tell) moves one probe at a time
    in the continuous coordinates of its mounting region, the others fixed — a 1–2-dimensional
    problem, the size at which a Gaussian-process optimiser converges in tens of calls. It

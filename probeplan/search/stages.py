@@ -23,7 +23,7 @@ import numpy as np
 
 from ..problem import Problem
 from ..resulttypes import Baseline
-from .bound import Relaxation, relaxation_steps
+from .bound import BOUND_GAP_PER_PARAM, Relaxation, relaxation_steps
 from .grid import (
     GridObjective,
     _candidates,
@@ -257,8 +257,10 @@ def _exchange_stage(grid: _Grid, chosen: np.ndarray, halt: Halt) -> Iterator[Ste
     tries = exchange_steps(
         grid.objective, chosen, grid.positions_m, grid.min_spacing_m, p.installed_m
     )
-    for chosen in tries:  # noqa: B007, B020 - the last try is the result
-        yield Step("exchange", 0, 1)
+    count = max(chosen.size, 1)
+    for k, chosen in enumerate(tries):  # noqa: B007, B020 - the last try is the result
+        # Progress within the current pass over the probes (passes: until one changes nothing).
+        yield Step("exchange", k % count, count)
         if halt():
             break
     found = grid.layout(chosen)
@@ -308,11 +310,32 @@ def _bound_stage(grid: _Grid, halt: Halt) -> Iterator[Step]:
     p = grid.problem
     yield Step("bound", 0, 1)
     relax = None
-    for relax in relaxation_steps(grid.objective.info, p.fisher_installed, p.count):  # noqa: B007
-        yield Step("bound", 0, 1)
+    steps = relaxation_steps(
+        grid.objective.rows,
+        p.fisher_installed,
+        p.count,
+        positions_m=grid.positions_m,
+        min_spacing_m=grid.min_spacing_m,
+        installed_m=p.installed_m,
+    )
+    first = None
+    tol = p.n_params * BOUND_GAP_PER_PARAM
+    for relax in steps:  # noqa: B007
+        first = relax.gap if first is None else first
+        yield Step("bound", _converged_percent(first, relax.gap, tol), 100)
         if halt():
             return
     yield Step("bound", 1, 1, bound=relax)
+
+
+def _converged_percent(first: float, gap: float, tol: float) -> int:
+    """How far the bound's gap has come from its first value to the tolerance, on a log
+    scale (the ascent's gap shrinks about geometrically), in percent: the progress bar's
+    measure, from which it estimates the time left."""
+    if not (first > tol and gap > 0 and np.isfinite(first)):
+        return 100 if gap <= tol else 0
+    share = np.log(first / max(gap, tol)) / np.log(first / tol)
+    return int(100 * min(max(share, 0.0), 1.0))
 
 
 def _refine_stage(
