@@ -151,6 +151,7 @@ def run_budget(
     evaluations: int | None = None,
     stop: Callable[[], bool] | None = None,
     done: tuple[OptionPlan, ...] = (),
+    event=None,
 ) -> tuple[BudgetTable, bool]:
     """Plan every (count, grade) option of the config and tabulate cost against quality.
 
@@ -170,6 +171,10 @@ def run_budget(
     done : tuple of OptionPlan
         Options already planned (a resumed sweep): kept as they are, and the largest of each
         grade starts the chain of its larger counts.
+    event : Event-like with ``set()`` and ``is_set()``, picklable, or None
+        The stop request the chains poll, shared with wherever ``executor`` runs them
+        (default: a manager's event for the own process pool, a plain flag in this process);
+        on another machine, e.g. a ``distributed.Event`` (:mod:`probeplan.cluster`).
 
     Returns
     -------
@@ -196,10 +201,11 @@ def run_budget(
             max_workers=workers, initializer=helper_process_init, initargs=(os.getpid(),)
         )
     manager = None
-    if own and executor is not None:
-        manager = SyncManager()
-        manager.start(helper_process_init, (os.getpid(),))
-    event = manager.Event() if manager is not None else _LocalEvent()
+    if event is None:
+        if own and executor is not None:
+            manager = SyncManager()
+            manager.start(helper_process_init, (os.getpid(),))
+        event = manager.Event() if manager is not None else _LocalEvent()
     results: list[OptionPlan] = [o for o in done if o.grade in grades and o.count in counts]
     args = []
     for g in grades:

@@ -4,7 +4,8 @@ Commands (the contract's "Command line"):
 
 * ``probeplan plan [CONFIG] [--out FILE.h5] [--force] [--resume FILE.h5]``
 * ``probeplan score CONFIG (--layout LAYOUT.csv | --from OLD.h5) [--out FILE.h5] [--force]``
-* ``probeplan budget CONFIG [--out FILE.h5] [--force] [--from OLD.h5 [--from-as MODE]]``
+* ``probeplan budget CONFIG [--out FILE.h5] [--force] [--from OLD.h5 [--from-as MODE]]
+  [--scheduler ADDRESS]`` (the options on a dask.distributed cluster, :mod:`probeplan.cluster`)
 * ``probeplan show FILE.h5 [--layout-csv LAYOUT.csv] [--geojson OUT.geojson] [--force]`` — the
   summary; optionally the new probes as a layout CSV (what ``score --layout`` reads) and every
   meter with the site as GeoJSON (with a ``[frame]``)
@@ -88,6 +89,15 @@ _QUIET_HELP = (
     "no progress bar and no summary: name the files written only (a warning that the config "
     "cannot mean what it says still goes to standard error)"
 )
+_SCHEDULER_HELP = (
+    "run on an existing dask.distributed cluster, e.g. tcp://host:8786 (needs the extra: pip "
+    'install "probeplan[cluster]"); default: the environment variable PROBEPLAN_SCHEDULER, '
+    "then [design] scheduler of the config, else this machine alone. Same seed, same result"
+)
+
+
+def _add_scheduler(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--scheduler", metavar="ADDRESS", default=None, help=_SCHEDULER_HELP)
 
 
 def _add_out(parser: argparse.ArgumentParser, help_text: str) -> None:
@@ -192,6 +202,7 @@ def _add_budget(sub) -> None:
         "<name>-budget-2.h5 … if taken)",
     )
     _add_from(b)
+    _add_scheduler(b)
 
 
 def _add_show(sub) -> None:

@@ -92,6 +92,20 @@ def summary(result, quiet: bool) -> None:
         report.print_result(result)
 
 
+@contextlib.contextmanager
+def on_cluster(args: argparse.Namespace, config) -> Iterator[object]:
+    """The dask cluster the command runs on (:mod:`probeplan.cluster`), or None for this
+    machine: ``--scheduler``, else ``$PROBEPLAN_SCHEDULER``, else ``[design] scheduler``."""
+    from .cluster import connect, scheduler_address
+
+    found = scheduler_address(getattr(args, "scheduler", None), config)
+    if found is None:
+        yield None
+        return
+    with connect(*found, timeout_s=config.design.scheduler_timeout_s) as cluster:
+        yield cluster
+
+
 # --------------------------------------------------------------------------------------------
 # Writing
 # --------------------------------------------------------------------------------------------
@@ -275,8 +289,11 @@ def cmd_budget(args: argparse.Namespace, written: list[Path]) -> int:
     reruns.build_problem(config)  # every config check before the sweep spends its time
     done = reruns.stored_options(run.stored) if run.stored is not None else ()
 
-    with stoppable(args.quiet) as (progress, flag):
-        table, complete = run_budget(config, progress=progress, stop=flag, done=done)
+    with on_cluster(args, config) as cluster, stoppable(args.quiet) as (progress, flag):
+        on = (
+            {} if cluster is None else {"executor": cluster.executor, "event": cluster.stop_event()}
+        )
+        table, complete = run_budget(config, progress=progress, stop=flag, done=done, **on)
     if table.count.size == 0:
         report.print_interrupted(when="before any option was planned", written=written)
         return EXIT_INTERRUPTED  # stopped before any option was planned: nothing to write

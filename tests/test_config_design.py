@@ -16,7 +16,18 @@ def test_quantile_aggregate_is_normalised():
     assert cfg.design.aggregate == "quantile:0.25" and cfg.design.quantile == 0.25
 
 
+def test_scheduler_keys():
+    cfg = parse_config(BASE + '\n[design]\nscheduler = "tcp://h:8786"\nscheduler_timeout_s = 3\n')
+    assert cfg.design.scheduler == "tcp://h:8786" and cfg.design.scheduler_timeout_s == 3.0
+    plain = parse_config(BASE).design
+    assert plain.scheduler is None and plain.scheduler_timeout_s == 10.0
+
+
 BAD = {
+    "empty scheduler": (
+        (EST, EST + '\n\n[design]\nscheduler = " "'),
+        ["`design.scheduler` must not be empty", 'such as "tcp://host:8786"'],
+    ),
     "unknown criterion": (
         (EST, EST + '\n\n[design]\ncriterion = "e"'),
         ['`design.criterion` must be one of "d", "location", "charge"; got "e"'],

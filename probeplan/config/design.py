@@ -17,6 +17,8 @@ DESIGN_KEYS = (
     "tolerate_failures",
     "grid_spacing_m",
     "random_layouts",
+    "scheduler",
+    "scheduler_timeout_s",
 )
 
 
@@ -34,6 +36,13 @@ def parse_design(root: Table) -> DesignSpec:
         tolerate_failures=t.integer("tolerate_failures", default=0, choices=(0, 1)),
         grid_spacing_m=t.number("grid_spacing_m", default=None, gt=0.0),
         random_layouts=t.integer("random_layouts", default=d.random_layouts, ge=1),
+        scheduler=t.string(
+            "scheduler",
+            default=None,
+            nonempty=True,
+            what='a dask scheduler address such as "tcp://host:8786"',
+        ),
+        scheduler_timeout_s=t.number("scheduler_timeout_s", default=d.scheduler_timeout_s, gt=0.0),
     )
 
 

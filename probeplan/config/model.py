@@ -135,6 +135,11 @@ class DesignSpec:
         Candidate-grid spacing, m, > 0; ``None`` lets the search choose.
     random_layouts : int
         Random layouts drawn for the "best random" baseline, >= 1.
+    scheduler : str or None
+        Address of a dask.distributed scheduler to run on (``"tcp://host:8786"``); the
+        ``--scheduler`` option and the ``PROBEPLAN_SCHEDULER`` variable come before it.
+    scheduler_timeout_s : float
+        How long to try to reach the scheduler before giving up, s, > 0.
     """
 
     criterion: str = "d"
@@ -144,6 +149,8 @@ class DesignSpec:
     tolerate_failures: int = 0
     grid_spacing_m: float | None = None
     random_layouts: int = 1000
+    scheduler: str | None = None
+    scheduler_timeout_s: float = 10.0
 
     @property
     def quantile(self) -> float | None:
