@@ -34,7 +34,9 @@ from _common import RESULTS, print_table, run_meta, write_json
 
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description="probeplan benchmarks (see benchmarks/README.md)")
-    parser.add_argument("--quick", action="store_true", help="fewer repeats, no regional case; under 5 minutes")
+    parser.add_argument(
+        "--quick", action="store_true", help="fewer repeats, no regional case; under 5 minutes"
+    )
     parser.add_argument("--json", type=Path, default=RESULTS / "latest.json")
     args = parser.parse_args(argv)
 
