@@ -15,6 +15,7 @@ import pytest
 from geojson_rules import check_rfc7946
 from sites import site_mapping, write_site
 
+import probeplan as pp
 from probeplan.cli import main
 from probeplan.config import config_from_mapping, load_config
 from probeplan.errors import InputError
@@ -92,7 +93,9 @@ def test_frame_lonlat_and_geojson_become_local_metres(tmp_path):
     assert config.frame == F
     (field,), (tank,) = config.regions, config.keepouts
     assert field.name == "field" and field.z_m == 1.5  # height above the ground (z = 0)
-    assert tank.name == "tank" and tank.is_footprint  # a structure: a footprint until modelled
+    assert tank.name == "tank" and tank.is_footprint  # a structure's footprint stays a keep-out
+    (prism,) = config.structures  # and the structure itself is a conductor
+    assert prism.name == "tank" and prism.kind == "mesh" and not prism.floating
     mast, gate = config.installed
     assert mast.position_m == pytest.approx((300.0, 400.0, 3.0), abs=1e-6)
     assert gate.name == "gate" and gate.position_m == pytest.approx((-1500, -1500, 2), abs=1e-6)
@@ -281,3 +284,61 @@ def test_map_furniture_on_a_site_with_a_frame(tmp_path):
     assert bar.txt_label.get_text() == "1 km"  # a fifth of 6 km, rounded down to 1-2-5
     assert ax.get_xlabel() == "east of the frame origin (km)"
     plt.close(fig)
+
+
+def _structure_file(folder: Path, **props) -> None:
+    """A 2 m square footprint centred on the origin, 2 m high."""
+    feature = {
+        "type": "Feature",
+        "properties": {"role": "structure", "name": "hut", "height_m": 2.0, **props},
+        "geometry": {
+            "type": "Polygon",
+            "coordinates": [_ring([(-1, -1), (1, -1), (1, 1), (-1, 1)])],
+        },
+    }
+    region = {
+        "type": "Feature",
+        "properties": {"role": "region", "name": "yard", "height_m": 1.0},
+        "geometry": {"type": "Polygon", "coordinates": [_ring([(3, 3), (9, 3), (9, 9), (3, 9)])]},
+    }
+    text = json.dumps({"type": "FeatureCollection", "features": [feature, region]})
+    (folder / "site.geojson").write_text(text)
+
+
+def test_a_structure_footprint_is_a_prism_reading_like_the_same_box(tmp_path):
+    _structure_file(tmp_path, mesh_size_m=0.5)
+    region = {"kind": "geojson", "path": "site.geojson"}
+    config = config_from_mapping(
+        site_mapping(frame=FRAME, region=[region]), str(tmp_path / "c.toml")
+    )
+    (prism,) = config.structures
+    box = pp.Conductor.box((-1, -1, 0), (1, 1, 2), mesh_size_m=0.5)
+    charge = pp.PointCharge(1e-9, (4.0, 1.0, 3.0))
+    pts = np.array([[3, 0, 1], [0, 3, 2.5], [2, 2, 0.5], [0, 0, 4]], dtype=float)
+    bg = (0.0, 0.0, -100.0)
+    got = pp.field(charge, pts, 0.0, conductors=[prism], background_v_per_m=bg)
+    want = pp.field(charge, pts, 0.0, conductors=[box], background_v_per_m=bg)
+    bare = pp.field(charge, pts, 0.0, background_v_per_m=bg)
+    # The same grounded solid, meshed two ways, reads the same to the mesh accuracy (1 % of
+    # the largest component: common practice for panel sizes of a quarter of the body), while
+    # the structure itself changes the field by far more than that.
+    scale = np.abs(want).max()
+    np.testing.assert_allclose(got, want, atol=0.01 * scale)
+    assert np.abs(want - bare).max() > 0.2 * scale
+
+
+def test_a_floating_structure_feature_keeps_its_charge(tmp_path):
+    _structure_file(tmp_path, floating=True, charge_c=1e-9)
+    region = {"kind": "geojson", "path": "site.geojson"}
+    config = config_from_mapping(
+        site_mapping(frame=FRAME, region=[region]), str(tmp_path / "c.toml")
+    )
+    (prism,) = config.structures
+    assert prism.floating and prism.charge_c == 1e-9
+
+
+def test_a_grounded_structure_feature_with_a_charge_is_refused(tmp_path):
+    _structure_file(tmp_path, charge_c=1e-9)
+    region = {"kind": "geojson", "path": "site.geojson"}
+    with pytest.raises(InputError, match="`charge_c` needs property `floating` = true"):
+        config_from_mapping(site_mapping(frame=FRAME, region=[region]), str(tmp_path / "c.toml"))

@@ -156,7 +156,7 @@ def _check(data: dict, text: str, path: str, base: Path) -> Config:
     mapped = parse_map_regions(root, frame, ground_z_m, base)
     installed = check_installed_names(ck, installed + mapped.installed)
     sources = parse_sources(root, ground_z_m, base, frame)
-    structures = parse_structures(root, ground_z_m, base, sources)
+    structures = parse_structures(root, ground_z_m, base, sources, mapped.structures)
     regions = parse_regions(root, "region", ground_z_m, structures) + mapped.regions
     keepouts = parse_regions(root, "keepout", ground_z_m) + mapped.keepouts
     background = parse_background(root)

@@ -4,7 +4,10 @@ and installed meters.
 The file (RFC 7946, read by :func:`probeplan.geo.read_geojson`) gives features with a
 property ``role``: ``region`` becomes a mounting region, ``keepout`` a keep-out, ``installed``
 an installed meter (``name``, ``component``, ``grade``, ``gain``), ``structure`` (with
-``height_m``) a keep-out footprint until structures are modelled. Mounting heights: a
+``height_m``) a conducting structure: a vertical prism over the footprint from the ground to
+``height_m``, grounded unless ``floating = true`` (with ``charge_c``), meshed as a
+:meth:`Conductor.mesh` with no base on the grounded plane; its footprint also stays a keep-out
+for meters. Mounting heights: a
 feature's ``height_m`` (above the ground), else heights in its coordinates, else the table's
 ``z_m``. ``filter = { key = value }`` keeps only the features whose property ``key`` equals
 ``value``.
@@ -12,12 +15,17 @@ feature's ``height_m`` (above the ground), else heights in its coordinates, else
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 import numpy as np
+import scipy.spatial
+import shapely
 
+from ..conductors import _AUTO_PANELS, Conductor
+from ..errors import InputError
 from ..geo import Frame, MapFeature, read_geojson
 from ..site import Region, make_region
 from .model import InstalledProbe
@@ -33,6 +41,7 @@ class MapSite:
     regions: tuple[Region, ...] = ()
     keepouts: tuple[Region, ...] = ()
     installed: tuple[InstalledProbe, ...] = ()
+    structures: tuple[Conductor, ...] = ()
 
 
 def parse_map_regions(
@@ -42,6 +51,7 @@ def parse_map_regions(
     regions: list[Region] = []
     keepouts: list[Region] = []
     installed: list[InstalledProbe] = []
+    structures: list[Conductor] = []
     for t in root.array_of_tables("region"):
         if t.data.get("kind") != "geojson":
             continue
@@ -63,8 +73,9 @@ def parse_map_regions(
         for f in (*layer.keepouts, *layer.structures):
             geom = _geometry(t, f, ground, z_m, mounting=False)
             keepouts.append(_region(t, f, geom, buffer_m=buffer_m))
+        structures.extend(_structure(t, f, ground, ground_z_m) for f in layer.structures)
         installed.extend(_meter(t, f, ground) for f in layer.installed)
-    return MapSite(tuple(regions), tuple(keepouts), tuple(installed))
+    return MapSite(tuple(regions), tuple(keepouts), tuple(installed), tuple(structures))
 
 
 def _filter(t: Table) -> tuple[str, Any] | None:
@@ -113,6 +124,144 @@ def _region(t: Table, f: MapFeature, geom: dict, **extra) -> Region:
         return make_region(f.kind, **geom, name=f.name or f.label, **extra)
     except ValueError as exc:
         t.ck.fail(f"{f.label}: {exc}")
+
+
+def _structure(t: Table, f: MapFeature, ground: float, ground_z_m: float | None) -> Conductor:
+    """A ``structure`` feature as a grounded (or floating) prism over its footprint."""
+    p = f.properties
+    where = f"{f.label}: property"
+    floating = p.get("floating", False)
+    if not isinstance(floating, bool):
+        t.ck.fail(f"{where} `floating` must be true or false; got {show(floating)}.")
+    charge_c = t.ck.number(f"{where} `charge_c`", p["charge_c"]) if "charge_c" in p else 0.0
+    if charge_c != 0.0 and not floating:
+        t.ck.fail(
+            f"{where} `charge_c` needs property `floating` = true: a grounded structure is at "
+            "0 V and its charge follows from the field."
+        )
+    size = p.get("mesh_size_m")
+    size = None if size is None else t.ck.number(f"{where} `mesh_size_m`", size, gt=0.0)
+    outline = f.coords_m[:, :2]
+    size = prism_panel_size_m(outline, f.height_m) if size is None else size
+    try:
+        surface = prism_surface(outline, ground, ground + f.height_m, size)
+        return Conductor.mesh(
+            surface,
+            floating=floating,
+            charge_c=charge_c,
+            mesh_size_m=size,
+            name=f.name or f.label,
+        )
+    except InputError as exc:
+        t.ck.fail(f"{f.label}: {exc}")
+
+
+def prism_panel_size_m(outline_m: np.ndarray, height_m: float) -> float:
+    """The automatic largest panel edge of a footprint prism, m: about as many panels as the
+    other kinds' automatic meshes (the right triangles of :func:`prism_surface`, legs
+    ``size / √2``, over the top and walls), and walls of at least two rows.
+
+    Parameters
+    ----------
+    outline_m : (k, 2) float
+        The footprint's outer ring, without its closing position, m.
+    height_m : float
+        The prism's height, m.
+    """
+    ring = shapely.Polygon(outline_m)
+    area_m2 = ring.area + ring.length * height_m
+    return math.sqrt(2.0) * min(math.sqrt(2.0 * area_m2 / _AUTO_PANELS), 0.5 * height_m)
+
+
+def prism_surface(
+    outline_m: np.ndarray, bottom_z_m: float, top_z_m: float, size_m: float
+) -> tuple[np.ndarray, np.ndarray]:
+    """A closed vertical prism over a simple polygon, triangulated to panels of ``size_m``.
+
+    The walls are rows of near-square quads (each ring edge and the height cut into pieces of
+    at most ``size_m / √2``, so a quad's diagonal is at most ``size_m``); the top and the
+    bottom share the ring's nodes, so the surface is watertight, and hold an inner lattice of
+    the same spacing, so their triangles stay well shaped instead of fanning across the
+    footprint. The bottom face is dropped by
+    :class:`Conductor` when it lies on the grounded plane.
+
+    Parameters
+    ----------
+    outline_m : (k, 2) float
+        The outer ring (either orientation, no closing position), m.
+    bottom_z_m, top_z_m : float
+        The prism's bottom and top, m.
+    size_m : float
+        The largest panel edge wanted, m (> 0); the few Delaunay edges along the rim that
+        exceed it are split by :class:`Conductor`.
+
+    Returns
+    -------
+    vertices : (n, 3) float
+        m.
+    faces : (m, 3) int
+        Indices into ``vertices``, counter-clockwise seen from outside.
+    """
+    ring = np.asarray(outline_m, dtype=float)[:, :2]
+    size_m = size_m / math.sqrt(2.0)  # the quads' side
+    if shapely.Polygon(ring).exterior.is_ccw is False:
+        ring = ring[::-1]  # counter-clockwise from above: every face below wound outwards
+    ends = np.roll(ring, -1, axis=0)
+    pieces = np.maximum(1, np.ceil(np.linalg.norm(ends - ring, axis=1) / size_m)).astype(int)
+    t = np.concatenate([np.arange(k) / k for k in pieces])
+    start = np.repeat(np.arange(len(ring)), pieces)
+    nodes = ring[start] + t[:, None] * (ends - ring)[start]
+    n = len(nodes)
+    rows = max(1, math.ceil((top_z_m - bottom_z_m) / size_m))
+    levels = np.linspace(bottom_z_m, top_z_m, rows + 1)
+    walls_v = np.column_stack([np.tile(nodes, (len(levels), 1)), np.repeat(levels, n)])
+    j, i = np.meshgrid(np.arange(len(levels) - 1), np.arange(n), indexing="ij")
+    a, b = (j * n + i).ravel(), (j * n + (i + 1) % n).ravel()
+    walls_f = np.concatenate([np.c_[a, b, b + n], np.c_[a, b + n, a + n]])
+    inner, caps = _cap(nodes, size_m)
+    m, top_row = len(inner), (len(levels) - 1) * n
+    on_ring = caps < n
+    top = np.where(on_ring, caps + top_row, caps - n + len(walls_v))
+    bottom = np.where(on_ring, caps, caps - n + len(walls_v) + m)
+    vertices = np.concatenate(
+        [walls_v, np.c_[inner, np.full(m, top_z_m)], np.c_[inner, np.full(m, bottom_z_m)]]
+    )
+    return vertices, np.concatenate([walls_f, top, bottom[:, ::-1]])
+
+
+def _cap(nodes: np.ndarray, size_m: float) -> tuple[np.ndarray, np.ndarray]:
+    """The footprint's triangles: ``(inner (m, 2), faces (f, 3))``, indices < n the ring's
+    ``nodes (n, 2)`` and n + k the k-th inner point. A Delaunay triangulation of the ring and
+    an inner lattice (points at least half a panel inside), kept inside the polygon; where it
+    misses a ring edge (a deep notch), the constrained triangulation of the ring alone."""
+    poly = shapely.Polygon(nodes)
+    lo, hi = nodes.min(axis=0), nodes.max(axis=0)
+    gx, gy = np.meshgrid(*(np.arange(lo[k] + size_m / 2, hi[k], size_m) for k in range(2)))
+    grid = np.c_[gx.ravel(), gy.ravel()]
+    inside = shapely.contains_xy(poly, grid[:, 0], grid[:, 1])
+    grid = grid[inside]
+    far = shapely.distance(poly.exterior, shapely.points(grid)) >= 0.5 * size_m
+    inner = grid[far]
+    pts = np.concatenate([nodes, inner])
+    faces = scipy.spatial.Delaunay(pts).simplices
+    centre = pts[faces].mean(axis=1)
+    faces = faces[shapely.contains_xy(poly, centre[:, 0], centre[:, 1])]
+    n = len(nodes)
+    edges = {tuple(sorted(e)) for f in faces for e in ((f[0], f[1]), (f[1], f[2]), (f[2], f[0]))}
+    if all(tuple(sorted((k, (k + 1) % n))) in edges for k in range(n)):
+        return inner, _upwards(pts, faces)
+    tris = shapely.get_parts(shapely.constrained_delaunay_triangles(poly))
+    corners = shapely.get_coordinates(tris).reshape(len(tris), 4, 2)[:, :3]
+    index = {tuple(p): k for k, p in enumerate(nodes.tolist())}
+    faces = np.array([[index[tuple(p)] for p in tri.tolist()] for tri in corners])
+    return inner[:0], _upwards(nodes, faces)
+
+
+def _upwards(pts: np.ndarray, faces: np.ndarray) -> np.ndarray:
+    """``faces`` of points ``pts (n, 2)`` each counter-clockwise seen from above."""
+    a, b, c = pts[faces[:, 0]], pts[faces[:, 1]], pts[faces[:, 2]]
+    cross = (b - a)[:, 0] * (c - a)[:, 1] - (b - a)[:, 1] * (c - a)[:, 0]
+    return np.where((cross < 0)[:, None], faces[:, ::-1], faces)
 
 
 def _meter(t: Table, f: MapFeature, ground: float) -> InstalledProbe:

@@ -30,9 +30,13 @@ STRUCTURE_KINDS = tuple(STRUCTURE_KEYS)
 _XYZ = "3 numbers (x, y, z) in metres"
 
 
-def parse_structures(root: Table, ground_z_m: float | None, base: Path, sources=()) -> tuple:
+def parse_structures(
+    root: Table, ground_z_m: float | None, base: Path, sources=(), mapped: tuple = ()
+) -> tuple:
     """The structures in config order, each a :class:`Conductor` (``name`` defaults to
-    ``structure[i]``); ``sources`` (parsed ``SourceSpec``) must stay clear of them."""
+    ``structure[i]``), then ``mapped`` (the prisms of GeoJSON ``structure`` features); all of
+    them are checked against each other, and ``sources`` (parsed ``SourceSpec``) must stay
+    clear of them."""
     out = []
     for t in root.array_of_tables("structure"):
         kind = t.choice("kind", STRUCTURE_KINDS)
@@ -52,9 +56,9 @@ def parse_structures(root: Table, ground_z_m: float | None, base: Path, sources=
             out.append(_make(t, kind, options, base))
         except InputError as exc:  # geometry the kind itself refuses: name the table
             t.ck.fail(f"{t.label}: {exc}")
-    structures = tuple(out)
+    structures = tuple(out) + tuple(mapped)
     if structures:
-        _check_meshes(root, structures, ground_z_m, sources)
+        _check_meshes(root, structures, ground_z_m, sources, len(out))
     return structures
 
 
@@ -86,15 +90,19 @@ def _make(t: Table, kind: str, options: dict, base: Path) -> Conductor:
     return Conductor.mesh(full, **options)
 
 
-def _check_meshes(root: Table, structures: tuple, ground_z_m: float | None, sources) -> None:
-    """Mesh every structure once and check them against each other and the sources."""
+def _check_meshes(
+    root: Table, structures: tuple, ground_z_m: float | None, sources, n_tables: int
+) -> None:
+    """Mesh every structure once and check them against each other and the sources; the
+    first ``n_tables`` are ``[[structure]]`` tables, the rest GeoJSON features."""
     ck = root.ck
     surfaces = []
     for i, c in enumerate(structures):
         try:
             surfaces.append(c.triangles(ground_z_m))
         except InputError as exc:
-            ck.fail(f"structure[{i}]: {exc}")
+            where = f"structure[{i}]" if i < n_tables else f"GeoJSON structure {c.name!r}"
+            ck.fail(f"{where}: {exc}")
     try:
         check_overlaps(structures, surfaces, ground_z_m)
     except InputError as exc:

@@ -9,7 +9,7 @@ region     Polygon, MultiPolygon     a mounting region (each part one region);
            LineString, MultiPoint    a LineString one segment per pair of positions,
                                      a MultiPoint a points region
 keepout    as region                 a keep-out
-structure  Polygon, MultiPolygon     a structure footprint; property ``height_m`` > 0
+structure  Polygon, MultiPolygon     a structure: a prism on its footprint, ``height_m`` > 0
 installed  Point                     an installed meter: ``name``, ``component``, ``grade``
 ========== ========================= ===============================================
 
