@@ -546,7 +546,29 @@ def _changes_text(result: Result) -> Text:
         (len(c.removed_m), "removed"),
     ]
     text.append("  " + ", ".join(f"{n} {what}" for n, what in counts))
+    structures = _structure_changes(c)
+    if structures:
+        text.append("\n  structures: " + structures)
     return text
+
+
+def _structure_changes(c) -> str:
+    """What changed in the conducting structures, one phrase each ("" when not compared)."""
+    if c.structures_shift_m is None:
+        return ""
+    parts = [f"added {name!r}" for name in c.structures_added]
+    parts += [f"removed {name!r}" for name in c.structures_removed]
+    for k, name in enumerate(c.structures_changed):
+        shift = np.asarray(c.structures_shift_m[k], dtype=float)
+        old, new = c.structures_old_size_m[k], c.structures_new_size_m[k]
+        what = []
+        if np.linalg.norm(shift) > 1e-3:
+            what.append("moved by (" + ", ".join(f"{v:.2f}" for v in shift) + ") m")
+        if np.abs(np.asarray(new) - np.asarray(old)).max() > 1e-3:
+            size = " × ".join(f"{v:.2f}" for v in old), " × ".join(f"{v:.2f}" for v in new)
+            what.append(f"resized from {size[0]} m to {size[1]} m")
+        parts.append(f"{name!r} " + " and ".join(what or ["reshaped"]))
+    return "; ".join(parts) or "unchanged"
 
 
 def _changes_table(result: Result) -> Table:

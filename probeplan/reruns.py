@@ -268,7 +268,7 @@ def changes(old, old_path: str, mode: str, config, score):
     ``config`` is the current config as the user wrote it (without the old probes added as
     installed): the old layout is rescored under it to show the criterion before the change.
     """
-    from .result import Changes, compare_layouts
+    from .result import Changes, compare_layouts, compare_structures, stored_structure_boxes
     from .sources import SingularPointError
 
     old_new = new_probes(old)  # (may be none: a result of installed meters alone)
@@ -293,6 +293,12 @@ def changes(old, old_path: str, mode: str, config, score):
             raise InputError(f"{old_path}: {exc}") from None
     radius = max(float(config.probes.min_spacing_m), 0.05 * _site_extent(config.site()))
     parts = compare_layouts(old.score.positions_m, score.positions_m, radius)
+    if getattr(old, "structures", None) is not None or config.structures:
+        new_boxes = {}
+        for c in config.structures:
+            tris = c.triangles(config.ground_z_m)
+            new_boxes[c.name] = np.stack([tris.min(axis=(0, 1)), tris.max(axis=(0, 1))])
+        parts |= compare_structures(stored_structure_boxes(old.structures), new_boxes)
     return Changes(
         old_path=str(old_path),
         mode=mode,

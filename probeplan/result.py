@@ -19,6 +19,50 @@ from .resulttypes import Baseline as Baseline
 from .resulttypes import BudgetTable, Changes, Score, SearchInfo, StructureSurfaces
 
 
+def compare_structures(
+    old: dict[str, np.ndarray], new: dict[str, np.ndarray], tol_m: float = 1e-3
+) -> dict:
+    """Match the conducting structures of two configs by name.
+
+    Parameters
+    ----------
+    old, new : dict of str to (2, 3) float
+        Each structure's bounding box (lowest and highest corner of its panels), m.
+    tol_m : float
+        A corner that moves by more than this counts as a change, m.
+
+    Returns
+    -------
+    dict with the ``structures_*`` fields of :class:`Changes`: names added, removed and
+    changed (in the new config's order), and each changed one's centre shift and sizes
+    before and after ((n_changed, 3) float, m).
+    """
+    both = [n for n in new if n in old]
+    changed = [n for n in both if np.abs(new[n] - old[n]).max() > tol_m]
+    lo_hi = np.array([[old[n], new[n]] for n in changed]).reshape(-1, 2, 2, 3)
+    return {
+        "structures_added": tuple(n for n in new if n not in old),
+        "structures_removed": tuple(n for n in old if n not in new),
+        "structures_changed": tuple(changed),
+        "structures_shift_m": lo_hi[:, 1].mean(axis=1) - lo_hi[:, 0].mean(axis=1),
+        "structures_old_size_m": lo_hi[:, 0, 1] - lo_hi[:, 0, 0],
+        "structures_new_size_m": lo_hi[:, 1, 1] - lo_hi[:, 1, 0],
+    }
+
+
+def stored_structure_boxes(surfaces: StructureSurfaces | None) -> dict[str, np.ndarray]:
+    """Each stored structure's bounding box, ``{name: (2, 3) float}``, m ({} for None)."""
+    if surfaces is None:
+        return {}
+    corners = np.asarray(surfaces.vertices_m)[np.asarray(surfaces.faces)]
+    owner = np.asarray(surfaces.owner)
+    return {
+        name: np.stack([corners[owner == k].min(axis=(0, 1)), corners[owner == k].max(axis=(0, 1))])
+        for k, name in enumerate(surfaces.names)
+        if np.any(owner == k)
+    }
+
+
 def compare_layouts(
     old_m: np.ndarray, new_m: np.ndarray, move_radius_m: float, tol_m: float = 1e-6
 ) -> dict[str, np.ndarray]:

@@ -406,6 +406,15 @@ class Changes:
     rescore_note : str
         Why ``old_rescored`` is NaN when the old layout cannot be scored comparably under the
         current config ("" otherwise).
+    structures_added, structures_removed : tuple of str
+        Names of the conducting structures only the new (old) config has.
+    structures_changed : tuple of n_changed str
+        Names of the structures both have whose extent moved or changed size.
+    structures_shift_m : (n_changed, 3) float or None
+        How far each changed structure's bounding-box centre moved, m (None: not compared,
+        a file written before structures were compared).
+    structures_old_size_m, structures_new_size_m : (n_changed, 3) float or None
+        Each changed structure's bounding-box size before and after, m.
     """
 
     old_path: str
@@ -419,3 +428,9 @@ class Changes:
     removed_m: np.ndarray
     old_criterion: str = ""
     rescore_note: str = ""
+    structures_added: tuple[str, ...] = ()
+    structures_removed: tuple[str, ...] = ()
+    structures_changed: tuple[str, ...] = ()
+    structures_shift_m: np.ndarray | None = None
+    structures_old_size_m: np.ndarray | None = None
+    structures_new_size_m: np.ndarray | None = None

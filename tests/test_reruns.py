@@ -348,3 +348,43 @@ def test_an_internal_value_error_is_a_bug_not_bad_input(
     assert len(lines) == 1, err
     assert lines[0].startswith(f"probeplan {argv[0]}: internal error: ValueError: injected fault")
     assert "PROBEPLAN_DEBUG=1" in lines[0] and "Traceback" not in err
+
+
+def _tank(name: str, x_m: float, radius_m: float = 40.0) -> dict:
+    """A grounded vertical cylinder on the plane (fictional storage tank)."""
+    return {
+        "kind": "cylinder",
+        "name": name,
+        "base_m": [x_m, -1000.0, 0.0],
+        "radius_m": radius_m,
+        "height_m": 20.0,
+    }
+
+
+def test_rerun_reports_what_changed_in_the_structures(site, capsys):
+    write_site(site / "tanks.toml", SITE, structure=[_tank("T1", 1000.0)])
+    write_site(site / "more.toml", SITE, structure=[_tank("T1", 1000.0), _tank("T2", -500.0)])
+    write_site(site / "moved.toml", SITE, structure=[_tank("T1", 1050.0, radius_m=50.0)])
+    assert main(["plan", "tanks.toml", "--out", "old.h5", "--quiet"]) == 0
+    assert main(["score", "more.toml", "--from", "old.h5", "--out", "more.h5"]) == 0
+    ch = read_result("more.h5").changes
+    assert ch.structures_added == ("T2",) and ch.structures_removed == ()
+    assert ch.structures_changed == ()
+    assert "structures: added 'T2'" in capsys.readouterr().out
+    # From the two-tank result back to one tank, moved 50 m east and 10 m wider in radius:
+    # the bounding box's centre moves 50 m along x and its plan size grows by 20 m (to a
+    # fraction of a panel: the boxes are the polygonal meshes', not the circles').
+    assert main(["score", "moved.toml", "--from", "more.h5", "--out", "moved.h5"]) == 0
+    ch = read_result("moved.h5").changes
+    assert ch.structures_added == () and ch.structures_removed == ("T2",)
+    assert ch.structures_changed == ("T1",)
+    np.testing.assert_allclose(ch.structures_shift_m[0], [50.0, 0.0, 0.0], atol=0.5)
+    grown = ch.structures_new_size_m[0] - ch.structures_old_size_m[0]
+    np.testing.assert_allclose(grown, [20.0, 20.0, 0.0], atol=0.5)
+    out = capsys.readouterr().out
+    assert "removed 'T2'" in out and "'T1' moved by (50.00, 0.00, 0.00) m" in out
+    # The same structures again: nothing to report but that they are unchanged.
+    assert main(["score", "moved.toml", "--from", "moved.h5", "--out", "same.h5"]) == 0
+    ch = read_result("same.h5").changes
+    assert ch.structures_added == ch.structures_removed == ch.structures_changed == ()
+    assert "structures: unchanged" in capsys.readouterr().out
