@@ -56,6 +56,7 @@ TARGETS: dict[str, tuple] = {
     "bem_seconds_4000": ("<=", 30.0, "≤ 30"),
     "bem_offsurface_max_rel_err": ("<=", 1e-3, "≤ 1e-3"),
     "bem_mast_axis_max_rel_err": ("<=", 0.02, "≤ 0.02"),
+    "structure_overhead_ratio": ("<=", 2.0, "≤ 2"),
 }
 
 

@@ -24,6 +24,12 @@ bem_mast_axis_max_rel_err
     tip, automatic mesh size. Target ≤ 0.02.
 bem_mast_tip_enhancement
     E_z / E0 at 5 cm above the mast's tip, as computed (reported).
+structure_overhead_ratio
+    Wall time of ``plan()`` on the planning benchmark site (``sites/plan10.toml``) with four
+    grounded structures added (three tanks in the magazine compound, a hangar by the runway,
+    all kept clear of the meters) over the same plan without them, after the factorisation
+    (built once, before the clock starts); the two plans alternate in one run and each keeps
+    its best time. Target ≤ 2.
 """
 
 from __future__ import annotations
@@ -32,7 +38,7 @@ import math
 import time
 
 import numpy as np
-from _common import standalone
+from _common import SITES, standalone
 
 import probeplan as pp
 from probeplan import bem
@@ -106,6 +112,32 @@ def _mast():
     return float(err.max()), float(got[0, 2] / e0), structures.factor.panels.n_panels
 
 
+def _overhead(repeats: int) -> tuple[float, int]:
+    """Best plan time with the structures over best without, and their panel count."""
+    import dataclasses
+
+    from probeplan.config import load_config
+    from probeplan.problem import build_problem
+    from probeplan.search import plan
+
+    config = load_config(SITES / "plan10.toml")
+    tanks = tuple(
+        pp.Conductor.cylinder((x, y, 0.0), 15.0, 12.0, name=f"tank {k}")
+        for k, (x, y) in enumerate([(-7000.0, -5000.0), (-6700.0, -4500.0), (-6500.0, -5200.0)])
+    )
+    hangar = pp.Conductor.box((-1000.0, 600.0, 0.0), (-900.0, 700.0, 15.0), name="hangar")
+    with_structures = build_problem(dataclasses.replace(config, structures=(*tanks, hangar)))
+    bare = build_problem(config)
+    best = {"bare": math.inf, "with": math.inf}
+    for _ in range(repeats):
+        for name, problem in (("bare", bare), ("with", with_structures)):
+            t = time.perf_counter()
+            plan(problem)
+            best[name] = min(best[name], time.perf_counter() - t)
+    panels = with_structures.scene.structures.factor.panels.n_panels
+    return best["with"] / best["bare"], panels
+
+
 def run(quick: bool = False) -> dict:
     """Measure the figures (``quick``: one timed build instead of two)."""
     radius = 1.0
@@ -117,7 +149,9 @@ def run(quick: bool = False) -> dict:
     n = structures.factor.panels.n_panels
     err, h = _offsurface_errors(structures, radius)
     mast_err, tip, mast_panels = _mast()
+    overhead, overhead_panels = _overhead(1 if quick else 2)
     return {
+        "structure_overhead_ratio": round(overhead, 3),
         "bem_seconds_4000": round(min(times), 2),
         "bem_panels_4000": n,
         "bem_offsurface_max_rel_err": err,
@@ -127,6 +161,10 @@ def run(quick: bool = False) -> dict:
             "bem_seconds_4000": f"hemispherical boss, {n} panels, mesh + assemble + LU, no cache",
             "bem_offsurface_max_rel_err": (
                 f"Kelvin image and uniform field, 800 points ≥ 2 panel sizes ({2 * h:.3f} m) off"
+            ),
+            "structure_overhead_ratio": (
+                f"plan10 site, 4 structures ({overhead_panels} panels) over none, after the "
+                "factorisation"
             ),
             "bem_mast_axis_max_rel_err": (
                 f"0.1 m × 6 m half-spheroid mast, {mast_panels} panels (automatic size), "
