@@ -420,6 +420,7 @@ def cmd_simulate(args: argparse.Namespace, written: list[Path]) -> int:
 
 def cmd_plot(args: argparse.Namespace, written: list[Path]) -> int:
     """``probeplan plot``: site map, coverage map and budget curve of a stored result."""
+    from .enhancement_map import add_enhancement_map
     from .plots import plot_all
     from .store import read_result
 
@@ -436,6 +437,7 @@ def cmd_plot(args: argparse.Namespace, written: list[Path]) -> int:
     # Each image is written whole; signals wait until the set is written and recorded.
     with signals_deferred():
         paths = plot_all(result, config, problem, folder, fmt=args.fmt)
+        add_enhancement_map(paths, result, problem, folder, fmt=args.fmt)
         written.extend(paths)
     report.print_plots(paths)
     return EXIT_OK

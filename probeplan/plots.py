@@ -223,10 +223,7 @@ def site_map(config, result_or_score, path) -> Path:
         handles.append(
             Patch(facecolor="none", edgecolor=_KEEPOUT_EDGE, hatch="xx", label="keep-out")
         )
-    for c in getattr(config, "structures", ()):  # grey footprints, as steel seen from above
-        xy = c.triangles(config.ground_z_m)[..., :2].reshape(-1, 2)
-        face = "none" if c.kind == "enclosure" else "0.55"  # a room: its walls only
-        _draw_geometry(ax, shapely.MultiPoint(xy).convex_hull, scale, face=face, edge="k")
+    _draw_structures(ax, config, scale)
     spread = _scenario_xy(config, score)
     if spread is not None and len(spread) > 1:
         ax.plot(spread[:, 0] / scale, spread[:, 1] / scale, ".", color=_SOURCE, alpha=0.25, ms=4)
@@ -238,12 +235,7 @@ def site_map(config, result_or_score, path) -> Path:
         Line2D([], [], ls="", marker="*", color=_SOURCE, ms=12, label="charge (nominal)")
     )
     handles += _draw_probes(ax, pos, installed, scale, names)
-    ax.set_xlim(x0 / scale, x1 / scale)
-    ax.set_ylim(y0 / scale, y1 / scale)
-    ax.set_aspect("equal")
-    _axis_labels(ax, config, unit)
-    if getattr(config, "frame", None) is not None:
-        _map_furniture(ax)
+    _finish_map(ax, config, (x0, y0, x1, y1), scale, unit)
     _title(ax, config.title, f"site map: {int((~installed).sum())} new meter(s)")
     shadow = "Walls and 3-D keep-outs are drawn as their shadows on the ground plan."
     _legend_and_caption(fig, handles, f"{shadow}\n{_height_caption(pos)}{SIGN_CAPTION}")
@@ -314,12 +306,7 @@ def _coverage_figure(problem, positions_m, gain, resolution, *, axes, grades, na
     if names is None:
         names = meter_names(config, None, meters.installed)
     handles = _draw_probes(ax, meters.positions_m, meters.installed, scale, names)
-    ax.set_xlim(cov.x_m[0] / scale, cov.x_m[-1] / scale)
-    ax.set_ylim(cov.y_m[0] / scale, cov.y_m[-1] / scale)
-    ax.set_aspect("equal")
-    _axis_labels(ax, config, unit)
-    if getattr(config, "frame", None) is not None:
-        _map_furniture(ax)
+    _finish_map(ax, config, (cov.x_m[0], cov.y_m[0], cov.x_m[-1], cov.y_m[-1]), scale, unit)
     _title(ax, config.title, "coverage: where a charge is located how well")
     grey = "grey: not resolvable" if finite.size else "grey: no point here is resolvable"
     note = (
@@ -665,6 +652,17 @@ def _draw_keepouts(ax, keepouts, scale: float, fill: bool = True) -> bool:
     return bool(keepouts)
 
 
+def _draw_structures(ax, config, scale: float, face="0.55", named: bool = False) -> None:
+    """Footprints (grey, as steel seen from above; a room: its walls only), named if asked."""
+    for k, c in enumerate(getattr(config, "structures", ())):
+        xy = c.triangles(config.ground_z_m)[..., :2].reshape(-1, 2)
+        hull = shapely.MultiPoint(xy).convex_hull
+        _draw_geometry(ax, hull, scale, face="none" if c.kind == "enclosure" else face, edge="k")
+        if named:
+            xy = np.asarray(hull.centroid.coords[0]) / scale
+            label_keepout(ax, xy, getattr(c, "name", "") or f"structure {k}", "k")
+
+
 def _draw_probes(ax, pos: np.ndarray, installed: np.ndarray, scale: float, names=None) -> list:
     """The meters as markers, each labelled with its name (and its height when they differ)."""
     handles = []
@@ -672,18 +670,8 @@ def _draw_probes(ax, pos: np.ndarray, installed: np.ndarray, scale: float, names
         label_meters(ax, pos, names, scale)
     for mask, style in ((installed, _INSTALLED), (~installed, _NEW)):
         if mask.any():
-            (h,) = ax.plot(
-                pos[mask, 0] / scale,
-                pos[mask, 1] / scale,
-                ls="",
-                marker=style["marker"],
-                color=style["color"],
-                ms=style["ms"],
-                mec="black",
-                mew=0.6,
-                label=style["label"],
-                zorder=5,
-            )
+            xy = pos[mask, :2].T / scale
+            (h,) = ax.plot(*xy, ls="", mec="black", mew=0.6, zorder=5, **style)
             handles.append(h)
     return handles
 
@@ -755,6 +743,16 @@ def _scale(x0, y0, x1, y1, config=None) -> tuple[float, str]:
     """Kilometres for wide sites and for every site on a map (a ``[frame]``), else metres."""
     on_map = getattr(config, "frame", None) is not None
     return (1000.0, "km") if on_map or max(x1 - x0, y1 - y0) >= KM_SPAN_M else (1.0, "m")
+
+
+def _finish_map(ax, config, box_m, scale: float, unit: str) -> None:
+    """Limits ``box_m`` = (x0, y0, x1, y1) in m, equal aspect, axis labels, map furniture."""
+    ax.set_xlim(box_m[0] / scale, box_m[2] / scale)
+    ax.set_ylim(box_m[1] / scale, box_m[3] / scale)
+    ax.set_aspect("equal")
+    _axis_labels(ax, config, unit)
+    if getattr(config, "frame", None) is not None:
+        _map_furniture(ax)
 
 
 def _axis_labels(ax, config, unit: str) -> None:
