@@ -96,20 +96,23 @@ def enhancement_map(problem, score, path, names=None) -> Path:
     fig, ax = _figure()
     lo, hi = float(value.min()), float(value.max())
     reach = max(hi, 1.0 / lo if lo > 0 else np.inf)
-    if lo > 0 and reach > LOG_FACTOR:  # a wide range: symmetric in log about 1
+    log = lo > 0 and reach > LOG_FACTOR
+    if log:  # a wide range: symmetric in log about 1
         norm = LogNorm(vmin=1.0 / reach, vmax=reach)
         ticks = colorbar_ticks(1.0 / reach, reach)
     else:
         d = max(abs(hi - 1.0), abs(1.0 - lo), 1e-3)
         norm = Normalize(vmin=1.0 - d, vmax=1.0 + d)
         ticks = np.array([1.0 - d, 1.0, 1.0 + d])
+    # Enough decimals that 1 - d, 1 and 1 + d read apart ("0.999, 1.000, 1.001", not "1, 1").
+    decimals = int(np.clip(np.ceil(-np.log10(min(d, 1.0))), 2, 6)) if not log else 0
     dots = ax.scatter(
         pts[:, 0] / scale, pts[:, 1] / scale, c=value, s=30, cmap="RdBu_r", norm=norm, lw=0
     )
     bar = fig.colorbar(dots, ax=ax, shrink=0.85)
     bar.set_label("enhancement: reading with the structures / undisturbed reading")
     bar.locator = FixedLocator(ticks)
-    bar.formatter = FixedFormatter([f"{v:.3g}" for v in ticks])
+    bar.formatter = FixedFormatter([f"{v:.3g}" if log else f"{v:.{decimals}f}" for v in ticks])
     bar.minorformatter = NullFormatter()
     _draw_structures(ax, config, scale, face="none", named=True)
     if names is None:
