@@ -45,17 +45,18 @@ def main(argv: list[str] | None = None) -> int:
     notes: dict = {}
     timing: dict = {}
     failed: list[str] = []
+    # (name, runner, its main figures, in --quick too); the regional case takes minutes even
+    # scaled down, so the quick run leaves it to `python benchmarks/regional.py --quick`.
     benches = [
-        ("forward", forward.run, ("forward_bandwidth_ratio",)),
-        ("score", score.run, ("score_layouts_per_s",)),
-        ("plan", plan.run, ("plan_d_efficiency_vs_bound", "plan_seconds")),
-        ("structures", structures.run, ("bem_seconds_4000", "bem_offsurface_max_rel_err")),
-        ("regional", regional.run, ("plan_regional_seconds", "plan_regional_peak_gb")),
+        ("forward", forward.run, ("forward_bandwidth_ratio",), True),
+        ("score", score.run, ("score_layouts_per_s",), True),
+        ("plan", plan.run, ("plan_d_efficiency_vs_bound", "plan_seconds"), True),
+        ("structures", structures.run, ("bem_seconds_4000", "bem_offsurface_max_rel_err"), True),
+        ("regional", regional.run, ("plan_regional_seconds", "plan_regional_peak_gb"), False),
     ]
-    for name, runner, main_keys in benches:
-        if args.quick and name == "regional":
-            # Minutes even scaled down: the quick run stays under five; run regional.py alone.
-            notes["plan_regional_seconds"] = "not in --quick: python benchmarks/regional.py --quick"
+    for name, runner, main_keys, in_quick in benches:
+        if args.quick and not in_quick:
+            notes[main_keys[0]] = f"not in --quick: python benchmarks/{name}.py --quick"
             continue
         t = time.perf_counter()
         print(f"running {name} benchmark …", file=sys.stderr, flush=True)
