@@ -257,7 +257,8 @@ def _layout_table(result: Result) -> Table:
     pos = np.asarray(s.positions_m, dtype=float)
     installed = np.asarray(s.installed, dtype=bool)
     names = probe_names(result)
-    dec = _coordinate_decimals(pos)
+    # Heights to their own scale: a meter 12.3 m up a mast on a 10 km site is not at "12".
+    dec = (_coordinate_decimals(pos[:, :2]),) * 2 + (_coordinate_decimals(pos[:, 2:]),)
     n_inst = int(installed.sum())
     title = f"Layout: {n_inst} installed + {installed.size - n_inst} new probes"
     table = _table(title, pad_edge=False)
@@ -277,7 +278,7 @@ def _layout_table(result: Result) -> Table:
             table,
             names[k],
             "installed" if installed[k] else "new",
-            *(f"{pos[k, j]:.{dec}f}" for j in range(3)),
+            *(f"{pos[k, j]:.{dec[j]}f}" for j in range(3)),
             format_number(float(s.gain[k])),
             *([] if enh is None else [format_number(float(enh[k]))]),
             f"{100.0 * sat:.0f} %" if math.isfinite(sat) else "n/a",

@@ -697,3 +697,15 @@ def test_rule_notes_name_probes_as_the_table_does(tmp_path, capsys, header, rows
     assert f"probe '{outside}' at (16430, 0, 0) m lies outside every mounting region" in out
     assert "14.4 km away" in out  # 16.43 km from a region ending at 2 km: not 1.44e+04 m
     assert "counted from 0" not in out and "probe 1 " not in out
+
+
+def test_heights_are_shown_to_their_own_scale_not_the_sites():
+    # A meter 0.3 m above a 12 m mast tip on a site kilometres wide: the layout table keeps
+    # its height (12.30 m), which horizontal rounding to whole metres would turn into "12".
+    r = make_result(np.random.default_rng(5))
+    pos = np.array(r.score.positions_m, dtype=float)
+    pos[:, :2] = np.linspace(-6000.0, 6000.0, 2 * pos.shape[0]).reshape(-1, 2)
+    pos[:, 2] = 0.0
+    pos[0, 2] = 12.3
+    out = render(dataclasses.replace(r, score=dataclasses.replace(r.score, positions_m=pos)))
+    assert "12.30" in out and " 12 " not in out
