@@ -19,7 +19,7 @@ from multiprocessing.managers import SyncManager
 import numpy as np
 
 from .config import parse_config
-from .errors import InputError, helper_process_init
+from .errors import InputError, helper_context, helper_process_init
 from .problem import build_problem
 from .resulttypes import BudgetTable
 from .search import plan
@@ -198,12 +198,15 @@ def run_budget(
     workers = max(1, min(len(grades), os.cpu_count() or 1))
     if own and workers > 1:
         executor = ProcessPoolExecutor(
-            max_workers=workers, initializer=helper_process_init, initargs=(os.getpid(),)
+            max_workers=workers,
+            mp_context=helper_context(),
+            initializer=helper_process_init,
+            initargs=(os.getpid(),),
         )
     manager = None
     if event is None:
         if own and executor is not None:
-            manager = SyncManager()
+            manager = SyncManager(ctx=helper_context())
             manager.start(helper_process_init, (os.getpid(),))
         event = manager.Event() if manager is not None else _LocalEvent()
     results: list[OptionPlan] = [o for o in done if o.grade in grades and o.count in counts]

@@ -41,6 +41,17 @@ def raise_interrupt(signum, frame) -> None:
 PARENT_POLL_S = 0.5
 
 
+def helper_context():
+    """The multiprocessing context of a command's helper processes: "spawn", fresh
+    interpreters. A process that has run compiled parallel loops (numba's OpenMP threads)
+    cannot safely fork — the GNU OpenMP runtime ends the child ("fork() called from a process
+    already using GNU OpenMP") — and the search runs such loops before a budget or a locate
+    starts its helpers."""
+    import multiprocessing
+
+    return multiprocessing.get_context("spawn")
+
+
 def helper_process_init(parent_pid: int) -> None:
     """Initialiser of a command's helper processes (worker pools, a stop flag's manager).
 

@@ -57,7 +57,7 @@ from typing import NamedTuple
 import numpy as np
 from scipy import stats
 
-from .errors import InputError, helper_process_init
+from .errors import InputError, helper_context, helper_process_init
 from .fisher import covariance, fisher_from_rows
 from .fit import ReadingFit, fit_bounds, inside
 from .probes import Meters, readings, whitened_rows
@@ -468,6 +468,7 @@ def _run_chunks(tasks, workers: int, executor, progress, sizes) -> list:
     if own:
         executor = ProcessPoolExecutor(
             max_workers=min(workers, len(tasks)),
+            mp_context=helper_context(),
             initializer=helper_process_init,
             initargs=(os.getpid(),),
         )

@@ -9,11 +9,13 @@ every step of :func:`relaxation_steps` is valid, however early the solver stops.
 
 from __future__ import annotations
 
+import functools
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 
 import numpy as np
 
+from .forms import quadratic_sums
 from .grid import candidate_chunks, drain
 
 #: Stop the relaxation when its certified gap is below this (in log det units, per parameter).
@@ -69,19 +71,26 @@ def _relaxed(
     """
     n_s, n_c, n_a, n_p = rows.shape
     m = base.copy()
-    for sl in candidate_chunks(rows):
-        r = rows[:, sl].reshape(n_s, -1, n_p)  # (S, c·a, p)
-        wr = r * np.repeat(w[sl], n_a)[None, :, None]
+    # Only the candidates with weight add to M: after the first steps a small support.
+    nz = np.flatnonzero(w)
+    for sl in candidate_chunks(rows[:, : nz.size]):
+        r = rows[:, nz[sl]].reshape(n_s, -1, n_p)  # (S, c·a, p)
+        wr = r * np.repeat(w[nz[sl]], n_a)[None, :, None]
         m += np.matmul(np.swapaxes(wr, -1, -2), r)
     sign, ld = np.linalg.slogdet(m)
     if np.any(sign <= 0):
         return -np.inf, None
-    minv = np.linalg.inv(m)
-    grad = np.empty(n_c)
-    for sl in candidate_chunks(rows):
-        r = rows[:, sl].reshape(n_s, -1, n_p)
-        q = np.einsum("sip,sip->i", np.matmul(r, minv), r)  # Σ_s, (c·a,)
-        grad[sl] = q.reshape(-1, n_a).sum(axis=1) / n_s
+    # tr(M⁻¹ A_c) = |L⁻¹ R_cᵀ|² with M = L Lᵀ: one compiled pass (or, where M is too
+    # ill-conditioned for Cholesky in floating point, products with M⁻¹ itself).
+    grad = quadratic_sums(rows, m)
+    if grad is None:
+        minv = np.linalg.inv(m)
+        grad = np.empty(n_c)
+        for sl in candidate_chunks(rows):
+            r = rows[:, sl].reshape(n_s, -1, n_p)
+            q = np.einsum("sip,sip->i", np.matmul(r, minv), r)  # Σ_s, (c·a,)
+            grad[sl] = q.reshape(-1, n_a).sum(axis=1)
+    grad /= n_s
     if penalty is not None:  # the Lagrangian f(w) − μ·w of the spacing rule
         return float(ld.mean()) - float(penalty @ w), grad - penalty
     return float(ld.mean()), grad
@@ -113,6 +122,8 @@ def relaxation_steps(
     positions_m: np.ndarray | None = None,
     min_spacing_m: float = 0.0,
     installed_m: np.ndarray | None = None,
+    start: np.ndarray | None = None,
+    plan_value: float | None = None,
 ) -> Iterator[Relaxation]:
     """Upper bound on the D-criterion (mean log det) over candidate subsets, by projected
     gradient ascent on the relaxation, one objective evaluation a step.
@@ -135,6 +146,13 @@ def relaxation_steps(
         No two probes closer than this (m); 0: no rule.
     installed_m : (n_installed, 3) float or None
         Installed probes: a candidate closer than the spacing to one has a cap of 0.
+    start : (count,) int or None
+        Candidates of a good layout (the search's), where the ascent starts: on a large grid
+        far fewer steps than from equal weights everywhere. Any start gives a valid bound.
+    plan_value : float or None
+        The value of the search's layout: the gap need then only be small against the
+        distance from it to the bound (:func:`_needed_gap`), which is what the certificate
+        is read against.
 
     Yields
     ------
@@ -151,6 +169,15 @@ def relaxation_steps(
     if upper is not None:
         w = _project_capped_simplex(w, count, upper)
     f, g = _relaxed(w, rows, base)
+    if start is not None and g is not None and start.size == count:
+        # The layout's weights, moved a little towards equal ones so that the first full
+        # gradient sees every candidate; kept only when at least as good.
+        w_s = np.zeros(n_c)
+        w_s[start] = 1.0
+        w_s = _project_capped_simplex(0.9 * w_s + 0.1 * w, count, 1.0 if upper is None else upper)
+        f_s, g_s = _relaxed(w_s, rows, base)
+        if g_s is not None and f_s >= f:
+            w, f, g = w_s, f_s, g_s
     if g is None:
         # Singular with every candidate at equal weight: then Σ_c A_c is singular and so is
         # every subset's information (it is dominated by a multiple of that sum); the best any
@@ -158,13 +185,31 @@ def relaxation_steps(
         yield Relaxation(bound=-np.inf, value=-np.inf, gap=0.0, weights=w, iterations=0)
         return
     best = None
-    for f_k, gap, w_k, it in _ascent(rows, base, count, w, f, g, max_iter, gap_tol, upper):
+    needed = gap_tol
+    if plan_value is not None:
+        needed = functools.partial(_needed_gap, plan_value=plan_value, gap_tol=gap_tol)
+    for f_k, gap, w_k, it in _ascent(rows, base, count, w, f, g, max_iter, needed, upper):
         best = _certificate(f_k, gap, w_k, it)
         yield best
+    if plan_value is not None:
+        gap_tol = _needed_gap(best.bound, plan_value, gap_tol)
     if positions_m is not None and min_spacing_m > 0:
         yield from spacing_steps(
             rows, base, count, best, positions_m, min_spacing_m, upper, gap_tol
         )
+
+
+#: The gap a bound is computed to, as a fraction of its distance to the plan's value: the
+#: D-efficiency read from it is then known to a few per cent of its own distance from 1.
+BOUND_GAP_FRACTION = 0.02
+
+
+def _needed_gap(bound: float, plan_value: float, gap_tol: float) -> float:
+    """The gap at which the relaxation may stop: ``gap_tol``, or a fraction
+    (:data:`BOUND_GAP_FRACTION`) of the bound's distance to the plan when that is more."""
+    if not (np.isfinite(bound) and np.isfinite(plan_value)):
+        return gap_tol
+    return max(gap_tol, BOUND_GAP_FRACTION * (bound - plan_value))
 
 
 def _caps(positions_m, min_spacing_m, installed_m) -> np.ndarray | None:
@@ -251,39 +296,127 @@ def spacing_steps(
         yield best
 
 
+#: Candidates at most for which the ascent runs on the whole grid; above it, on a working set.
+WORKING_SET_MIN = 4096
+#: A working set's ascent stops at this fraction of the whole grid's last gap.
+WORKING_SET_TOL = 0.05
+
+
 def _ascent(rows, base, count, w, f, g, max_iter, gap_tol, upper=None, penalty=None):
-    """Backtracking projected gradient ascent on the relaxation of ``rows`` from ``w`` (with
-    f(w), ∇f(w) given): yields (f, gap, w, iterations) of the best weights after every
-    evaluation."""
+    """Projected gradient ascent on the relaxation from ``w`` (with f(w), ∇f(w) given): yields
+    (f, gap, w, iterations) of the best certified weights after every evaluation.
+
+    On a large grid the weights of the optimum sit on few candidates, so the ascent runs on a
+    working set (column generation): the candidates with weight and those whose gradient is
+    largest. Weights off the set are 0, so f on the set is f on the grid; one pass over the
+    whole grid then gives the full gradient and the Frank–Wolfe gap that certifies the bound,
+    and the set grows by the candidates that gap points to until it closes. Every yield is a
+    certificate of the whole grid (the last full pass's).
+    """
+    n_c = rows.shape[1]
+    if not callable(gap_tol):
+        gap_tol = functools.partial(_fixed, gap_tol)
+    if n_c <= WORKING_SET_MIN:
+        yield from _plain_ascent(rows, base, count, w, f, g, max_iter, gap_tol, upper, penalty)
+        return
+    gap = _fw_gap(w, g, count, upper)
+    best = (f, gap, w)  # the smallest certified bound f + gap so far
+    yield f, gap, w, 0
+    it, size = 0, max(WORKING_SET_MIN // 4, 8 * count)
+    while it < max_iter and gap > gap_tol(best[0] + best[1]):
+        g_eff = g if upper is None else np.where(upper > 0, g, -np.inf)
+        ws = np.zeros(n_c, dtype=bool)
+        ws[np.argsort(-g_eff, kind="stable")[:size]] = True
+        if np.count_nonzero(w) <= n_c // 2:  # not the first round's weights, spread over all
+            ws[w > 0] = True
+        idx = np.flatnonzero(ws)
+        sub = np.ascontiguousarray(rows[:, idx])
+        cap = 1.0 if upper is None else upper[idx]
+        pen = None if penalty is None else penalty[idx]
+        start = w[idx] * (count / max(w[idx].sum(), 1e-300))
+        start = _project_capped_simplex(start, count, cap)
+        f_s, g_s = _relaxed(start, sub, base, pen)
+        if g_s is None:  # the set cannot resolve every direction yet: a larger one
+            size *= 2
+            if size >= n_c:
+                break
+            continue
+        # Solved on the set only as far as the whole grid's gap warrants: the next full pass
+        # may well change the set again.
+        tol = max(0.5 * gap_tol(best[0] + best[1]), WORKING_SET_TOL * gap)
+        inner = _plain_ascent(sub, base, count, start, f_s, g_s, max_iter - it, tol, cap, pen)
+        w_s, k = start, 0
+        for _, _, w_s, k in inner:  # noqa: B007 - the last step is the result
+            yield *best, it
+        w = np.zeros(n_c)
+        w[idx] = w_s
+        f, g = _relaxed(w, rows, base, penalty)
+        it += max(k, 1)
+        if g is None:
+            return
+        gap = _fw_gap(w, g, count, upper)
+        if f + gap <= best[0] + best[1]:
+            best = (f, gap, w)
+        yield *best, it
+    if gap > gap_tol(f + gap) and it < max_iter:  # the sets did not close it: the whole grid
+        yield from _plain_ascent(rows, base, count, w, f, g, max_iter - it, gap_tol, upper, penalty)
+
+
+def _fixed(tol: float, bound: float) -> float:
+    """A gap tolerance that does not depend on the bound."""
+    return tol
+
+
+#: Values remembered by the non-monotone line search of :func:`_plain_ascent`.
+NONMONOTONE_MEMORY = 1
+
+
+def _plain_ascent(rows, base, count, w, f, g, max_iter, gap_tol, upper=None, penalty=None):
+    """Spectral projected gradient ascent on the relaxation of ``rows`` from ``w`` (with
+    f(w), ∇f(w) given): yields (f, gap, w, iterations) of the weights with the smallest
+    certified bound so far after every evaluation.
+
+    The trial step is the Barzilai–Borwein step (s·s)/(−s·y) of the last move, and a trial
+    is taken when it gains on the smallest of the last :data:`NONMONOTONE_MEMORY` values
+    (the non-monotone line search of the spectral projected gradient method: Birgin, Martínez
+    & Raydan, SIAM J. Optim. 10(4), 2000; Grippo, Lampariello & Lucidi 1986): far fewer
+    rejected trials than a monotone search on these ill-conditioned relaxations.
+    """
+    from collections import deque
+
     step = 1.0 / max(np.abs(g).max(), 1e-300)
     gap = _fw_gap(w, g, count, upper)
+    best = (f, gap, w)
+    recent = deque([f], maxlen=NONMONOTONE_MEMORY)
+    cap = 1.0 if upper is None else upper
+    if not callable(gap_tol):
+        gap_tol = functools.partial(_fixed, gap_tol)
     it = 0
     yield f, gap, w, it
-    while it < max_iter and gap > gap_tol:
+    while it < max_iter and gap > gap_tol(best[0] + best[1]):
         it += 1
-        # Backtracking projected gradient ascent, with the step allowed to grow again.
+        # Backtracking along the projection arc, with the step allowed to grow again.
         while True:
-            cap = 1.0 if upper is None else upper
             w_new = _project_capped_simplex(w + step * g, count, cap)
             f_new, g_new = _relaxed(w_new, rows, base, penalty)
-            if f_new >= f + 1e-4 * g @ (w_new - w) and np.isfinite(f_new):
+            if np.isfinite(f_new) and f_new >= min(recent) + 1e-4 * g @ (w_new - w):
                 break
             step *= 0.5
             if step < 1e-300:
                 break
-            yield f, gap, w, it - 1  # a rejected trial: w is still the best
+            yield *best, it - 1  # a rejected trial
         if g_new is None:
-            yield f, gap, w, it
+            yield *best, it
             return
-        # Next trial step: the Barzilai–Borwein step (s·s)/(−s·y) of the last move (spectral
-        # projected gradient, Birgin, Martínez & Raydan, SIAM J. Optim. 10(4), 2000), which
-        # follows the curvature along the way; doubled when the move shows no curvature.
         s_w, y_g = w_new - w, g_new - g
         curv = -float(s_w @ y_g)
         step = float(s_w @ s_w) / curv if curv > 0 else 2.0 * step
         w, f, g = w_new, f_new, g_new
+        recent.append(f)
         gap = _fw_gap(w, g, count, upper)
-        yield f, gap, w, it
+        if f + gap < best[0] + best[1]:
+            best = (f, gap, w)
+        yield *best, it
 
 
 def relaxation_bound(*args, stop: Callable[[], bool] | None = None, **kwargs) -> Relaxation:

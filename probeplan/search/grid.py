@@ -7,6 +7,7 @@ The two grid stages of the search are generators of their steps (:func:`greedy_s
 
 from __future__ import annotations
 
+import itertools
 from collections.abc import Callable, Iterator
 
 import numpy as np
@@ -14,6 +15,7 @@ import numpy as np
 from ..errors import InputError
 from ..fisher import aggregate
 from ..problem import Problem
+from .forms import Forms, addition_terms, pick, quadratic, removal_terms
 
 #: Prior information, as a fraction of the mean diagonal of one candidate's information,
 #: that keeps log det finite while the greedy set is still too small to resolve everything.
@@ -59,7 +61,22 @@ class GridObjective:
             base = base + scale[:, :, None] * np.eye(problem.n_params)
         self.base = base
         self.robust = robust
-        self._full = None  # (chosen bytes, M⁻¹ᵀ, Q): the exchange's sweep of a full set
+        # The quadratic forms Q_c = R_c M⁻¹ R_cᵀ of the last set swept, kept so that the
+        # exchange's tries and swaps are rank-a updates of them (see forms.Forms).
+        self._forms: Forms | None = None
+
+    def subset(self, idx: np.ndarray) -> GridObjective:
+        """The same objective (prior, fixed probes, rule) on the candidates ``idx (n,) int``
+        only: a thinned grid of :func:`_levels`."""
+        sub = GridObjective(
+            self.problem,
+            self.rows[:, idx],
+            prior=False,
+            robust=self.robust,
+            fixed_info=self.fixed_info,
+        )
+        sub.base = self.base
+        return sub
 
     @property
     def info(self) -> np.ndarray:
@@ -74,7 +91,9 @@ class GridObjective:
 
     def matrix(self, chosen: np.ndarray) -> np.ndarray:
         """M_s of a candidate set: ``(k,) int`` → ``(n_scenarios, p, p)``."""
-        return self.base + self.info_of(chosen).sum(axis=1)
+        n_s, _, _, n_p = self.rows.shape
+        r = self.rows[:, chosen].reshape(n_s, -1, n_p)  # (S, k·a, p)
+        return self.base + np.matmul(np.swapaxes(r, -1, -2), r)
 
     def _losses(self, chosen: np.ndarray) -> list[np.ndarray]:
         """M_s of the set with each one probe (fixed or chosen) lost."""
@@ -136,7 +155,7 @@ class GridObjective:
     def _add_chunk(self, rows: np.ndarray, minv_t: np.ndarray, ld0) -> np.ndarray:
         """:meth:`add_values` of the candidates of ``rows (S, c, a, p)``, ``(c,)``."""
         p = self.problem
-        u, small = _quadratic(rows, minv_t)
+        u, small = quadratic(rows, minv_t)
         small += np.eye(rows.shape[2])
         if ld0 is not None:
             return self._d_values(ld0, small)
@@ -162,58 +181,119 @@ class GridObjective:
             per = np.where(sign_c > 0, ld0 + ld, -np.inf)  # (S, c)
         return aggregate(per.T, p.aggregate, p.criterion.maximise)
 
+    @property
+    def _fast_d(self) -> bool:
+        """The D-criterion without the robust rule: sweeps by the quadratic forms of
+        :mod:`~probeplan.search.forms`, their rank-a updates and pruned picks."""
+        return not self.robust and self.problem.criterion.name == "d"
+
+    def _forms_of(self, chosen: np.ndarray) -> Forms:
+        """The forms of ``chosen``: the cached ones (the exchange's :meth:`accept` keeps
+        them one swap ahead) or a sweep of the rows from M⁻¹.
+
+        The greedy sweeps from M⁻¹ at every pick: early on M is the tiny prior in most
+        directions, and updates of forms as large as 1/prior lose every digit.
+        """
+        f = self._forms
+        if f is None or f.key != chosen.tobytes():
+            f = self._forms = Forms.of(self.rows, chosen, self.matrix(chosen), candidate_chunks)
+        return f
+
+    def best_addition(self, chosen: np.ndarray, allowed: np.ndarray) -> tuple[int, float]:
+        """The allowed candidate whose addition to ``chosen (k,) int`` is best, and the
+        value then: ``(c, value)``, ``c = -1`` when none is allowed. The greedy's step: the
+        same choice as :meth:`candidate_values` followed by :func:`_best` (first on ties)."""
+        if not self._fast_d:
+            return self._best_of(self.candidate_values(chosen), allowed)
+        f = self._forms_of(chosen)
+        return pick(*addition_terms(f), allowed, self.problem.aggregate)
+
+    def _best_of(self, vals: np.ndarray, allowed: np.ndarray) -> tuple[int, float]:
+        c = _best(vals, allowed, self.problem.criterion.maximise)
+        return c, float(vals[c]) if c >= 0 else float("nan")
+
     def removal_values(self, chosen: np.ndarray, i: int) -> np.ndarray:
         """:meth:`candidate_values` of ``chosen`` without its i-th probe, ``(C,)``: the
-        exchange's sweep.
-
-        For ``d`` (not robust) by a rank-a downdate of the full set's quadratic forms
-        Q_c = R_c M⁻¹ R_cᵀ, kept while ``chosen`` is unchanged (Sherman–Morrison–Woodbury):
-        with M' = M − R_iᵀ R_i, R_c M'⁻¹ R_cᵀ = Q_c + B_c (I − P_i)⁻¹ B_cᵀ, B_c = R_c M⁻¹
-        R_iᵀ, P_i = R_i M⁻¹ R_iᵀ: one matrix–vector product per scenario instead of a
-        matrix product, p/a times fewer flops. Where I − P_i is ill-conditioned (probe i
-        carries almost all of some direction) the sweep is recomputed from M' directly.
-        """
-        rest = np.delete(chosen, i)
-        if self.robust or self.problem.criterion.name != "d":
-            return self.candidate_values(rest)
-        key = chosen.tobytes()
-        if self._full is None or self._full[0] != key:
-            m = self.matrix(chosen)
-            minv_t = np.swapaxes(np.linalg.inv(m), -1, -2)
-            q = np.empty((*self.rows.shape[:2], self.rows.shape[2], self.rows.shape[2]))
-            for sl in candidate_chunks(self.rows):
-                q[:, sl] = _quadratic(self.rows[:, sl], minv_t)[1]
-            self._full = (key, minv_t, q)
-        _, minv_t, q = self._full
-        r_i = self.rows[:, chosen[i]]  # (S, a, p)
-        h = np.matmul(minv_t, np.swapaxes(r_i, -1, -2))  # M⁻¹ R_iᵀ (M⁻¹ symmetric), (S, p, a)
-        keep = np.eye(r_i.shape[1]) - np.matmul(r_i, h)  # I − P_i, (S, a, a)
-        if np.min(np.linalg.eigvalsh(keep)) < DOWNDATE_MIN:
-            return self.candidate_values(rest)
-        k = np.linalg.inv(keep)
-        m_rest = self.matrix(rest)
-        ld0 = np.linalg.slogdet(m_rest)[1][:, None]
-        n_s, n_c, n_a, n_p = self.rows.shape
-        out = np.empty(n_c)
+        exchange's sweep made whole (see :meth:`best_removal`)."""
+        got = self._removal(chosen, i)
+        if got is None:
+            return self.candidate_values(np.delete(chosen, i))
+        ld, _, terms = got
+        out = np.empty(self.rows.shape[1])
         for sl in candidate_chunks(self.rows):
-            b = np.matmul(self.rows[:, sl].reshape(n_s, -1, n_p), h).reshape(n_s, -1, n_a, n_a)
-            small = q[:, sl] + np.matmul(np.matmul(b, k[:, None]), np.swapaxes(b, -1, -2))
-            small += np.eye(n_a)
-            out[sl] = self._d_values(ld0, small)
+            per = ld[:, None] + terms(np.arange(sl.start, sl.stop))
+            out[sl] = aggregate(per.T, self.problem.aggregate, True)
         return out
 
+    def best_removal(self, chosen: np.ndarray, i: int, allowed: np.ndarray) -> tuple[int, float]:
+        """The best allowed replacement of the i-th probe of ``chosen``: ``(c, value)`` of
+        ``chosen`` without it plus c (``c = -1`` when none is allowed). The exchange's try;
+        the same choice as :meth:`removal_values` followed by :func:`_best`."""
+        got = self._removal(chosen, i)
+        if got is None:
+            return self._best_of(self.candidate_values(np.delete(chosen, i)), allowed)
+        c, value = pick(*got, allowed, self.problem.aggregate)
+        if c < 0 or self._forms.updates == 0:
+            return c, value
+        # Forms carried through swaps: the winner's value is checked against its matrix,
+        # and on a mismatch (round-off grown too far) the try is made again afresh.
+        new = chosen.copy()
+        new[i] = c
+        exact = self.value(new)
+        if abs(exact - value) <= FORMS_RTOL * max(1.0, abs(exact)):
+            return c, exact
+        self._forms = Forms.of(self.rows, chosen, self.matrix(chosen), candidate_chunks)
+        return self.best_removal(chosen, i, allowed)
 
-def _quadratic(rows: np.ndarray, minv_t: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """u = R M⁻¹ ``(S, c, a, p)`` and R M⁻¹ Rᵀ ``(S, c, a, a)`` of the candidates' rows
-    ``(S, c, a, p)``, with ``minv_t (S, p, p)`` the transposed M⁻¹: one (c·a, p) × (p, p)
-    product per scenario."""
-    n_s, n_c, n_a, n_p = rows.shape
-    u = np.matmul(rows.reshape(n_s, n_c * n_a, n_p), minv_t).reshape(rows.shape)
-    if n_a == 1:  # a row-wise dot product, far cheaper than the general contraction
-        small = np.einsum("sip,sip->si", u[:, :, 0], rows[:, :, 0])[:, :, None, None]
-    else:
-        small = np.einsum("scap,scbp->scab", rows, u)
-    return u, small
+    def best_near(self, chosen: np.ndarray, i: int, idx: np.ndarray) -> tuple[int, float]:
+        """The best of candidates ``idx (n,) int`` (sorted) in place of the i-th probe of
+        ``chosen``, valued from the matrix without it: ``(c, value)``, first on ties,
+        ``(-1, nan)`` for none. The exchange's local try (not robust)."""
+        if idx.size == 0:
+            return -1, float("nan")
+        m = self.matrix(np.delete(chosen, i))
+        minv_t = np.swapaxes(np.linalg.inv(m), -1, -2)
+        ld0 = np.linalg.slogdet(m)[1][:, None] if self.problem.criterion.name == "d" else None
+        vals = self._add_chunk(self.rows[:, idx], minv_t, ld0)
+        return _near_best(idx, vals, self.problem.criterion.maximise)
+
+    def _removal(self, chosen: np.ndarray, i: int):
+        """:func:`~probeplan.search.forms.removal_terms` of the i-th probe of ``chosen``
+        (Sherman–Morrison–Woodbury downdate of the set's forms: one matrix–vector product
+        per scenario and candidate, p/a times fewer flops than a sweep from M⁻¹). None when
+        not ``d`` (or robust), or where I − Q_i is ill-conditioned (probe i carries almost
+        all of some direction): then the sweep is made from the matrix without it."""
+        if not self._fast_d:
+            return None
+        full = self._forms_of(chosen)
+        keep = np.eye(full.q.shape[-1]) - full.q[:, chosen[i]]
+        if np.min(np.linalg.eigvalsh(keep)) < DOWNDATE_MIN:
+            return None
+        return removal_terms(full, self.rows, int(chosen[i]), self.matrix(np.delete(chosen, i)))
+
+    def accept(self, chosen: np.ndarray, i: int, c: int) -> None:
+        """Tell the objective that the exchange puts candidate ``c`` in place of the i-th
+        probe of ``chosen``: the set's forms are then updated by the swap (one pass over the
+        rows) instead of swept again from M⁻¹, up to :data:`FORMS_REFRESH` times."""
+        f = self._forms
+        if not self._fast_d or f is None or f.key != chosen.tobytes():
+            return
+        new = chosen.copy()
+        new[i] = c
+        if f.updates >= FORMS_REFRESH:
+            self._forms = None
+            return
+        m_rest = self.matrix(np.delete(chosen, i))
+        self._forms = f.swapped(
+            self.rows, new, m_rest, self.matrix(new), int(chosen[i]), c, candidate_chunks
+        )
+
+
+#: Rank-one updates of the forms before they are swept from the rows again (round-off).
+FORMS_REFRESH = 32
+#: Largest relative difference between a winner's value from updated forms and from its
+#: matrix before the forms are swept afresh.
+FORMS_RTOL = 1e-9
 
 
 #: Smallest eigenvalue of I − R_i M⁻¹ R_iᵀ for which the exchange downdates a sweep; below it
@@ -254,6 +334,12 @@ def _spacing_mask(positions: np.ndarray, fixed: np.ndarray, min_spacing: float) 
     return out
 
 
+def _near_best(idx: np.ndarray, vals: np.ndarray, maximise: bool) -> tuple[int, float]:
+    """(candidate, value) of the best of ``vals`` over candidates ``idx`` (first on ties)."""
+    k = _best(vals, np.ones(idx.size, dtype=bool), maximise)
+    return int(idx[k]), float(vals[k])
+
+
 def _best(values: np.ndarray, allowed: np.ndarray, maximise: bool) -> int:
     """Index of the best allowed value (first on ties: determinism), −1 if none is allowed."""
     idx = np.flatnonzero(allowed)
@@ -261,6 +347,90 @@ def _best(values: np.ndarray, allowed: np.ndarray, maximise: bool) -> int:
         return -1
     v = values[idx] if maximise else -values[idx]
     return int(idx[np.argmax(np.where(np.isnan(v), -np.inf, v))])
+
+
+class SpacingCounts:
+    """How many fixed points (installed or chosen probes) are closer than the spacing to each
+    candidate, kept up to date as points come and go: the allowed candidates of a greedy pick
+    or an exchange try without a search of the whole grid each time.
+
+    Parameters
+    ----------
+    positions_m : (n_candidates, 3) float
+    min_spacing_m : float
+        0: no rule (every candidate allowed).
+    fixed_m : (k, 3) float
+        Points present from the start.
+    """
+
+    def __init__(self, positions_m: np.ndarray, min_spacing_m: float, fixed_m: np.ndarray):
+        self.positions_m = positions_m
+        self.min_spacing_m = min_spacing_m
+        self.count = np.zeros(positions_m.shape[0], dtype=np.int64)
+        self._tree = None
+        if min_spacing_m > 0:
+            from scipy.spatial import cKDTree
+
+            self._tree = cKDTree(positions_m)
+            for point in np.asarray(fixed_m, dtype=float).reshape(-1, 3):
+                self.add(point)
+
+    def near(self, point_m: np.ndarray) -> np.ndarray:
+        """Candidates closer than the spacing to ``point_m (3,)``, ``(n,) int`` (the test of
+        :func:`_spacing_mask`: squared distance below spacing² (1 − 1e-12))."""
+        if self._tree is None:
+            return np.zeros(0, dtype=np.int64)
+        idx = np.asarray(self._tree.query_ball_point(point_m, self.min_spacing_m), dtype=np.int64)
+        d2 = np.sum((self.positions_m[idx] - point_m) ** 2, axis=-1)
+        return idx[d2 < self.min_spacing_m**2 * (1 - 1e-12)]
+
+    def add(self, point_m: np.ndarray, sign: int = 1) -> None:
+        """Count (``sign`` 1) or uncount (−1) a fixed point ``(3,)``."""
+        self.count[self.near(point_m)] += sign
+
+    def allowed(self, without_m: np.ndarray | None = None) -> np.ndarray:
+        """``(C,) bool``: candidates spaced from every counted point, less ``without_m (3,)``
+        (one of them, which the caller is about to move)."""
+        if without_m is None:
+            return self.count == 0
+        count = self.count.copy()
+        count[self.near(without_m)] -= 1
+        return count == 0
+
+
+#: Candidates above which the greedy and the exchange start on thinned grids (:func:`_levels`).
+MULTILEVEL_MIN = 12_000
+#: Candidates at most on the coarsest thinned grid.
+COARSE_MAX = 3_000
+
+
+def _levels(positions: np.ndarray) -> list[np.ndarray]:
+    """Nested thinnings of the candidates, coarsest first, the last one all of them:
+    ``[(n_0,) int, …, (C,) int]``, each sorted.
+
+    Each level keeps the first candidate of every cell of a cubic lattice twice as coarse as
+    the one before (the first: twice the median distance between neighbours), until at most
+    :data:`COARSE_MAX` are left; a grid of at most :data:`MULTILEVEL_MIN` is not thinned. A
+    search that starts coarse and is refined level by level lands where a search of the whole
+    grid would, at a fraction of the sweeps: the many passes of an exchange from a greedy
+    start are made on the small grids, and the whole grid only polishes.
+    """
+    n = positions.shape[0]
+    levels = [np.arange(n)]
+    if n <= MULTILEVEL_MIN:
+        return levels
+    from scipy.spatial import cKDTree
+
+    step = float(np.median(cKDTree(positions).query(positions, k=2)[0][:, 1]))
+    idx, cell = levels[0], 2.0 * step
+    while step > 0 and idx.size > COARSE_MAX:
+        keys = np.floor(positions[idx] / cell).astype(np.int64)
+        sub = idx[np.sort(np.unique(keys, axis=0, return_index=True)[1])]
+        if sub.size > 0.9 * idx.size:  # scattered candidates: no lattice to thin
+            break
+        levels.insert(0, sub)
+        idx, cell = sub, 2.0 * cell
+    return levels
 
 
 def greedy_steps(
@@ -272,7 +442,9 @@ def greedy_steps(
     start: np.ndarray | None = None,
 ) -> Iterator[np.ndarray]:
     """Greedy selection, one pick a step: yields the chosen candidates ``(k,) int`` (first
-    ``start``, then after each pick), until ``k = count``.
+    ``start``, then after each pick), until ``k = count``. On a large grid without a
+    ``start`` the picks are made on its coarsest thinning (:func:`_levels`); the exchange
+    refines them on every finer one.
 
     ``start`` (k,) int: candidates already chosen (kept, counted in ``count``).
 
@@ -281,15 +453,24 @@ def greedy_steps(
     InputError
         When the grid cannot hold ``count`` probes ``min_spacing`` apart.
     """
+    sub = _levels(positions)[0]
+    if start is not None or sub.size == positions.shape[0]:
+        yield from _greedy_on(obj, count, positions, min_spacing, installed_m, start)
+        return
+    coarse = obj.subset(sub)
+    for chosen in _greedy_on(coarse, count, positions[sub], min_spacing, installed_m, None):
+        yield sub[chosen]
+
+
+def _greedy_on(obj, count, positions, min_spacing, installed_m, start):
+    """:func:`greedy_steps` on the candidates of ``obj`` as they are."""
     chosen = list(start) if start is not None else []
-    maximise = obj.problem.criterion.maximise
+    spaced = SpacingCounts(positions, min_spacing, np.concatenate([installed_m, positions[chosen]]))
     yield np.array(chosen, dtype=int)
     while len(chosen) < count:
-        fixed = np.concatenate([installed_m, positions[chosen]])
-        allowed = _spacing_mask(positions, fixed, min_spacing)
+        allowed = spaced.allowed()
         allowed[chosen] = False
-        vals = obj.candidate_values(np.array(chosen, dtype=int))
-        c = _best(vals, allowed, maximise)
+        c, _ = obj.best_addition(np.array(chosen, dtype=int), allowed)
         if c < 0:
             raise InputError(
                 f"`probes.min_spacing_m` = {min_spacing:g}: the candidate grid cannot hold "
@@ -298,6 +479,7 @@ def greedy_steps(
                 "`design.grid_spacing_m`."
             )
         chosen.append(c)
+        spaced.add(positions[c])
         yield np.array(chosen, dtype=int)
 
 
@@ -319,29 +501,103 @@ def exchange_steps(
     """Fedorov exchange, one chosen probe tried a step: yields the chosen candidates
     ``(count,) int`` (first as given, then after each try, improved or not).
 
-    Each pass tries every chosen probe; a pass without an improving swap ends the search.
+    Each pass tries every chosen probe; a pass without an improving swap ends the search. On
+    a large grid the exchange runs on each of its thinnings (:func:`_levels`) that holds the
+    layout, coarsest first, and ends on the whole grid: the result is a layout no single
+    swap on the whole grid improves.
     """
-    chosen = chosen.copy()
     yield chosen.copy()
-    maximise = obj.problem.criterion.maximise
-    current = obj.value(chosen)
+    levels = _levels(positions)
+    near = NEAR_CANDIDATES if len(levels) > 1 else 0
+    for sub in levels:
+        if sub.size == positions.shape[0]:
+            tries = _exchange_on(obj, chosen, positions, min_spacing, installed_m, rtol, near)
+            yield from itertools.islice(tries, 1, None)
+            return
+        local = np.searchsorted(sub, chosen)
+        if np.any(local >= sub.size) or np.any(sub[np.minimum(local, sub.size - 1)] != chosen):
+            continue  # the layout is not on this thinning
+        part = obj.subset(sub)
+        for got in itertools.islice(
+            _exchange_on(part, local, positions[sub], min_spacing, installed_m, rtol, near),
+            1,
+            None,
+        ):
+            chosen = sub[got]
+            yield chosen
+
+
+#: Nearest candidates of a probe tried by the exchange's local sweeps on thinned grids.
+NEAR_CANDIDATES = 48
+
+
+class _Swaps:
+    """The exchange's layout with its value and spacing counts, and the rule that takes a
+    swap: it must gain more than ``rtol`` (relative) on the current value."""
+
+    def __init__(self, obj, chosen, positions, min_spacing, installed_m, rtol) -> None:
+        self.obj, self.chosen, self.positions, self.rtol = obj, chosen.copy(), positions, rtol
+        self.current = obj.value(self.chosen)
+        fixed = np.concatenate([installed_m, positions[self.chosen]])
+        self.spaced = SpacingCounts(positions, min_spacing, fixed)
+
+    def allowed(self, i: int) -> np.ndarray:
+        """``(C,) bool``: where the i-th probe may go (itself included)."""
+        allowed = self.spaced.allowed(without_m=self.positions[self.chosen[i]])
+        allowed[np.delete(self.chosen, i)] = False
+        return allowed
+
+    def offer(self, i: int, c: int, value: float, tell: bool) -> bool:
+        """Take candidate ``c`` (of value ``value``) in place of the i-th probe if it gains
+        enough; ``tell``: let the objective update its forms by the swap."""
+        if c < 0 or c == self.chosen[i]:
+            return False
+        maximise = self.obj.problem.criterion.maximise
+        gain = value - self.current if maximise else self.current - value
+        if not gain > self.rtol * max(1.0, abs(self.current)):
+            return False
+        if tell:
+            self.obj.accept(self.chosen, i, c)
+        self.spaced.add(self.positions[self.chosen[i]], -1)
+        self.spaced.add(self.positions[c])
+        self.chosen[i] = c
+        self.current = value
+        return True
+
+
+def _exchange_on(obj, chosen, positions, min_spacing, installed_m, rtol, near=0):
+    """:func:`exchange_steps` on the candidates of ``obj`` as they are.
+
+    ``near`` > 0: before each pass over the whole grid, local sweeps try only the ``near``
+    candidates nearest each probe (valued from the matrix without it: no sweep of the grid)
+    until none improves. On a fine grid most swaps move a probe a cell or two; made locally
+    they cost nothing, and the passes over the whole grid, which still decide when the
+    search ends, are few.
+    """
+    swaps = _Swaps(obj, chosen, positions, min_spacing, installed_m, rtol)
+    yield swaps.chosen.copy()
+    tree = None
+    if near > 0 and not obj.robust:
+        from scipy.spatial import cKDTree
+
+        tree = cKDTree(positions)
     improved = True
     while improved:
         improved = False
-        for i in range(chosen.size):
-            rest = np.delete(chosen, i)
-            fixed = np.concatenate([installed_m, positions[rest]])
-            allowed = _spacing_mask(positions, fixed, min_spacing)
-            allowed[rest] = False
-            vals = obj.removal_values(chosen, i)
-            c = _best(vals, allowed, maximise)
-            if c >= 0 and c != chosen[i]:
-                gain = vals[c] - current if maximise else current - vals[c]
-                if gain > rtol * max(1.0, abs(current)):
-                    chosen[i] = c
-                    current = float(vals[c])
-                    improved = True
-            yield chosen.copy()
+        moved = tree is not None
+        while moved:
+            moved = False
+            for i in range(swaps.chosen.size):
+                allowed = swaps.allowed(i)
+                _, nb = tree.query(positions[swaps.chosen[i]], k=min(near, positions.shape[0]))
+                nb = np.sort(nb[allowed[nb]])
+                c, value = obj.best_near(swaps.chosen, i, nb)
+                moved |= swaps.offer(i, c, value, tell=False)
+                yield swaps.chosen.copy()
+        for i in range(swaps.chosen.size):
+            c, value = obj.best_removal(swaps.chosen, i, swaps.allowed(i))
+            improved |= swaps.offer(i, c, value, tell=True)
+            yield swaps.chosen.copy()
 
 
 def exchange(*args, stop: Callable[[], bool] | None = None, **kwargs) -> np.ndarray:

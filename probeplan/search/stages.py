@@ -173,7 +173,7 @@ def search_steps(
         best = yield from _warm_stage(grid, settings.warm_start_m, best, halt)
     design = problem.config.design
     if problem.criterion.name == "d" and design.aggregate == "mean" and not halt():
-        yield from _bound_stage(grid, halt)
+        yield from _bound_stage(grid, best, halt)
     if settings.evaluations > 0 and not halt():
         yield from _refine_stage(grid, best, settings.evaluations, rng, halt)
     if not halt():
@@ -304,7 +304,16 @@ def _warm_stage(grid: _Grid, warm_start_m: np.ndarray, best: Layout, halt: Halt)
     return found if better else best
 
 
-def _bound_stage(grid: _Grid, halt: Halt) -> Iterator[Step]:
+def _on_grid(grid: _Grid, layout_m: np.ndarray) -> np.ndarray | None:
+    """Candidates of a layout ``(k, 3)`` that lies on the grid, ``(k,) int`` (None when a
+    probe is off it, as a warm start's may be)."""
+    from scipy.spatial import cKDTree
+
+    dist, idx = cKDTree(grid.positions_m).query(layout_m)
+    return idx if np.all(dist <= 1e-6) else None
+
+
+def _bound_stage(grid: _Grid, best: Layout, halt: Halt) -> Iterator[Step]:
     """The relaxation bound, one evaluation a step. Every step's bound is certified, but one
     cut short can be far from the best layout: only a finished bound is kept."""
     p = grid.problem
@@ -317,6 +326,8 @@ def _bound_stage(grid: _Grid, halt: Halt) -> Iterator[Step]:
         positions_m=grid.positions_m,
         min_spacing_m=grid.min_spacing_m,
         installed_m=p.installed_m,
+        start=_on_grid(grid, best.positions_m),
+        plan_value=best.value,
     )
     first = None
     tol = p.n_params * BOUND_GAP_PER_PARAM
