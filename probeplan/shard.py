@@ -16,6 +16,10 @@ back 8 bytes per parameter per axis, so a call below the threshold (under a seco
 costs more to send, wait for and bring back than it saves. The greedy, exchange, bound and
 refinement stages need every scenario at every step and stay on this machine.
 
+With conducting structures, the responses of the structures to every scenario are solved here
+first, all at once as a local run solves them (:meth:`Scene.prime`), and travel with the problem:
+a multithreaded BLAS splits a solve by its columns, so a block solved alone may round otherwise.
+
 The problem is sent once (``scatter``, to every worker, so a worker lost mid-run loses no
 input) and each call's positions once; a task is one block's arguments: a worker lost mid-run
 costs only its tasks, which the scheduler runs again on another worker from the same inputs.
@@ -195,6 +199,7 @@ class ScenarioShards:
 
     def _submit(self, problem: Problem, task, inputs: tuple, *extra) -> list:
         if self._held is not problem:
+            problem.scene.prime(problem.theta, problem.est_cols)
             plain = replace(problem, shards=None)
             self._remote = self.client.scatter(plain, broadcast=True, hash=False)
             self._held = problem
