@@ -2,11 +2,12 @@
 
 from __future__ import annotations
 
+import contextlib
 import os
 import signal
 import threading
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 
 
 def run_killing_a_worker(client, work: Callable[[], object], what: str) -> object:
@@ -31,3 +32,18 @@ def run_killing_a_worker(client, work: Callable[[], object], what: str) -> objec
     os.kill(pids[victim], signal.SIGKILL)
     runner.join()
     return out["result"]
+
+
+@contextlib.contextmanager
+def process_client() -> Iterator[object]:
+    """A client of a scheduler and two single-thread worker processes on this machine (what is
+    sent to them is pickled, as on a real cluster)."""
+    import distributed
+
+    with (
+        distributed.LocalCluster(
+            processes=True, n_workers=2, threads_per_worker=1, dashboard_address=":0"
+        ) as cluster,
+        distributed.Client(cluster, set_as_default=False) as client,
+    ):
+        yield client

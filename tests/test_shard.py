@@ -12,7 +12,7 @@ import time
 import h5py
 import numpy as np
 import pytest
-from clusters import run_killing_a_worker
+from clusters import process_client, run_killing_a_worker
 from sites import box, make_config, point_source, rectangle, write_site
 
 from probeplan import shard
@@ -126,12 +126,7 @@ def test_a_worker_lost_mid_run_costs_only_its_blocks():
     # Enough points that a block takes a while, so the kill finds one running.
     points = problem.site.candidate_grid(target=20_000).positions_m
     want = problem.rows(points)
-    with (
-        distributed.LocalCluster(
-            processes=True, n_workers=2, threads_per_worker=1, dashboard_address=":0"
-        ) as lc,
-        distributed.Client(lc, set_as_default=False) as client,
-    ):
+    with process_client() as client:
         sharded = shard.on_client(problem, client, min_scenario_points=0, blocks=8)
         rows, saturated = run_killing_a_worker(client, lambda: sharded.rows(points), "block")
     assert rows.tobytes() == want[0].tobytes()
@@ -153,12 +148,7 @@ def test_with_a_structure_blocks_solved_on_worker_processes_are_the_local_rows()
     )
     problem = build_problem(config)
     points = problem.site.candidate_grid(target=500).positions_m
-    with (
-        distributed.LocalCluster(
-            processes=True, n_workers=2, threads_per_worker=1, dashboard_address=":0"
-        ) as lc,
-        distributed.Client(lc, set_as_default=False) as client,
-    ):
+    with process_client() as client:
         sharded = shard.on_client(problem, client, min_scenario_points=0, blocks=3)
         there = sharded.rows(points)
         value_there = sharded.score(points[:6]).value
