@@ -2,10 +2,14 @@
 
 Commands (the contract's "Command line"):
 
-* ``probeplan plan [CONFIG] [--out FILE.h5] [--force] [--resume FILE.h5]``
-* ``probeplan score CONFIG (--layout LAYOUT.csv | --from OLD.h5) [--out FILE.h5] [--force]``
+* ``probeplan plan [CONFIG] [--out FILE.h5] [--force] [--resume FILE.h5] [--scheduler ADDRESS]``
+* ``probeplan score CONFIG (--layout LAYOUT.csv | --from OLD.h5) [--out FILE.h5] [--force]
+  [--scheduler ADDRESS]``
 * ``probeplan budget CONFIG [--out FILE.h5] [--force] [--from OLD.h5 [--from-as MODE]]
-  [--scheduler ADDRESS]`` (the options on a dask.distributed cluster, :mod:`probeplan.cluster`)
+  [--scheduler ADDRESS]``
+
+``--scheduler``: a dask.distributed cluster (:mod:`probeplan.cluster`) runs the budget's options,
+and the large scenario sets of ``plan`` and ``score`` in scenario blocks (:mod:`probeplan.shard`).
 * ``probeplan show FILE.h5 [--layout-csv LAYOUT.csv] [--geojson OUT.geojson] [--force]`` — the
   summary; optionally the new probes as a layout CSV (what ``score --layout`` reads) and every
   meter with the site as GeoJSON (with a ``[frame]``)
@@ -92,7 +96,8 @@ _QUIET_HELP = (
 _SCHEDULER_HELP = (
     "run on an existing dask.distributed cluster, e.g. tcp://host:8786 (needs the extra: pip "
     'install "probeplan[cluster]"); default: the environment variable PROBEPLAN_SCHEDULER, '
-    "then [design] scheduler of the config, else this machine alone. Same seed, same result"
+    "then [design] scheduler of the config, else this machine alone. plan and score send only "
+    "large scenario sets (README: Running on a cluster). Same seed, same result"
 )
 
 
@@ -152,6 +157,7 @@ def _add_plan(sub) -> None:
         help="continue from the layout and search history stored in FILE.h5",
     )
     _add_from(p)
+    _add_scheduler(p)
 
 
 def _add_score(sub) -> None:
@@ -171,6 +177,7 @@ def _add_score(sub) -> None:
         "probes come from the config); the summary compares with the stored score",
     )
     _add_out(s, "also write the result to this HDF5 file")
+    _add_scheduler(s)
 
 
 def _add_budget(sub) -> None:

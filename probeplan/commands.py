@@ -106,6 +106,16 @@ def on_cluster(args: argparse.Namespace, config) -> Iterator[object]:
         yield cluster
 
 
+def sharded(problem, cluster):
+    """The problem with its large scenario sets split over ``cluster`` (:mod:`probeplan.shard`),
+    or as it is without one."""
+    if cluster is None:
+        return problem
+    from .shard import on_client
+
+    return on_client(problem, cluster.client)
+
+
 # --------------------------------------------------------------------------------------------
 # Writing
 # --------------------------------------------------------------------------------------------
@@ -179,8 +189,14 @@ def cmd_plan(args: argparse.Namespace, written: list[Path]) -> int:
     if stored is not None:
         warm, history = reruns.resume_start(stored, args.resume, problem.count)
 
-    with stoppable(args.quiet) as (progress, flag):
-        outcome = plan(problem, progress=progress, stop=flag, warm_start_m=warm, history=history)
+    with on_cluster(args, config) as cluster, stoppable(args.quiet) as (progress, flag):
+        outcome = plan(
+            sharded(problem, cluster),
+            progress=progress,
+            stop=flag,
+            warm_start_m=warm,
+            history=history,
+        )
     # A search stopped before it had any layout says so (``has_layout``, the search stages).
     if not getattr(outcome, "has_layout", True):
         report.print_interrupted(when="before the search had a layout", written=written)
@@ -253,7 +269,10 @@ def cmd_score(args: argparse.Namespace, written: list[Path]) -> int:
             f"z = {g:g} m of {config.path}; a meter reads the field on or above the ground."
         )
     try:
-        score = problem.score(positions, gain, axes, reruns.grade_names(grades))
+        with on_cluster(args, config) as cluster:
+            score = sharded(problem, cluster).score(
+                positions, gain, axes, reruns.grade_names(grades)
+            )
     except SingularPointError as exc:  # a probe placed on a point charge: the layout's fault
         raise InputError(f"{where} (installed probes counted first): {exc}") from None
     names = reruns.score_names(config, score, layout, problem.installed_m.shape[0])

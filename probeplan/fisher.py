@@ -261,6 +261,10 @@ def aggregate(values: np.ndarray, how: str, maximise: bool) -> np.ndarray:
     (...,) float
     """
     kind, q = parse_aggregate(how)
+    # numpy sums a contiguous last axis pairwise and a strided one in sequence: one layout, so
+    # the same values give the same bits however they were computed (slogdet's output is
+    # strided; scenario blocks joined from a cluster are not).
+    values = np.ascontiguousarray(values)
     if kind == "mean":
         with np.errstate(invalid="ignore"):
             out = np.mean(values, axis=-1)

@@ -234,6 +234,15 @@ class Scene:
             full += j_ind
         return total, full
 
+    def prime(self, theta: np.ndarray, columns: np.ndarray) -> None:
+        """Solve the structures' responses to every scenario of ``theta`` ``(n_scenarios,
+        n_params)`` at once, as a first :meth:`evaluate` with these Jacobian ``columns`` would,
+        and keep them. A copy of the scene sent elsewhere (a cluster's workers) then evaluates
+        any block of these scenarios with the same numbers, to the bit, as here: a multithreaded
+        BLAS may round a block's own solve otherwise. Nothing without structures."""
+        if self.structures is not None:
+            self._responses(theta, np.asarray(columns, dtype=int))
+
     def _responses(self, theta: np.ndarray, cols: np.ndarray | None):
         """The structures' σ responses to ``theta``, ``(n_panels, S)`` and ``(n_panels, S *
         n_cols)``, kept per scenario row: a plan evaluates the same scenarios, whole or in

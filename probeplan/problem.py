@@ -85,6 +85,9 @@ class Problem:
     fisher_installed: np.ndarray  # (n_scenarios, n_params, n_params)
     grades: dict  # grade name -> Noise; "" is [probes]' own
     new_grade: str  # the new meters' grade in ``grades`` ("" or a budget's grade)
+    # Where large scenario-separable calls run: a ``shard.ScenarioShards`` (a dask cluster)
+    # or None for this process; never sent to a worker.
+    shards: object | None = None
 
     @property
     def noise(self) -> Noise:
@@ -135,6 +138,8 @@ class Problem:
             axes = np.broadcast_to(self.new_axes, (n, *self.new_axes.shape))
         if gain is None:
             gain = np.full(n, self.new_gain)
+        if self.shards is not None and self.shards.wants(self.n_scenarios, n):
+            return self.shards.rows(self, positions_m, gain, axes, noise)
         e, jac = self.scene.evaluate(self.theta, positions_m, columns=self.est_cols)
         return whitened_rows(e, jac, axes, gain, self.noise if noise is None else noise)
 
@@ -314,6 +319,9 @@ class Problem:
 
     def layout_values(self, layouts_m: np.ndarray, gains: np.ndarray | None = None) -> np.ndarray:
         """Criterion of many layouts: ``(n_layouts, n_probes, 3)`` → ``(n_layouts,)``."""
+        n_points = layouts_m.shape[0] * layouts_m.shape[1]
+        if self.shards is not None and self.shards.wants(self.n_scenarios, n_points):
+            return self.shards.layout_values(self, layouts_m, gains)
         out = np.empty(layouts_m.shape[0])
         # Chunk by chunk: the information of a chunk is scored while it is still in cache.
         for sl, info in self._fisher_chunks(layouts_m, gains):

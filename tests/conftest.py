@@ -26,3 +26,13 @@ def _private_bem_cache(tmp_path_factory):
         os.environ.pop("PROBEPLAN_CACHE_DIR", None)
     else:
         os.environ["PROBEPLAN_CACHE_DIR"] = old
+
+
+@pytest.fixture(scope="module")
+def threads_cluster():
+    """A dask scheduler and two single-thread workers in this process (the cluster tests)."""
+    distributed = pytest.importorskip("distributed")
+    with distributed.LocalCluster(
+        processes=False, n_workers=2, threads_per_worker=1, dashboard_address=":0"
+    ) as cluster:
+        yield cluster

@@ -4,15 +4,12 @@ scheduler settings (option, environment variable, config key) with their message
 
 from __future__ import annotations
 
-import os
-import signal
 import sys
-import threading
-import time
 
 import h5py
 import numpy as np
 import pytest
+from clusters import run_killing_a_worker
 from sites import box, make_config, meter_grade, point_source, rectangle, write_site
 
 from probeplan.budget import run_budget
@@ -32,15 +29,6 @@ SITE = dict(
     budget={"counts": [4, 5], "target": -20.0},
 )
 BUDGET_DATASETS = ("count", "grade", "cost", "value", "meets_target")
-
-
-@pytest.fixture(scope="module")
-def threads_cluster():
-    """A scheduler and two single-thread workers in this process."""
-    with distributed.LocalCluster(
-        processes=False, n_workers=2, threads_per_worker=1, dashboard_address=":0"
-    ) as cluster:
-        yield cluster
 
 
 @pytest.fixture(scope="module")
@@ -98,23 +86,10 @@ def test_a_worker_lost_mid_run_costs_only_its_task(local_table):
         ) as lc,
         connect(lc.scheduler_address, "test") as cluster,
     ):
-        pids = cluster.client.run(os.getpid)  # worker address -> process id
-        out: dict = {}
-        runner = threading.Thread(
-            target=lambda: out.update(run=run_budget(config, executor=cluster.executor))
+        run = run_killing_a_worker(
+            cluster.client, lambda: run_budget(config, executor=cluster.executor), "chain"
         )
-        runner.start()
-        victim = None
-        for _ in range(2000):  # until a chain is running on a worker (bounded by a count)
-            busy = [w for w, tasks in cluster.client.processing().items() if tasks]
-            if busy:
-                victim = busy[0]
-                break
-            time.sleep(0.05)
-        assert victim is not None, "no chain started on the cluster"
-        os.kill(pids[victim], signal.SIGKILL)
-        runner.join()
-    table, complete = out["run"]
+    table, complete = run
     assert complete
     _same_table(table, local_table[0])
 

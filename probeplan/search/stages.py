@@ -23,6 +23,7 @@ import numpy as np
 
 from ..problem import Problem
 from ..resulttypes import Baseline
+from ..shard import row_steps
 from .bound import BOUND_GAP_PER_PARAM, Relaxation, relaxation_steps
 from .grid import (
     GridObjective,
@@ -187,18 +188,15 @@ def _grid_stage(problem: Problem, target: int, halt: Halt) -> Iterator[Step]:
     cand = _candidates(problem, problem.config.design.grid_spacing_m, target)
     gains = problem.new_gain * cand.gain
     n = cand.n_candidates
-    per_point = problem.n_scenarios * 3 * max(problem.scene.n_params, 1) * 8
-    chunk = max(1, ROW_CHUNK_BYTES // per_point)
+    # In chunks of candidates here, or in scenario blocks on a cluster (``shard``).
+    steps = row_steps(problem, cand.positions_m, gains, ROW_CHUNK_BYTES)
     rows = None
-    for start in range(0, max(n, 1), chunk):
+    while rows is None:
         if halt():
+            steps.close()
             return None
-        sl = slice(start, min(start + chunk, n))
-        part, _ = problem.rows(cand.positions_m[sl], gains[sl])
-        if rows is None:
-            rows = np.empty((part.shape[0], n, *part.shape[2:]))
-        rows[:, sl] = part
-        yield Step("candidate grid", sl.stop, n)
+        done, rows = next(steps)
+        yield Step("candidate grid", done, n)
     if halt():
         return None
     robust = bool(problem.config.design.tolerate_failures)
