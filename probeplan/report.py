@@ -445,7 +445,8 @@ def _search_notes(result: Result) -> Text:
             text.append(f"  D-efficiency: {100.0 * eff:.1f} % of the bound, ")
             text.append("exp((plan - bound)/n_params)\n")
         for words in findings.bound_words(result):
-            text.append_text(_user(f"  {words}\n"))
+            text.append_text(_user(f"  {words}"))
+            text.append("\n")
     spacing = (
         f"spacing {format_quantity(info.grid_spacing_m, 'm')}"
         if info.grid_spacing_m > 0

@@ -1,9 +1,9 @@
 """The layout search: greedy and exchange on a candidate grid, a certified bound, refinement.
 
 Stages of :func:`plan` (modules: ``grid`` the grid objective, greedy and exchange; ``bound``
-the relaxation; ``restarts`` the randomised greedy starts; ``refine`` the Bayesian refinement; ``stages`` the stream of every step of
-every stage; ``outcome`` :func:`plan`, which drains that stream, and the one builder of its
-result):
+the relaxation; ``restarts`` the randomised greedy starts; ``refine`` the Bayesian
+refinement; ``stages`` the stream of every step of every stage; ``outcome`` :func:`plan`, which
+drains that stream, and the one builder of its result):
 
 1. **Candidate grid** over the mounting regions, keep-outs removed (``Site.candidate_grid``),
    and the Fisher information each candidate adds in every scenario, A_sc, computed once.
