@@ -23,6 +23,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..errors import InputError
 from ..fisher import d_ratio
 from ..problem import Problem
 from ..resulttypes import Baseline
@@ -242,16 +243,28 @@ def _snapped(grid: _Grid, warm_start_m: np.ndarray | None) -> np.ndarray | None:
 
 def _greedy_stage(grid: _Grid, start: np.ndarray | None, halt: Halt) -> Iterator[Step]:
     """Greedy picks on the grid; returns the chosen candidates and their layout (None when
-    stopped before the last pick)."""
+    stopped before the last pick).
+
+    A start (a stored layout's candidates) whose probes leave no room for the rest under the
+    spacing rule — a budget's smaller plan can, since the restarts may end it anywhere — is
+    dropped and the greedy starts afresh; the stored layout still competes as the warm start.
+    """
     p = grid.problem
     count = p.count
-    picks = greedy_steps(
-        grid.objective, count, grid.positions_m, grid.min_spacing_m, p.installed_m, start
-    )
-    for chosen in picks:  # noqa: B020 - the last pick is the result
-        yield Step("greedy", chosen.size, count)
-        if chosen.size < count and halt():
-            return None
+    args = (grid.objective, count, grid.positions_m, grid.min_spacing_m, p.installed_m)
+    chosen = None
+    try:
+        for chosen in greedy_steps(*args, start):  # noqa: B007 - the last pick is the result
+            yield Step("greedy", chosen.size, count)
+            if chosen.size < count and halt():
+                return None
+    except InputError:
+        if start is None or start.size == 0:
+            raise
+        for chosen in greedy_steps(*args):  # noqa: B007 - the last pick is the result
+            yield Step("greedy", chosen.size, count)
+            if chosen.size < count and halt():
+                return None
     found = grid.layout(chosen)
     yield Step(
         "greedy",
@@ -306,10 +319,13 @@ def _warm_stage(grid: _Grid, warm_start_m: np.ndarray, best: Layout, halt: Halt)
         picks = extension_steps(
             p, grid.objective, grid.positions_m, warm, gain, p.count, grid.min_spacing_m
         )
-        for extra in picks:  # noqa: B007 - the last pick is the result
-            yield Step("warm start", extra.size, n_extra)
-            if extra.size < n_extra and halt():
-                return best
+        try:
+            for extra in picks:  # noqa: B007 - the last pick is the result
+                yield Step("warm start", extra.size, n_extra)
+                if extra.size < n_extra and halt():
+                    return best
+        except InputError:
+            return best  # the stored probes leave no room for the rest: it drops out
         warm = np.concatenate([warm, grid.positions_m[extra]])
         gain = np.concatenate([gain, grid.gains[extra]])
     value = exact(p, warm, gain)
