@@ -12,6 +12,8 @@ so ``probeplan show`` says the same as the command that wrote the file.
 * :func:`assumptions` — what the scenarios take for granted: parameters that vary but are not
   estimated are known in each scenario; several sources are drawn independently.
 * :func:`evaluation_account` — the evaluations asked for and spent, stage by stage.
+* :func:`bound_words` — why the plan sits far below the relaxation bound, and the restarts'
+  empirical figure beside it: what each does and does not promise.
 * :func:`simulation_findings` — failed fits and achieved/bound ratios far from 1.
 * :func:`scenario_where` — where a scenario's charges are, in words.
 
@@ -37,6 +39,12 @@ RATIO_LOW = 0.5
 SLIP_FACTOR = 1e3
 
 _SIZE_WORDS = {"radius": "radius", "sigma": "spread (sigma)"}
+
+#: D-efficiency against the relaxation bound below which the summary explains the gap.
+LOOSE_BOUND_EFFICIENCY = 0.9
+
+#: Searches whose D-value reaches this share of the best one's (exp(Δ/n_params)) "agree".
+RESTARTS_AGREE = 0.99
 
 
 # --------------------------------------------------------------------------------------------
@@ -408,6 +416,87 @@ def evaluation_account(result) -> str | None:
         f"evaluations: {asked_text}; {n_hist} layouts scored ({', '.join(parts) or 'none'}); "
         "proposals that broke the mounting rules are not counted."
     )
+
+
+# --------------------------------------------------------------------------------------------
+# The relaxation bound and the restarts
+# --------------------------------------------------------------------------------------------
+
+
+def bound_words(result) -> list[str]:
+    """What the D-efficiency against the relaxation bound means here, in paragraphs.
+
+    Over 100 %: refinement left the grid. Below :data:`LOOSE_BOUND_EFFICIENCY`: why the gap is
+    wide (the bound is valid but loose) and the restarts' spread beside it
+    (``SearchInfo.restart_values``), with what that figure does and does not promise. Empty
+    for other criteria, without a bound, or when the bound is close.
+    """
+    s, info = result.score, result.search
+    if info is None or info.bound is None or s.criterion != "d":
+        return []
+    if not (math.isfinite(info.bound) and math.isfinite(s.value)):
+        return []
+    n = max(len(s.names), 1)
+    eff = math.exp((s.value - info.bound) / n)
+    if eff > 1.0:
+        return ["(over 100 %: refinement moved probes off the grid it covers)"]
+    out = []
+    if eff < LOOSE_BOUND_EFFICIENCY:
+        out.append(
+            "A wide gap here usually means a loose bound, not a poor plan: the bound lets "
+            "fractions of meters spread over every candidate, so that together they see every "
+            "scenario's charge, where whole meters cannot (the spacing rule and installed "
+            "meters are taken into account). The bound is valid, no layout on the grid beats "
+            "it, but it does not say how close the best layout on the grid comes to it."
+        )
+    runs = _finite_runs(info.restart_values)
+    if runs.size >= 2:
+        out += _restart_words(runs, n)
+    elif eff < LOOSE_BOUND_EFFICIENCY:
+        out.append(
+            "No repeated searches to compare: `[design] restarts` (default 4) runs them when "
+            "the bound is this loose."
+        )
+    return out
+
+
+def _finite_runs(values) -> np.ndarray:
+    if values is None:
+        return np.zeros(0)
+    runs = np.asarray(values, dtype=float).reshape(-1)
+    return runs[np.isfinite(runs)]
+
+
+def _restart_words(runs: np.ndarray, n_params: int) -> list[str]:
+    """The restarts' spread (final values of ``runs (n_runs,)``, the greedy start's first) in
+    D-ratios to the best, and what it promises."""
+    share = np.exp((runs - runs.max()) / n_params)  # each run's D-ratio to the best, <= 1
+    k = int(np.sum(share >= RESTARTS_AGREE))
+    total = runs.size
+    worst = float(share.min())
+    starts = (
+        f"{total} searches from different starts (the greedy layout and {total - 1} "
+        f"randomised greedy one{'s' if total > 2 else ''}, each followed by the exchange)"
+    )
+    if worst >= 0.9995:  # equal to the last digit shown
+        spread = "all ended within 0.1 % of each other in D-value"
+    else:
+        spread = (
+            f"ended between {100.0 * worst:.1f} % and 100 % of the best one's D-value "
+            f"(D-ratio); {k} of {total} within {100.0 * (1 - RESTARTS_AGREE):.0f} % of the best"
+        )
+    words = [f"Empirical figure: {starts} {spread}. The plan keeps the best layout found."]
+    if 2 * k <= total:
+        words.append(
+            "They disagree: the search depends on where it starts, and a better layout may "
+            "exist; more restarts (`[design] restarts`) may find one."
+        )
+    words.append(
+        "This is evidence that the search is consistent on this grid, not a proof that no "
+        "better layout exists: every start may miss the same kind of layout, and the bound "
+        "stays the only certified limit."
+    )
+    return words
 
 
 # --------------------------------------------------------------------------------------------

@@ -444,10 +444,9 @@ def _search_notes(result: Result) -> Text:
             eff = math.exp((s.value - info.bound) / n)
             text.append(f"  D-efficiency: {100.0 * eff:.1f} % of the bound, ")
             text.append("exp((plan - bound)/n_params)\n")
-            if eff > 1.0:
-                text.append("  (over 100 %: refinement moved probes off the grid it covers)\n")
-            elif eff < LOOSE_BOUND_EFFICIENCY:
-                text.append(_LOOSE_BOUND_TEXT)
+        for words in findings.bound_words(result):
+            text.append_text(_user(f"  {words}"))
+            text.append("\n")
     spacing = (
         f"spacing {format_quantity(info.grid_spacing_m, 'm')}"
         if info.grid_spacing_m > 0
@@ -628,18 +627,6 @@ def _simulation_parts(result: Result) -> list:
 # --------------------------------------------------------------------------------------------
 # Progress, files written, errors
 # --------------------------------------------------------------------------------------------
-
-
-#: D-efficiency below which the summary explains what a wide gap to the bound means.
-LOOSE_BOUND_EFFICIENCY = 0.9
-
-_LOOSE_BOUND_TEXT = (
-    "  A wide gap here usually means a loose bound, not a poor plan: the bound lets\n"
-    "  fractions of meters spread over every candidate, so that together they see every\n"
-    "  scenario's charge, where whole meters cannot (the spacing rule and installed meters\n"
-    "  are taken into account). It promises only that no layout on the grid beats it; it\n"
-    "  does not say how close the best layout on the grid comes to it.\n"
-)
 
 
 @contextlib.contextmanager

@@ -323,6 +323,12 @@ class SearchInfo:
         all that was spent), e.g. ``(("greedy", 1), ("exchange", 1), ("refinement", 33),
         ("baselines", 1001), ("refinement proposals that broke the mounting rules", 7))``;
         empty where not recorded (the summary then counts ``history``).
+    restart_values : (n_runs,) float or None
+        The final value of every complete exchange search on the grid when restarts ran (the
+        relaxation bound was loose): first the exchange from the greedy layout, then one a
+        restart from a randomised greedy start, in order. Their spread is the empirical
+        figure beside the bound. None when no restart ran (the bound was tight, ``[design]
+        restarts = 0``, a stop came first, or a file written before restarts).
     """
 
     history: np.ndarray
@@ -336,6 +342,7 @@ class SearchInfo:
     objective: str = "criterion"
     evaluations_asked: int | None = None
     evaluations_spent: tuple[tuple[str, int], ...] = ()
+    restart_values: np.ndarray | None = None
 
 
 @dataclass(frozen=True, eq=False)

@@ -191,6 +191,9 @@ def assert_results_equal(r: Result, q: Result) -> None:
         )
         assert b.stages == a.stages
         assert b.objective == a.objective
+        assert (a.restart_values is None) == (b.restart_values is None)
+        if a.restart_values is not None:
+            assert_same(a.restart_values, b.restart_values)
         assert [(x.name, x.value) for x in b.baselines] == [(x.name, x.value) for x in a.baselines]
         for x, y in zip(a.baselines, b.baselines, strict=True):
             assert_same(x.positions_m, y.positions_m)

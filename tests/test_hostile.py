@@ -178,10 +178,11 @@ OPTIONAL = {"layout/axes", "layout/grade", "layout/names", "notes", "search/boun
 OPTIONAL |= {"search/bound_gap", "score/failure_values", "budget/feasible", "budget/reason"}
 # Added later than the first result files, so a file without them still reads.
 OPTIONAL |= {"scenarios/source_names", "search/evaluations_spent", "search/evaluation_stages"}
+OPTIONAL |= {"search/restart_values"}  # written only where restarts ran
 INFINITE = {"score/crb_std", "score/per_scenario", "score/value", "score/failure_values"}
 INFINITE |= {"search/history", "search/bound", "search/bound_gap", "search/stage_values"}
-INFINITE |= {"search/baseline_values", "budget/value"}
-ANY_LENGTH = {"notes", "search/history"}
+INFINITE |= {"search/baseline_values", "budget/value", "search/restart_values"}
+ANY_LENGTH = {"notes", "search/history", "search/restart_values"}
 
 
 def _accepted(name: str, kind: str) -> bool:

@@ -523,3 +523,20 @@ def test_bound_progress_runs_from_its_first_gap_to_the_tolerance():
     assert _converged_percent(1.0, 1e-2, 1e-4) == 50
     assert _converged_percent(1.0, 1e-5, 1e-4) == 100
     assert _converged_percent(1e-5, 1e-5, 1e-4) == 100  # converged from the start
+
+
+def test_a_stored_start_that_blocks_the_spacing_falls_back_to_a_fresh_greedy():
+    # A 4 km fence, meters 1.8 km apart: three fit (both ends and the middle), but a stored
+    # pair at ±1 km leaves no room for a third (every other point is within 1.8 km of one).
+    fence = {"kind": "segment", "start_m": [-2000.0, 0.0, 0.0], "end_m": [2000.0, 0.0, 0.0]}
+    problem = build_problem(
+        make_config(
+            region=[fence],
+            probes={"count": 3, "min_spacing_m": 1800.0},
+            design={"random_layouts": 10, "grid_spacing_m": 100.0, "restarts": 0},
+        )
+    )
+    stored = np.array([[-1000.0, 0.0, 0.0], [1000.0, 0.0, 0.0]])
+    out = plan(problem, warm_start_m=stored)
+    assert out.positions_m.shape == (3, 3)
+    assert problem.site.spacing_ok(out.positions_m[None])[0]

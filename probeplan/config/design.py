@@ -5,7 +5,7 @@ from __future__ import annotations
 import math
 import re
 
-from .model import BackgroundSpec, DesignSpec, SourceSpec
+from .model import RESTARTS_LIMIT, BackgroundSpec, DesignSpec, SourceSpec
 from .reader import Checker, Table, show
 from .vocab import AGGREGATES, CRITERIA, PARAM_TO_ESTIMATE
 
@@ -19,6 +19,7 @@ DESIGN_KEYS = (
     "random_layouts",
     "scheduler",
     "scheduler_timeout_s",
+    "restarts",
 )
 
 
@@ -43,7 +44,19 @@ def parse_design(root: Table) -> DesignSpec:
             what='a dask scheduler address such as "tcp://host:8786"',
         ),
         scheduler_timeout_s=t.number("scheduler_timeout_s", default=d.scheduler_timeout_s, gt=0.0),
+        restarts=_parse_restarts(t, d.restarts),
     )
+
+
+def _parse_restarts(t: Table, default: int) -> int:
+    n = t.integer("restarts", default=default, ge=0)
+    if n > RESTARTS_LIMIT:
+        t.ck.fail(
+            f"`{t.key('restarts')}` must be a whole number from 0 to {RESTARTS_LIMIT}; got {n}. "
+            "Each restart is one more greedy and exchange search over the whole grid; a few "
+            "already show whether the search ends at the same quality from different starts."
+        )
+    return n
 
 
 def _parse_aggregate(t: Table, default: str) -> str:

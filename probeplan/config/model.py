@@ -115,6 +115,12 @@ class InstalledProbe:
     grade: str | None = None
 
 
+#: The most restarts ``[design] restarts`` may ask for: each is a whole greedy and exchange
+#: search over the grid (seconds to a minute on a regional grid), and a few already show
+#: whether the search ends at the same quality from different starts.
+RESTARTS_LIMIT = 100
+
+
 @dataclass(frozen=True)
 class DesignSpec:
     """How layouts are scored and searched, ``[design]``.
@@ -140,6 +146,10 @@ class DesignSpec:
         ``--scheduler`` option and the ``PROBEPLAN_SCHEDULER`` variable come before it.
     scheduler_timeout_s : float
         How long to try to reach the scheduler before giving up, s, > 0.
+    restarts : int
+        Further exchange searches from randomised greedy starts when the relaxation bound is
+        loose (their spread is the summary's empirical figure), 0 to :data:`RESTARTS_LIMIT`;
+        0 runs none.
     """
 
     criterion: str = "d"
@@ -151,6 +161,7 @@ class DesignSpec:
     random_layouts: int = 1000
     scheduler: str | None = None
     scheduler_timeout_s: float = 10.0
+    restarts: int = 4
 
     @property
     def quantile(self) -> float | None:

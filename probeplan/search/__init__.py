@@ -1,9 +1,9 @@
 """The layout search: greedy and exchange on a candidate grid, a certified bound, refinement.
 
 Stages of :func:`plan` (modules: ``grid`` the grid objective, greedy and exchange; ``bound``
-the relaxation; ``refine`` the Bayesian refinement; ``stages`` the stream of every step of
-every stage; ``outcome`` :func:`plan`, which drains that stream, and the one builder of its
-result):
+the relaxation; ``restarts`` the randomised greedy starts; ``refine`` the Bayesian
+refinement; ``stages`` the stream of every step of every stage; ``outcome`` :func:`plan`, which
+drains that stream, and the one builder of its result):
 
 1. **Candidate grid** over the mounting regions, keep-outs removed (``Site.candidate_grid``),
    and the Fisher information each candidate adds in every scenario, A_sc, computed once.
@@ -24,11 +24,17 @@ result):
    spacing rule tightens it (``bound.spacing_steps``: weights of candidates closer than the
    spacing sum to at most 1, by Lagrangian relaxation; candidates too close to an installed
    meter get weight 0). Every product runs on chunks of candidate rows (``grid.WORK_BYTES``).
-5. **Bayesian refinement** (scikit-optimize ``Optimizer``, ask/tell) moves one probe at a time
+5. **Restarts**, only where the bound stays loose (D-efficiency under
+   ``restarts.TIGHT_BOUND_EFFICIENCY``): ``[design] restarts`` further exchange searches, each
+   from a greedy selection whose every pick is drawn among the best few candidates (GRASP:
+   Feo & Resende 1995) with the seeded generator. The best layout of all is kept; the spread of
+   their final values (``SearchInfo.restart_values``) is an empirical figure beside the bound —
+   evidence that the search is consistent, not a proof of optimality.
+6. **Bayesian refinement** (scikit-optimize ``Optimizer``, ask/tell) moves one probe at a time
    in the continuous coordinates of its mounting region, the others fixed — a 1–2-dimensional
    problem, the size at which a Gaussian-process optimiser converges in tens of calls. It
    keeps a move only if it improves the criterion; the summary reports what it added.
-6. **Baselines**: a regular hand-drawn layout and the best of N random layouts, scored alike.
+7. **Baselines**: a regular hand-drawn layout and the best of N random layouts, scored alike.
 
 A stop request (``plan(stop=...)``) is polled between any two steps of any stage; the search
 then ends with the best layout so far, or with none when the greedy stage had not yet placed

@@ -83,6 +83,7 @@ def make_outcome(
     best = _last(s.best for s in steps)
     grid = _last(s.grid for s in steps)
     relax = _last(s.bound for s in steps)
+    runs = _last(s.runs or None for s in steps)
     score = None if best is None else problem.score(best.positions_m, best.gain)
     info = SearchInfo(
         history=np.asarray(stored + [v for s in steps for v in s.history], dtype=float),
@@ -96,6 +97,7 @@ def make_outcome(
         objective="worst single loss" if problem.config.design.tolerate_failures else "criterion",
         evaluations_asked=asked,
         evaluations_spent=_spent(steps),
+        restart_values=None if runs is None else np.asarray(runs, dtype=float),
     )
     if best is None:
         return PlanOutcome(None, None, None, info, complete=False)

@@ -2,7 +2,9 @@
 
 Stages, in order (the package docstring says what each one does):
 
-    candidate grid → greedy → exchange → [warm start] → bound → refine → baselines
+    candidate grid → greedy → exchange → [warm start] → bound → [restarts] → refine → baselines
+
+(the restarts run only where the bound is loose: :mod:`probeplan.search.restarts`).
 
 Every element of the stream is a :class:`Step`: where the search is (stage, done, total: what a
 progress bar shows) and what that step found (a better layout, evaluated values for the
@@ -21,6 +23,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..errors import InputError
+from ..fisher import d_ratio
 from ..problem import Problem
 from ..resulttypes import Baseline
 from ..shard import row_steps
@@ -36,6 +40,7 @@ from .grid import (
     greedy_steps,
 )
 from .refine import REFINE_RADIUS_CELLS, refine_steps
+from .restarts import TIGHT_BOUND_EFFICIENCY, randomised_greedy_steps
 
 #: Bytes of forward-model Jacobian per chunk of candidate rows: the stop request is polled
 #: between chunks (and the forward model's own blocks stay in cache either way).
@@ -69,7 +74,8 @@ class Step:
     Attributes
     ----------
     stage : str
-        "candidate grid", "greedy", "exchange", "warm start", "bound", "refine", "baselines".
+        "candidate grid", "greedy", "exchange", "warm start", "bound", "restarts", "refine",
+        "baselines".
     done, total : int
         Progress within the stage.
     best : Layout or None
@@ -87,6 +93,9 @@ class Step:
         Objective evaluations this step spent, where they differ from ``len(history)``:
         refinement proposals that break the mounting rules are evaluated but not recorded,
         and baseline layouts are evaluated outside the history.
+    runs : tuple of float
+        On the last step of the restarts: the final value of every complete exchange search,
+        the one from the greedy layout first (``SearchInfo.restart_values``).
     """
 
     stage: str
@@ -99,6 +108,7 @@ class Step:
     bound: Relaxation | None = None
     grid: object | None = None
     evaluated: int | None = None
+    runs: tuple[float, ...] = ()
 
 
 class Halt:
@@ -170,11 +180,17 @@ def search_steps(
     chosen, best = picked
     if not halt():  # else the greedy layout is the result
         best = yield from _exchange_stage(grid, chosen, halt)
+    exchanged = best.value
     if settings.warm_start_m is not None:
         best = yield from _warm_stage(grid, settings.warm_start_m, best, halt)
     design = problem.config.design
     if problem.criterion.name == "d" and design.aggregate == "mean" and not halt():
-        yield from _bound_stage(grid, best, halt)
+        relax = yield from _bound_stage(grid, best, halt)
+        if relax is not None and not halt():
+            loose = d_ratio(best.value, relax.bound, problem.n_params) < TIGHT_BOUND_EFFICIENCY
+            if loose and design.restarts > 0:
+                restarts = (design.restarts, exchanged, rng.spawn(1)[0])
+                best = yield from _restart_stage(grid, best, restarts, halt)
     if settings.evaluations > 0 and not halt():
         yield from _refine_stage(grid, best, settings.evaluations, rng, halt)
     if not halt():
@@ -225,16 +241,28 @@ def _snapped(grid: _Grid, warm_start_m: np.ndarray | None) -> np.ndarray | None:
 
 def _greedy_stage(grid: _Grid, start: np.ndarray | None, halt: Halt) -> Iterator[Step]:
     """Greedy picks on the grid; returns the chosen candidates and their layout (None when
-    stopped before the last pick)."""
+    stopped before the last pick).
+
+    A start (a stored layout's candidates) whose probes leave no room for the rest under the
+    spacing rule — a budget's smaller plan can, since the restarts may end it anywhere — is
+    dropped and the greedy starts afresh; the stored layout still competes as the warm start.
+    """
     p = grid.problem
     count = p.count
-    picks = greedy_steps(
-        grid.objective, count, grid.positions_m, grid.min_spacing_m, p.installed_m, start
-    )
-    for chosen in picks:  # noqa: B020 - the last pick is the result
-        yield Step("greedy", chosen.size, count)
-        if chosen.size < count and halt():
-            return None
+    args = (grid.objective, count, grid.positions_m, grid.min_spacing_m, p.installed_m)
+    chosen = None
+    try:
+        for chosen in greedy_steps(*args, start):  # noqa: B007 - the last pick is the result
+            yield Step("greedy", chosen.size, count)
+            if chosen.size < count and halt():
+                return None
+    except InputError:
+        if start is None or start.size == 0:
+            raise
+        for chosen in greedy_steps(*args):  # noqa: B007 - the last pick is the result
+            yield Step("greedy", chosen.size, count)
+            if chosen.size < count and halt():
+                return None
     found = grid.layout(chosen)
     yield Step(
         "greedy",
@@ -289,10 +317,13 @@ def _warm_stage(grid: _Grid, warm_start_m: np.ndarray, best: Layout, halt: Halt)
         picks = extension_steps(
             p, grid.objective, grid.positions_m, warm, gain, p.count, grid.min_spacing_m
         )
-        for extra in picks:  # noqa: B007 - the last pick is the result
-            yield Step("warm start", extra.size, n_extra)
-            if extra.size < n_extra and halt():
-                return best
+        try:
+            for extra in picks:  # noqa: B007 - the last pick is the result
+                yield Step("warm start", extra.size, n_extra)
+                if extra.size < n_extra and halt():
+                    return best
+        except InputError:
+            return best  # the stored probes leave no room for the rest: it drops out
         warm = np.concatenate([warm, grid.positions_m[extra]])
         gain = np.concatenate([gain, grid.gains[extra]])
     value = exact(p, warm, gain)
@@ -313,7 +344,8 @@ def _on_grid(grid: _Grid, layout_m: np.ndarray) -> np.ndarray | None:
 
 def _bound_stage(grid: _Grid, best: Layout, halt: Halt) -> Iterator[Step]:
     """The relaxation bound, one evaluation a step. Every step's bound is certified, but one
-    cut short can be far from the best layout: only a finished bound is kept."""
+    cut short can be far from the best layout: only a finished bound is kept (and returned;
+    None when stopped)."""
     p = grid.problem
     yield Step("bound", 0, 1)
     relax = None
@@ -333,8 +365,59 @@ def _bound_stage(grid: _Grid, best: Layout, halt: Halt) -> Iterator[Step]:
         first = relax.gap if first is None else first
         yield Step("bound", _converged_percent(first, relax.gap, tol), 100)
         if halt():
-            return
+            return None
     yield Step("bound", 1, 1, bound=relax)
+    return relax
+
+
+def _restart_stage(
+    grid: _Grid, best: Layout, restarts: tuple[int, float, np.random.Generator], halt: Halt
+) -> Iterator[Step]:
+    """``n`` further searches, each a randomised greedy start and the Fedorov exchange, with
+    ``restarts = (n, value of the exchange from the greedy layout, rng)``; returns the best
+    layout of all. A stop keeps the better of the best so far and the layout the search it
+    cut short had reached (that search's value is not among the runs)."""
+    n, exchanged, rng = restarts
+    p = grid.problem
+    runs = [exchanged]
+    args = (grid.positions_m, grid.min_spacing_m, p.installed_m)
+    yield Step("restarts", 0, n)
+    for r in range(n):
+        chosen = None
+        for chosen in randomised_greedy_steps(grid.objective, p.count, *args, rng):  # noqa: B007
+            yield Step("restarts", r, n)
+            if halt():
+                break
+        if chosen is None or chosen.size < p.count:
+            if halt():
+                break
+            continue  # the randomised picks blocked the spacing: no layout from this start
+        for chosen in exchange_steps(grid.objective, chosen, *args):  # noqa: B007, B020
+            yield Step("restarts", r, n)
+            if halt():
+                break
+        found = grid.layout(chosen)
+        # A restart that ends at the incumbent's value (the same set in another order, up to
+        # rounding) does not replace it: the plan changes only for a real improvement.
+        better = p.better(
+            found.value, best.value + _RESTART_RTOL * _sign(p) * max(1.0, abs(best.value))
+        )
+        best = found if better else best
+        yield Step("restarts", r + 1, n, best=found if better else None, history=(found.value,))
+        if halt():
+            break
+        runs.append(found.value)
+    yield Step("restarts", n, n, value=best.value, runs=tuple(runs) if len(runs) > 1 else ())
+    return best
+
+
+#: Relative improvement over the incumbent a restart's layout must bring to replace it.
+_RESTART_RTOL = 1e-10
+
+
+def _sign(problem: Problem) -> float:
+    """+1 where the criterion is maximised, −1 where it is minimised."""
+    return 1.0 if problem.criterion.maximise else -1.0
 
 
 def _converged_percent(first: float, gap: float, tol: float) -> int:

@@ -46,6 +46,9 @@ File layout (beyond the contract's paths)::
     /search/n_candidates, /search/seconds, /search/stage_names, /search/stage_values,
     /search/baseline_names, /search/baseline_values, /search/baselines/{k}/positions_m,
                            attr objective
+    /search/restart_values (n_runs,)      criterion units, attr starts: the final value of
+                           every complete exchange search when restarts ran (the greedy
+                           start's first); absent when none ran (or in older files)
     /budget/count, grade, cost, value, meets_target, pareto  attrs cheapest, [target]
     /budget/layouts/{row}/positions_m
     /extra                 attrs name -> float

@@ -394,6 +394,12 @@ def _read_search(r: _Reader) -> SearchInfo:
         objective=r.attr("search", "objective"),
         evaluations_asked=None if asked is None else r.attr("search", "evaluations_asked", int),
         evaluations_spent=spent,
+        # Written since the restarts, and only where they ran.
+        restart_values=(
+            r.array("search/restart_values", shape=(None,), finite=False)
+            if r.has("search/restart_values")
+            else None
+        ),
     )
 
 

@@ -201,6 +201,13 @@ def _write_location(g: h5py.Group, loc) -> None:
         _write_dataclass(g.create_group("delivery"), d, units)
 
 
+#: What ``/search/restart_values`` holds, stored beside it.
+RESTART_STARTS = (
+    "final value of each complete exchange search on the candidate grid: first the one from "
+    "the greedy layout, then one a restart from a randomised greedy start"
+)
+
+
 def _write_search(g: h5py.Group, s: SearchInfo, vunit: str) -> None:
     _dataset(g, "history", np.asarray(s.history, dtype=float).reshape(-1), vunit)
     if s.bound is not None:
@@ -216,6 +223,10 @@ def _write_search(g: h5py.Group, s: SearchInfo, vunit: str) -> None:
     if s.evaluations_spent:
         _strings(g, "evaluation_stages", [name for name, _ in s.evaluations_spent])
         _dataset(g, "evaluations_spent", np.array([n for _, n in s.evaluations_spent], np.int64))
+    if s.restart_values is not None:
+        runs = np.asarray(s.restart_values, dtype=float).reshape(-1)
+        ds = _dataset(g, "restart_values", runs, vunit)
+        ds.attrs["starts"] = RESTART_STARTS
     _strings(g, "stage_names", [name for name, _ in s.stages])
     _dataset(g, "stage_values", np.array([v for _, v in s.stages], dtype=float), vunit)
     _strings(g, "baseline_names", [b.name for b in s.baselines])
