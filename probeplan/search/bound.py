@@ -15,7 +15,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .forms import quadratic_sums
+from .forms import columns_gram, columns_traces, quadratic_sums, weighted_gram
 from .grid import candidate_chunks, drain
 
 #: Stop the relaxation when its certified gap is below this (in log det units, per parameter).
@@ -69,14 +69,11 @@ def _relaxed(
     candidates (:func:`~probeplan.search.grid.candidate_chunks`), never the (S, C, p, p)
     information. With ``penalty`` μ ``(C,)``: f(w) − μ·w and its gradient.
     """
+    if isinstance(rows, Columns):
+        return rows.relaxed(w, base, penalty)
     n_s, n_c, n_a, n_p = rows.shape
-    m = base.copy()
     # Only the candidates with weight add to M: after the first steps a small support.
-    nz = np.flatnonzero(w)
-    for sl in candidate_chunks(rows[:, : nz.size]):
-        r = rows[:, nz[sl]].reshape(n_s, -1, n_p)  # (S, c·a, p)
-        wr = r * np.repeat(w[nz[sl]], n_a)[None, :, None]
-        m += np.matmul(np.swapaxes(wr, -1, -2), r)
+    m = base + weighted_gram(rows, w)
     sign, ld = np.linalg.slogdet(m)
     if np.any(sign <= 0):
         return -np.inf, None
@@ -94,6 +91,43 @@ def _relaxed(
     if penalty is not None:  # the Lagrangian f(w) − μ·w of the spacing rule
         return float(ld.mean()) - float(penalty @ w), grad - penalty
     return float(ld.mean()), grad
+
+
+class Columns:
+    """A working set's rows laid out for matrix products: ``(S, p, n·a)``, each candidate's
+    axes side by side, so that M = R diag(w) Rᵀ and the traces |L⁻¹ R|² are long
+    matrix products per scenario (BLAS), not many small ones.
+
+    Parameters
+    ----------
+    rows : (S, n, a, p) float
+    """
+
+    def __init__(self, rows: np.ndarray) -> None:
+        n_s, n, self.n_a, n_p = rows.shape
+        self.t = np.ascontiguousarray(np.swapaxes(rows.reshape(n_s, n * self.n_a, n_p), 1, 2))
+        self.shape = (n_s, n)
+
+    def relaxed(self, w, base, penalty):
+        """:func:`_relaxed` of these columns."""
+        n_s, n_p, n_cols = self.t.shape
+        gram = np.empty((n_s, n_p, n_p))
+        columns_gram(self.t, np.repeat(w, self.n_a), gram)
+        m = base + gram
+        sign, ld = np.linalg.slogdet(m)
+        if np.any(sign <= 0):
+            return -np.inf, None
+        try:
+            low_inv = np.tril(np.linalg.inv(np.linalg.cholesky(m)))
+        except np.linalg.LinAlgError:
+            q = np.einsum("spi,spi->i", np.matmul(np.linalg.inv(m), self.t), self.t)
+        else:
+            q = np.empty(n_cols)
+            columns_traces(self.t, low_inv, q)
+        grad = q.reshape(-1, self.n_a).sum(axis=1) / n_s
+        if penalty is not None:
+            return float(ld.mean()) - float(penalty @ w), grad - penalty
+        return float(ld.mean()), grad
 
 
 def _fw_gap(w: np.ndarray, grad: np.ndarray, count: int, upper=None) -> float:
@@ -330,7 +364,7 @@ def _ascent(rows, base, count, w, f, g, max_iter, gap_tol, upper=None, penalty=N
         if np.count_nonzero(w) <= n_c // 2:  # not the first round's weights, spread over all
             ws[w > 0] = True
         idx = np.flatnonzero(ws)
-        sub = np.ascontiguousarray(rows[:, idx])
+        sub = Columns(rows[:, idx])
         cap = 1.0 if upper is None else upper[idx]
         pen = None if penalty is None else penalty[idx]
         start = w[idx] * (count / max(w[idx].sum(), 1e-300))

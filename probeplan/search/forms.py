@@ -29,6 +29,9 @@ LOOP_BLOCK = 512
 #: ~1e-7) so that a bound made from them is still a bound.
 LOG32_MARGIN = 1e-6
 TINY32 = float(np.finfo(np.float32).tiny)
+#: Floating-point liberties of the sums of the relaxation's loops: reassociation (and fused
+#: multiply-adds) let them run on vector units; no assumption that values are finite.
+_VECTOR_MATH = {"reassoc", "contract", "nsz", "arcp"}
 
 
 class Forms:
@@ -299,7 +302,7 @@ def _swap_loop(r, q, h_i, k_i, h_c, k_c, out):  # pragma: no cover - compiled
                 out[s, c] = q[s, c] + k_i[s] * t_i * t_i - k_c[s] * t_c * t_c
 
 
-@numba.njit(cache=True, nogil=True, parallel=True, error_model="numpy")
+@numba.njit(cache=True, nogil=True, parallel=True, error_model="numpy", fastmath=_VECTOR_MATH)
 def _triangular_loop(r, low_inv, q, sums):  # pragma: no cover - compiled
     """|L_s⁻¹ r_scᵀ|² = r_sc M_s⁻¹ r_scᵀ (M_s = L_s L_sᵀ) of every row: into ``q (S, C)``
     when it has C columns, and summed over the scenarios into ``sums (C,)`` when it has C
@@ -343,3 +346,74 @@ def quadratic_sums(rows: np.ndarray, m: np.ndarray) -> np.ndarray | None:
         _plain3(rows.reshape(n_s, n_c * n_a, n_p)), np.tril(low_inv), np.empty((0, 0)), sums
     )
     return sums.reshape(n_c, n_a).sum(axis=1)
+
+
+def weighted_gram(rows: np.ndarray, w: np.ndarray) -> np.ndarray:
+    """Σ_c w_c R_scᵀ R_sc of ``rows (S, C, a, p)`` and weights ``w (C,)`` (the candidates
+    with weight only), ``(S, p, p)``: one compiled pass, scenarios in parallel."""
+    n_s, n_c, n_a, n_p = rows.shape
+    nz = np.flatnonzero(w)
+    out = np.zeros((n_s, n_p, n_p))
+    _gram_loop(
+        _plain3(rows.reshape(n_s, n_c * n_a, n_p)),
+        np.repeat(w, n_a),
+        (nz[:, None] * n_a + np.arange(n_a)).ravel(),
+        out,
+    )
+    return out
+
+
+@numba.njit(cache=True, nogil=True, parallel=True, error_model="numpy", fastmath=_VECTOR_MATH)
+def _gram_loop(r, w, nz, out):  # pragma: no cover - compiled
+    """out_s = Σ_{i ∈ nz} w_i r_siᵀ r_si (lower triangle summed, then mirrored):
+    ``r (S, N, p)``, ``w (N,)``, ``nz (k,) int``, ``out (S, p, p)`` zeroed. One scenario a
+    thread, rows in order: sums that do not depend on the threads."""
+    n_s, _, n_p = r.shape
+    for s in numba.prange(n_s):
+        for i in nz:
+            wi = w[i]
+            for a in range(n_p):
+                ra = wi * r[s, i, a]
+                for b in range(a + 1):
+                    out[s, a, b] += ra * r[s, i, b]
+        for a in range(n_p):
+            for b in range(a):
+                out[s, b, a] = out[s, a, b]
+
+
+@numba.njit(cache=True, nogil=True, parallel=True, error_model="numpy", fastmath=_VECTOR_MATH)
+def columns_gram(t, w, out):  # pragma: no cover - compiled
+    """out_s = T_s diag(w) T_sᵀ of columns ``t (S, p, N)``, ``w (N,)``, ``out (S, p, p)``:
+    contiguous dot products (vector units), one scenario a thread."""
+    n_s, n_p, n = t.shape
+    for s in numba.prange(n_s):
+        for a in range(n_p):
+            for b in range(a + 1):
+                acc = 0.0
+                for i in range(n):
+                    acc += w[i] * t[s, a, i] * t[s, b, i]
+                out[s, a, b] = acc
+                out[s, b, a] = acc
+
+
+@numba.njit(cache=True, nogil=True, parallel=True, error_model="numpy", fastmath=_VECTOR_MATH)
+def columns_traces(t, low_inv, out):  # pragma: no cover - compiled
+    """out_i = Σ_s |L_s⁻¹ t_s,:,i|² of columns ``t (S, p, N)``, ``low_inv (S, p, p)`` lower
+    triangular, ``out (N,)``: candidates in blocks (one thread each), scenarios in order."""
+    n_s, n_p, n = t.shape
+    n_blocks = (n + LOOP_BLOCK - 1) // LOOP_BLOCK
+    for blk in numba.prange(n_blocks):
+        i0 = blk * LOOP_BLOCK
+        i1 = min(n, i0 + LOOP_BLOCK)
+        acc = np.zeros(i1 - i0)
+        u = np.empty(i1 - i0)
+        for s in range(n_s):
+            for a in range(n_p):
+                u[:] = 0.0
+                for b in range(a + 1):
+                    lab = low_inv[s, a, b]
+                    for i in range(i0, i1):
+                        u[i - i0] += lab * t[s, b, i]
+                for k in range(i1 - i0):
+                    acc[k] += u[k] * u[k]
+        out[i0:i1] = acc
