@@ -108,7 +108,7 @@ def _one_swap_optimal(obj, chosen, positions, min_spacing):
 
 @pytest.mark.parametrize("seed", [1, 4])
 def test_multilevel_exchange_ends_one_swap_optimal_on_the_whole_grid(seed, monkeypatch):
-    # Thinned grids from 30 candidates on (the production threshold is 12,000): the greedy
+    # Thinned grids from 30 candidates on (the production threshold is 6,000): the greedy
     # runs on the coarsest, the exchange on every level; the end must still be a layout that
     # no single swap on the whole grid improves (exhaustive check).
     monkeypatch.setattr(grid, "MULTILEVEL_MIN", 30)

@@ -399,7 +399,7 @@ class SpacingCounts:
 
 
 #: Candidates above which the greedy and the exchange start on thinned grids (:func:`_levels`).
-MULTILEVEL_MIN = 12_000
+MULTILEVEL_MIN = 6_000
 #: Candidates at most on the coarsest thinned grid.
 COARSE_MAX = 3_000
 
