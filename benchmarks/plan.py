@@ -89,9 +89,9 @@ def _grid_scaling(problem, repeats: int) -> tuple[float, float, str]:
             t = time.perf_counter()
             obj = GridObjective(problem, rows, prior=True)
             counter = [0]
-            # A sweep: every candidate tried once, by the greedy (add_values) or by the
-            # exchange (removal_values, a downdate).
-            for name in ("add_values", "removal_values"):
+            # A sweep: every candidate tried once, by the greedy (best_addition) or by the
+            # exchange's pass over the whole grid (best_removal, a downdate).
+            for name in ("best_addition", "best_removal"):
                 sweep = getattr(obj, name)
 
                 def counted(*a, _sweep=sweep, _counter=counter):

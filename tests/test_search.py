@@ -426,7 +426,9 @@ def _stop_at(problem, k: int | None, monkeypatch) -> tuple[object, CountingStop]
     stop = CountingStop(k)
     with monkeypatch.context() as m:
         m.setattr(
-            grid.GridObjective, "add_values", stop.count("sweeps", grid.GridObjective.add_values)
+            grid.GridObjective,
+            "best_addition",
+            stop.count("sweeps", grid.GridObjective.best_addition),
         )
         m.setattr(bound, "_relaxed", stop.count("relaxed", bound._relaxed))
         m.setattr(Problem, "rows", stop.count("rows", Problem.rows))

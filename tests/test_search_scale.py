@@ -15,9 +15,19 @@ from hypothesis import strategies as st
 from test_search import FAIR_WEATHER, all_subset_values, grid_problem
 
 import probeplan.search.bound as bound
+import probeplan.search.forms as forms_module
 import probeplan.search.grid as grid
 from probeplan.search import GridObjective, exchange, greedy, relaxation_bound
 from probeplan.search.forms import Forms, addition_terms, pick, removal_terms
+
+
+@pytest.fixture(params=["numpy", "compiled"])
+def sweeps(request, monkeypatch):
+    """Both ways of the sweeps: numpy's products (small grids) and the compiled loops (large
+    ones, forced here by a threshold of 0)."""
+    if request.param == "compiled":
+        monkeypatch.setattr(forms_module, "COMPILED_MIN", 0)
+    return request.param
 
 
 def _forms(obj: GridObjective, chosen: np.ndarray) -> Forms:
@@ -33,7 +43,7 @@ def _exact_added(obj: GridObjective, chosen: np.ndarray) -> np.ndarray:
 
 @pytest.mark.parametrize("seed", [0, 3])
 @pytest.mark.parametrize("component", ["z", "vector"])
-def test_pruned_pick_is_the_exhaustive_argmax(seed, component):
+def test_pruned_pick_is_the_exhaustive_argmax(seed, component, sweeps):
     # Reference: every candidate valued from its own matrix (slogdet of M + A_c), first index
     # on ties; the pick must choose the same candidate with the same value.
     probes = {"component": component} if component != "z" else None
@@ -71,7 +81,7 @@ def test_removal_bounds_are_above_the_exact_terms(seed, i):
         np.testing.assert_allclose(ld + terms(np.array([c]))[:, 0], direct, atol=1e-8)
 
 
-def test_swapped_forms_match_forms_swept_afresh():
+def test_swapped_forms_match_forms_swept_afresh(sweeps):
     problem, cand, rows = grid_problem(2, count=4)
     obj = GridObjective(problem, rows, prior=True)
     chosen = np.array([3, 17, 30, 44])
@@ -107,7 +117,7 @@ def _one_swap_optimal(obj, chosen, positions, min_spacing):
 
 
 @pytest.mark.parametrize("seed", [1, 4])
-def test_multilevel_exchange_ends_one_swap_optimal_on_the_whole_grid(seed, monkeypatch):
+def test_multilevel_exchange_ends_one_swap_optimal_on_the_whole_grid(seed, monkeypatch, sweeps):
     # Thinned grids from 30 candidates on (the production threshold is 6,000): the greedy
     # runs on the coarsest, the exchange on every level; the end must still be a layout that
     # no single swap on the whole grid improves (exhaustive check).
@@ -127,7 +137,7 @@ def test_multilevel_exchange_ends_one_swap_optimal_on_the_whole_grid(seed, monke
     assert _one_swap_optimal(obj, swapped, pos, 1500.0)
 
 
-def test_working_set_bound_is_above_every_subset_and_close_to_the_plain_one(monkeypatch):
+def test_working_set_bound_is_above_every_subset_and_close_to_the_plain_one(monkeypatch, sweeps):
     # The working-set ascent (column generation) on a 49-candidate grid, forced by a small
     # threshold: its bound must still be above every subset (exhaustive enumeration) and
     # agree with the plain ascent's within their certified gaps.
@@ -159,3 +169,35 @@ def test_a_bound_read_against_a_plan_stops_at_a_gap_fitting_the_distance():
         )
         + 1e-12
     )
+
+
+def test_compiled_loops_give_numpys_values(monkeypatch):
+    # The same quantities by numpy's products and by the compiled loops (threshold 0), to
+    # round-off: the tiny prior leaves some forms at 1e5–1e6, where sums in another order
+    # differ in the eighth digit.
+    problem, cand, rows = grid_problem(2, count=4)
+    obj = GridObjective(problem, rows, prior=True)
+    chosen = np.array([3, 11, 30, 44])
+    w = np.random.default_rng(0).random(cand.n_candidates)
+
+    def quantities():
+        f = _forms(obj, chosen)
+        up = removal_terms(f, obj.rows, 11, obj.matrix(np.delete(chosen, 1)))[1]
+        new = chosen.copy()
+        new[1] = 25
+        sw = f.swapped(
+            obj.rows,
+            new,
+            obj.matrix(np.delete(chosen, 1)),
+            obj.matrix(new),
+            11,
+            25,
+            grid.candidate_chunks,
+        )
+        val, grad = bound._relaxed(w, obj.rows, obj.matrix(chosen))
+        return f.q, up, sw.q, val, grad
+
+    plain = quantities()
+    monkeypatch.setattr(forms_module, "COMPILED_MIN", 0)
+    for a, b in zip(plain, quantities(), strict=True):
+        np.testing.assert_allclose(a, b, rtol=1e-6, atol=1e-12)

@@ -15,7 +15,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .forms import columns_gram, columns_traces, quadratic_sums, weighted_gram
+from .forms import columns_gram, columns_traces, compiled, quadratic_sums, weighted_gram
 from .grid import candidate_chunks, drain
 
 #: Stop the relaxation when its certified gap is below this (in log det units, per parameter).
@@ -72,14 +72,21 @@ def _relaxed(
     if isinstance(rows, Columns):
         return rows.relaxed(w, base, penalty)
     n_s, n_c, n_a, n_p = rows.shape
-    # Only the candidates with weight add to M: after the first steps a small support.
-    m = base + weighted_gram(rows, w)
+    # The compiled loops pay on large grids; on small ones numpy's products are quicker
+    # (measured: 3.3 against 10 ms an evaluation at 892 candidates × 64 scenarios).
+    if compiled(rows):  # only the candidates with weight add to M: after a few steps, few
+        m = base + weighted_gram(rows, w)
+    else:
+        wr = rows * w[None, :, None, None]
+        m = base + np.matmul(
+            np.swapaxes(wr.reshape(n_s, -1, n_p), -1, -2), rows.reshape(n_s, -1, n_p)
+        )
     sign, ld = np.linalg.slogdet(m)
     if np.any(sign <= 0):
         return -np.inf, None
     # tr(M⁻¹ A_c) = |L⁻¹ R_cᵀ|² with M = L Lᵀ: one compiled pass (or, where M is too
     # ill-conditioned for Cholesky in floating point, products with M⁻¹ itself).
-    grad = quadratic_sums(rows, m)
+    grad = quadratic_sums(rows, m) if compiled(rows) else None
     if grad is None:
         minv = np.linalg.inv(m)
         grad = np.empty(n_c)

@@ -64,7 +64,7 @@ class Forms:
         one (c·a, p) × (p, p) product per scenario and chunk of candidates."""
         n_s, n_c, n_a, _ = rows.shape
         q = np.empty((n_s, n_c, n_a, n_a))
-        if n_a == 1:  # one compiled pass, from the Cholesky factor when M allows it
+        if n_a == 1 and compiled(rows):  # one compiled pass, from Cholesky when M allows it
             try:
                 low_inv = np.tril(np.linalg.inv(np.linalg.cholesky(m)))
             except np.linalg.LinAlgError:
@@ -114,7 +114,7 @@ class Forms:
         """Forms of ``chosen`` (information ``m``): this set with candidate ``i_cand``
         replaced by ``c``; ``m_rest`` the information without either."""
         n_a = rows.shape[2]
-        if n_a > 1:
+        if n_a > 1 or not compiled(rows):
             rest = self.updated(rows, chosen, m_rest, i_cand, -1.0, chunks)
             return rest.updated(rows, chosen, m, c, 1.0, chunks)
         # Single axis: both rank-one terms in one compiled pass,
@@ -142,6 +142,16 @@ def quadratic(rows: np.ndarray, minv_t: np.ndarray) -> tuple[np.ndarray, np.ndar
     else:
         small = np.einsum("scap,scbp->scab", rows, u)
     return u, small
+
+
+#: Scenarios × candidates × axes from which the sweeps run compiled loops: below it numpy's
+#: products are quicker (the loops' threads cost about a millisecond a call).
+COMPILED_MIN = 500_000
+
+
+def compiled(rows: np.ndarray) -> bool:
+    """Whether the sweeps of ``rows (S, C, a, p)`` run the compiled loops."""
+    return rows.shape[0] * rows.shape[1] * rows.shape[2] >= COMPILED_MIN
 
 
 def _plain3(r: np.ndarray) -> np.ndarray:
@@ -174,10 +184,14 @@ def removal_terms(forms: Forms, rows: np.ndarray, i_cand: int, m_rest: np.ndarra
 
     if n_a > 1:
         return ld, None, terms
-    upper = np.empty(n_c)
-    _removal_bound_loop(
-        _plain3(rows[:, :, 0, :]), forms.q[:, :, 0, 0], h[..., 0], k[:, 0, 0], upper
-    )
+    if compiled(rows):
+        upper = np.empty(n_c)
+        _removal_bound_loop(
+            _plain3(rows[:, :, 0, :]), forms.q[:, :, 0, 0], h[..., 0], k[:, 0, 0], upper
+        )
+    else:
+        b = np.matmul(rows[:, :, 0, :], h)[..., 0]  # (S, C)
+        upper = (k[:, 0] * b * b / (1.0 + forms.q[:, :, 0, 0])).sum(axis=0)
     return ld, upper + forms.log_bound(), terms
 
 
