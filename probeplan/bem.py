@@ -37,6 +37,7 @@ import math
 import os
 import tempfile
 from dataclasses import dataclass
+from functools import cached_property
 from pathlib import Path
 
 import numba
@@ -44,6 +45,7 @@ import numpy as np
 from scipy import linalg
 
 from .conductors import check_overlaps, check_points
+from .lowrank import Responses, Skeleton
 from .sources import K_COULOMB
 
 #: Bumped whenever the matrix changes meaning, so older cache files are not read.
@@ -184,10 +186,27 @@ def _panel(px, py, pz, tri, area, size2, sign_z, ground, want_grad, buf, img):
     buf[0], buf[1], buf[2], buf[3] = a3 * pot, a3 * gx, a3 * gy, a3 * gz
 
 
+@numba.njit(cache=True, nogil=True, error_model="numpy")
+def _far(px, py, pz, cx, cy, cz, area, size2, buf):
+    """The centroid rule of :func:`_panel` when it applies (returns True), inline and without
+    the image copy: most (point, panel) pairs of a site are far, and this is all they cost."""
+    dx, dy, dz = px - cx, py - cy, pz - cz
+    r2 = dx * dx + dy * dy + dz * dz
+    if r2 < _CENTROID_SIZES * _CENTROID_SIZES * size2:
+        return False
+    inv = 1.0 / math.sqrt(r2)
+    buf[0] = area * inv
+    w = -area * inv * inv * inv
+    buf[1], buf[2], buf[3] = w * dx, w * dy, w * dz
+    return True
+
+
 @numba.njit(cache=True, nogil=True, error_model="numpy", parallel=True)
-def _matrices(points, tris, areas, sizes, ground, has_ground, want_grad):
+def _matrices(points, tris, cents, image_cents, areas, sizes, ground, has_ground, want_grad):
     """∫ G/k dA of panel j at point i per unit σ (m), ``(M, N)``, or with ``want_grad`` the
-    field per unit σ over k, ``(M, 3, N)`` (−∇ of it); G holds the images when ``has_ground``."""
+    field per unit σ over k, ``(M, 3, N)`` (−∇ of it); G holds the images when ``has_ground``.
+    ``cents`` and ``image_cents`` ``(N, 3)``: the panels' centroids and their mirror images',
+    formed as :func:`_panel` forms them, so the inline far rule gives the same numbers."""
     M = points.shape[0]
     N = tris.shape[0]
     out = np.empty((M, 3 if want_grad else 1, N))
@@ -197,10 +216,13 @@ def _matrices(points, tris, areas, sizes, ground, has_ground, want_grad):
         px, py, pz = points[i, 0], points[i, 1], points[i, 2]
         for j in range(N):
             s2 = sizes[j] * sizes[j]
-            _panel(px, py, pz, tris[j], areas[j], s2, 1.0, ground, want_grad, buf, img)
+            if not _far(px, py, pz, cents[j, 0], cents[j, 1], cents[j, 2], areas[j], s2, buf):
+                _panel(px, py, pz, tris[j], areas[j], s2, 1.0, ground, want_grad, buf, img)
             v0, v1, v2, v3 = buf[0], buf[1], buf[2], buf[3]
             if has_ground:
-                _panel(px, py, pz, tris[j], areas[j], s2, -1.0, ground, want_grad, buf, img)
+                ix, iy, iz = image_cents[j, 0], image_cents[j, 1], image_cents[j, 2]
+                if not _far(px, py, pz, ix, iy, iz, areas[j], s2, buf):
+                    _panel(px, py, pz, tris[j], areas[j], s2, -1.0, ground, want_grad, buf, img)
                 v0 -= buf[0]
                 v1 -= buf[1]
                 v2 -= buf[2]
@@ -214,11 +236,24 @@ def _matrices(points, tris, areas, sizes, ground, has_ground, want_grad):
     return out
 
 
+def _centroids(triangles_m: np.ndarray, ground_z_m) -> tuple[np.ndarray, np.ndarray]:
+    """Centroids and image centroids ``(N, 3)``, summed in :func:`_panel`'s order."""
+    t = triangles_m
+    cents = (t[:, 0] + t[:, 1] + t[:, 2]) / 3.0
+    images = cents.copy()
+    if ground_z_m is not None:
+        z = 2.0 * float(ground_z_m) - t[:, :, 2]
+        images[:, 2] = (z[:, 0] + z[:, 1] + z[:, 2]) / 3.0
+    return np.ascontiguousarray(cents), np.ascontiguousarray(images)
+
+
 def _operator(points_m, panels: Panels, ground_z_m, want_grad: bool) -> np.ndarray:
     g = ground_z_m
+    tris = np.ascontiguousarray(panels.triangles_m, dtype=float)
     out = _matrices(
         np.ascontiguousarray(points_m, dtype=float),
-        np.ascontiguousarray(panels.triangles_m, dtype=float),
+        tris,
+        *_centroids(tris, g),
         panels.areas_m2,
         panels.sizes_m,
         0.0 if g is None else float(g),
@@ -446,6 +481,10 @@ def factorize(
     return Factorization(panels, ground_z_m, floating, lu, piv, length)
 
 
+#: Bumped whenever the far-field skeleton changes meaning (see :attr:`Structures.skeleton`).
+_FAR_VERSION = 1
+_SKELETON_FIELDS = ("centres_m", "far_m", "panels", "interpolation")
+
 # The last factorisations of this process, by key: a budget builds one problem per option.
 _RECENT: dict = {}
 
@@ -497,6 +536,7 @@ class Structures:
     ground_z_m: float | None
     surfaces: tuple
     factor: Factorization
+    use_cache: bool = True
 
     @classmethod
     def build(
@@ -515,6 +555,7 @@ class Structures:
             ground_z_m,
             surfaces,
             factorize(panels, ground_z_m, floating, use_cache=use_cache, progress=progress),
+            use_cache,
         )
 
     @property
@@ -559,19 +600,80 @@ class Structures:
         rhs = jphi[:, :, cols].transpose(1, 0, 2).reshape(n, n_s * cols.size)
         return sigma, self.factor.solve(rhs)
 
+    @staticmethod
+    def responses_of(
+        sigma: np.ndarray, d_sigma: np.ndarray | None = None, *, shared: bool = False
+    ) -> Responses:
+        """The output of :meth:`responses` as :class:`Responses`, on a shared basis when
+        ``shared`` and that pays (see :meth:`Responses.of`)."""
+        return Responses.of(sigma, d_sigma) if shared else Responses(None, sigma, d_sigma)
+
+    @cached_property
+    def skeleton(self) -> Skeleton:
+        """Skeleton panels for far points (:class:`probeplan.lowrank.Skeleton`), built on
+        first use (about half a second per conductor) and cached on disk beside the factors."""
+        panels = self.factor.panels
+        path = None
+        if self.use_cache:
+            key = _key(panels, self.ground_z_m, self.factor.floating)
+            path = cache_dir() / f"{key}-far{_FAR_VERSION}.npz"
+            try:
+                with np.load(path) as f:
+                    found = Skeleton(*(f[name] for name in _SKELETON_FIELDS))
+                if found.interpolation.shape[1] == panels.n_panels:
+                    return found
+            except (OSError, ValueError, KeyError):
+                pass
+
+        def operator(points_m, cols):
+            sub = Panels(panels.triangles_m[cols], panels.owner[cols])
+            return K_COULOMB * _operator(points_m, sub, self.ground_z_m, True)
+
+        skeleton = Skeleton.build(
+            panels.triangles_m,
+            panels.owner,
+            panels.sizes_m,
+            self.ground_z_m,
+            operator,
+            _CENTROID_SIZES,
+        )
+        if path is not None:
+            _write_atomic(path, **{name: getattr(skeleton, name) for name in _SKELETON_FIELDS})
+        return skeleton
+
     def field_of(
-        self, points_m: np.ndarray, sigma: np.ndarray, d_sigma: np.ndarray | None
+        self, points_m: np.ndarray, responses: Responses
     ) -> tuple[np.ndarray, np.ndarray | None]:
-        """Field ``(n_scenarios, n_points, 3)`` of the responses of :meth:`responses`, and its
-        Jacobian ``(n_scenarios, n_points, 3, n_cols)`` (exact panel integrals near panels)."""
-        n_pts, n = points_m.shape[0], self.factor.panels.n_panels
-        n_s = sigma.shape[1]
-        op = self.factor.field_operator(points_m).reshape(n_pts * 3, n)
-        field = (op @ sigma).reshape(n_pts, 3, n_s).transpose(2, 0, 1)
-        if d_sigma is None:
+        """Field ``(n_scenarios, n_points, 3)`` of :class:`~probeplan.lowrank.Responses`,
+        and its Jacobian ``(n_scenarios, n_points, 3, n_cols)``.
+
+        The panel operator meets the responses' basis first, so a compressed set of responses
+        costs its rank, not its column count, per point; points far from every conductor see
+        only the skeleton panels (:attr:`skeleton`), near ones every panel, with the exact
+        integrals close to them.
+        """
+        n_pts = points_m.shape[0]
+        cols = responses.columns
+        mapped = np.empty((n_pts, 3, cols.shape[1]))
+        far = self.skeleton.far(points_m) if n_pts else np.zeros(0, bool)
+        if far.any():
+            skel = self.skeleton
+            panels = self.factor.panels
+            sub = Panels(panels.triangles_m[skel.panels], panels.owner[skel.panels])
+            op = K_COULOMB * _operator(points_m[far], sub, self.ground_z_m, True)
+            mapped[far] = (op.reshape(-1, skel.panels.size) @ responses.reduced(skel)).reshape(
+                -1, 3, cols.shape[1]
+            )
+        if not far.all():
+            op = self.factor.field_operator(points_m[~far])
+            mapped[~far] = (op.reshape(-1, op.shape[2]) @ cols).reshape(-1, 3, cols.shape[1])
+        field, jac = responses.combine(mapped.reshape(n_pts * 3, cols.shape[1]))
+        n_s = responses.n_scenarios
+        field = field.reshape(n_pts, 3, n_s).transpose(2, 0, 1)
+        if jac is None:
             return field, None
-        n_cols = d_sigma.shape[1] // n_s
-        jac = (op @ d_sigma).reshape(n_pts, 3, n_s, n_cols).transpose(2, 0, 1, 3)
+        n_cols = jac.shape[1] // n_s
+        jac = jac.reshape(n_pts, 3, n_s, n_cols).transpose(2, 0, 1, 3)
         return field, np.ascontiguousarray(jac)
 
     def induced(
@@ -600,7 +702,8 @@ class Structures:
         jacobian : (n_scenarios, n_points, 3, n_cols) float or None
             ∂E_induced/∂θ = K A⁻¹ ∂(−φ_ext)/∂θ.
         """
-        return self.field_of(points_m, *self.responses(scene, theta, columns, jacobian))
+        sigma, d_sigma = self.responses(scene, theta, columns, jacobian)
+        return self.field_of(points_m, Responses(None, sigma, d_sigma))
 
 
 __all__ = [

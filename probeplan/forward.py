@@ -30,6 +30,8 @@ BACKGROUND_PARAMS: tuple[str, ...] = ("bg.x_v_per_m", "bg.y_v_per_m", "bg.z_v_pe
 _PRODUCT_ELEMENTS = 1 << 16
 # Scenario rows of structure responses a Scene keeps (see Scene._responses).
 _MEMO_ROWS = 4096
+# Whole blocks of scenarios whose responses a Scene keeps on their shared basis.
+_MEMO_BLOCKS = 4
 # Largest (kernel columns × kept columns) mapped by a matrix product in Scene._assemble
 # (measured crossover with the in-place path: between 300 and 800, 64 scenarios, 1 MB blocks).
 _SMALL_MAP = 512
@@ -70,6 +72,7 @@ class Scene:
     structures: object = None
     _groups: tuple[_KindGroup, ...] = field(init=False, repr=False)
     _memo: dict = field(init=False, repr=False, default_factory=dict)
+    _blocks: dict = field(init=False, repr=False, default_factory=dict)
 
     def __post_init__(self) -> None:
         srcs = _as_sources(self.sources)
@@ -216,8 +219,7 @@ class Scene:
             total += theta[:, None, -3:]
         if not jacobian:
             if self.structures is not None:
-                sigma, _ = self._responses(theta, None)
-                total += self.structures.field_of(points_m, sigma, None)[0]
+                total += self.structures.field_of(points_m, self._responses(theta, None))[0]
             return total, None
         cols = np.arange(self.n_params) if columns is None else np.asarray(columns, dtype=int)
         if direct:
@@ -229,7 +231,7 @@ class Scene:
                 out[...] = full
             full = out
         if self.structures is not None:
-            e_ind, j_ind = self.structures.field_of(points_m, *self._responses(theta, cols))
+            e_ind, j_ind = self.structures.field_of(points_m, self._responses(theta, cols))
             total += e_ind
             full += j_ind
         return total, full
@@ -244,10 +246,32 @@ class Scene:
             self._responses(theta, np.asarray(columns, dtype=int))
 
     def _responses(self, theta: np.ndarray, cols: np.ndarray | None):
-        """The structures' σ responses to ``theta``, ``(n_panels, S)`` and ``(n_panels, S *
-        n_cols)``, kept per scenario row: a plan evaluates the same scenarios, whole or in
-        chunks, at many point sets, and only rows not seen before are solved for."""
+        """The structures' responses to ``theta`` (:class:`probeplan.bem.Responses`).
+
+        A plan evaluates the same scenarios at many point sets: the last blocks of scenarios
+        are kept whole, and from a block's second call on, on their shared basis (so each call
+        costs the basis' rank per point, not n_scenarios × n_cols); rows are also kept one by
+        one, so that a block made of rows seen before is not solved for again.
+        """
         ckey = None if cols is None else np.asarray(cols).tobytes()
+        block_key = (ckey, theta.shape, theta.tobytes())
+        found = self._blocks.get(block_key)
+        if found is None:
+            # first sight: as solved (a fit's scenarios change every call, and a basis would
+            # cost more than it saves); kept, so a second call finds the block
+            found = self.structures.responses_of(*self._response_rows(theta, cols, ckey))
+        elif found.basis is None:
+            found = self.structures.responses_of(found.sigma, found.d_sigma, shared=True)
+        else:
+            return found
+        if len(self._blocks) >= _MEMO_BLOCKS and block_key not in self._blocks:
+            self._blocks.clear()
+        self._blocks[block_key] = found
+        return found
+
+    def _response_rows(self, theta: np.ndarray, cols: np.ndarray | None, ckey):
+        """σ ``(n_panels, S)`` and ∂σ/∂θ ``(n_panels, S * n_cols)`` (or None), kept per
+        scenario row: only rows not seen before are solved for."""
         keys = [(ckey, row.tobytes()) for row in theta]
         missing = [i for i, k in enumerate(keys) if k not in self._memo]
         if missing:
