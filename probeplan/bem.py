@@ -540,12 +540,20 @@ class Structures:
 
     @classmethod
     def build(
-        cls, conductors, ground_z_m: float | None = None, *, use_cache: bool = True, progress=None
+        cls,
+        conductors,
+        ground_z_m: float | None = None,
+        *,
+        meters_m=None,
+        use_cache: bool = True,
+        progress=None,
     ):
         """Mesh every conductor, assemble and factor (or load the cached factors);
-        ``progress(done, total)`` follows the assembly (see :func:`factorize`)."""
+        ``progress(done, total)`` follows the assembly (see :func:`factorize`). ``meters_m``
+        ``(n, 3)``: meters on or near the structures, where the automatic mesh is made finer
+        (the cache key is the panels themselves, so it covers that refinement)."""
         conductors = tuple(conductors)
-        surfaces = tuple(c.triangles(ground_z_m) for c in conductors)
+        surfaces = tuple(c.triangles(ground_z_m, meters_m) for c in conductors)
         check_overlaps(conductors, surfaces, ground_z_m)
         owner = np.concatenate([np.full(len(s), k) for k, s in enumerate(surfaces)])
         panels = Panels(np.ascontiguousarray(np.concatenate(surfaces)), owner)
@@ -601,12 +609,9 @@ class Structures:
         return sigma, self.factor.solve(rhs)
 
     @staticmethod
-    def responses_of(
-        sigma: np.ndarray, d_sigma: np.ndarray | None = None, *, shared: bool = False
-    ) -> Responses:
-        """The output of :meth:`responses` as :class:`Responses`, on a shared basis when
-        ``shared`` and that pays (see :meth:`Responses.of`)."""
-        return Responses.of(sigma, d_sigma) if shared else Responses(None, sigma, d_sigma)
+    def responses_of(sigma: np.ndarray, d_sigma: np.ndarray | None = None) -> Responses:
+        """The output of :meth:`responses` as :class:`~probeplan.lowrank.Responses`."""
+        return Responses(sigma, d_sigma)
 
     @cached_property
     def skeleton(self) -> Skeleton:
@@ -647,10 +652,8 @@ class Structures:
         """Field ``(n_scenarios, n_points, 3)`` of :class:`~probeplan.lowrank.Responses`,
         and its Jacobian ``(n_scenarios, n_points, 3, n_cols)``.
 
-        The panel operator meets the responses' basis first, so a compressed set of responses
-        costs its rank, not its column count, per point; points far from every conductor see
-        only the skeleton panels (:attr:`skeleton`), near ones every panel, with the exact
-        integrals close to them.
+        Points far from every conductor see only the skeleton panels (:attr:`skeleton`),
+        near ones every panel, with the exact integrals close to them.
         """
         n_pts = points_m.shape[0]
         cols = responses.columns
@@ -667,7 +670,7 @@ class Structures:
         if not far.all():
             op = self.factor.field_operator(points_m[~far])
             mapped[~far] = (op.reshape(-1, op.shape[2]) @ cols).reshape(-1, 3, cols.shape[1])
-        field, jac = responses.combine(mapped.reshape(n_pts * 3, cols.shape[1]))
+        field, jac = responses.split(mapped.reshape(n_pts * 3, cols.shape[1]))
         n_s = responses.n_scenarios
         field = field.reshape(n_pts, 3, n_s).transpose(2, 0, 1)
         if jac is None:
@@ -703,7 +706,7 @@ class Structures:
             ∂E_induced/∂θ = K A⁻¹ ∂(−φ_ext)/∂θ.
         """
         sigma, d_sigma = self.responses(scene, theta, columns, jacobian)
-        return self.field_of(points_m, Responses(None, sigma, d_sigma))
+        return self.field_of(points_m, Responses(sigma, d_sigma))
 
 
 __all__ = [

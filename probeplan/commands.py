@@ -170,7 +170,12 @@ def solve_structures(config, quiet: bool) -> None:
 
     with stoppable(quiet) as (progress, _):
         report_to = None if progress is None else (lambda d, t: progress("structures", d, t))
-        Structures.build(config.structures, config.ground_z_m, progress=report_to)
+        Structures.build(
+            config.structures,
+            config.ground_z_m,
+            meters_m=config.structure_meters_m,
+            progress=report_to,
+        )
 
 
 def cmd_plan(args: argparse.Namespace, written: list[Path]) -> int:

@@ -15,7 +15,8 @@ Layers:
   it) or closer to a surface than the panel size there (exact point–triangle distance).
 
 Automatic mesh size: about ``_AUTO_PANELS`` panels on a smooth body, with edges and tips refined
-(box and cylinder edges at a third of the size, growing away at ``_GROWTH`` per metre per metre).
+(box and cylinder edges at a third of the size, growing away at ``_GROWTH`` per metre per metre)
+and, given the meters, near them (:mod:`probeplan.meshrefine`).
 """
 
 from __future__ import annotations
@@ -28,6 +29,7 @@ import numba
 import numpy as np
 
 from .errors import InputError
+from .meshrefine import onto_cylinder, onto_ellipsoid, refine_near
 
 KINDS: tuple[str, ...] = ("sphere", "spheroid", "box", "cylinder", "enclosure", "mesh")
 #: Which part of a structure's surface carries meters (see Conductor.surface_points).
@@ -171,18 +173,23 @@ class Conductor:
         """Whether the inside is metal (points there are refused); an enclosure is a thin wall."""
         return self.kind != "enclosure"
 
-    def triangles(self, ground_z_m: float | None = None) -> np.ndarray:
+    def triangles(self, ground_z_m: float | None = None, meters_m=None) -> np.ndarray:
         """Flat panels of the surface above the plane, ``(n_panels, 3, 3)`` float, m,
-        oriented outwards."""
-        g = ground_z_m
+        oriented outwards; with the automatic size, finer near ``meters_m`` ``(n, 3)``
+        (:func:`probeplan.meshrefine.refine_near`)."""
+        g, project = ground_z_m, None
         if self.kind in ("sphere", "spheroid"):
             tris = _ellipsoid(np.array(self.geometry[:3]), np.array(self.geometry[3:]), self, g)
+            project = onto_ellipsoid(self.geometry[:3], self.geometry[3:], g)
         elif self.kind == "cylinder":
             tris = _cylinder(self, g)
+            project = onto_cylinder(self.geometry[:2], self.geometry[3])
         elif self.kind in ("box", "enclosure"):
             tris = _box(np.array(self.geometry[:3]), np.array(self.geometry[3:]), self, g)
         else:
             tris = _mesh_triangles(self, g)
+        if self.mesh_size_m is None and meters_m is not None:
+            tris = refine_near(tris, meters_m, project)
         return tris
 
     def surface_points(

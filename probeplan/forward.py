@@ -246,27 +246,20 @@ class Scene:
             self._responses(theta, np.asarray(columns, dtype=int))
 
     def _responses(self, theta: np.ndarray, cols: np.ndarray | None):
-        """The structures' responses to ``theta`` (:class:`probeplan.bem.Responses`).
+        """The structures' responses to ``theta`` (:class:`probeplan.lowrank.Responses`).
 
         A plan evaluates the same scenarios at many point sets: the last blocks of scenarios
-        are kept whole, and from a block's second call on, on their shared basis (so each call
-        costs the basis' rank per point, not n_scenarios × n_cols); rows are also kept one by
-        one, so that a block made of rows seen before is not solved for again.
+        are kept whole (with what the far field makes of them), and rows one by one, so that
+        a block made of rows seen before is not solved for again.
         """
         ckey = None if cols is None else np.asarray(cols).tobytes()
         block_key = (ckey, theta.shape, theta.tobytes())
         found = self._blocks.get(block_key)
         if found is None:
-            # first sight: as solved (a fit's scenarios change every call, and a basis would
-            # cost more than it saves); kept, so a second call finds the block
             found = self.structures.responses_of(*self._response_rows(theta, cols, ckey))
-        elif found.basis is None:
-            found = self.structures.responses_of(found.sigma, found.d_sigma, shared=True)
-        else:
-            return found
-        if len(self._blocks) >= _MEMO_BLOCKS and block_key not in self._blocks:
-            self._blocks.clear()
-        self._blocks[block_key] = found
+            if len(self._blocks) >= _MEMO_BLOCKS:
+                self._blocks.clear()
+            self._blocks[block_key] = found
         return found
 
     def _response_rows(self, theta: np.ndarray, cols: np.ndarray | None, ckey):
@@ -572,9 +565,10 @@ def _field_jacobian(sources, points_m, ground_z_m, conductors, background, jacob
             )
     srcs = _as_sources(sources)
     ground = Scene(srcs, ground_z_m).ground_z_m  # checks the plane and the sources over it
-    structures = _structures(conductors, ground)
+    pts = check_points(points_m, ground)
+    meters = None if mounted is None else pts[np.asarray(mounted, dtype=bool)]
+    structures = _structures(conductors, ground, meters)
     scene = Scene(srcs, ground, background=bg is not None, structures=structures)
-    pts = check_points(points_m, scene.ground_z_m)
     if structures is not None:
         structures.check_points(pts, mounted=mounted)
     theta = scene.nominal(() if bg is None else bg)[None, :]
@@ -582,8 +576,9 @@ def _field_jacobian(sources, points_m, ground_z_m, conductors, background, jacob
     return e[0], (jac[0] if jac is not None else None)
 
 
-def _structures(conductors, ground_z_m: float | None):
-    """The meshed, factored structures over the plane, or ``None`` without any."""
+def _structures(conductors, ground_z_m: float | None, meters_m=None):
+    """The meshed, factored structures over the plane (the automatic mesh finer near
+    ``meters_m``), or ``None`` without any."""
     from .bem import Structures
     from .conductors import Conductor
 
@@ -595,7 +590,7 @@ def _structures(conductors, ground_z_m: float | None):
             raise ValueError(f"`conductors[{i}]` must be a Conductor; got {type(c).__name__}.")
     if not conductors:
         return None
-    return Structures.build(conductors, ground_z_m)
+    return Structures.build(conductors, ground_z_m, meters_m=meters_m)
 
 
 __all__ = ["BACKGROUND_PARAMS", "Scene", "check_points", "field", "field_jacobian"]

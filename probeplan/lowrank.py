@@ -1,21 +1,18 @@
-"""Low-rank forms that make the structures' induced field cheap to evaluate at many points.
+"""Forms that make the structures' induced field cheap to evaluate at many points.
 
-Two compressions, each exact to ~1e-12 of what it replaces (far below the solve's own
-round-off, eps · cond(A), and the discretisation error of the panels):
-
-* :class:`Responses` — the induced σ of many right-hand sides (scenarios × θ columns) on one
-  shared basis. They are the answers to smooth external potentials over bodies small beside
-  their distance to the sources, so their numerical rank is a few tens however many columns
-  there are (plan10 with four structures: 42 of 320).
+* :class:`Responses` — the induced σ of many right-hand sides (scenarios × θ columns), kept
+  whole with what the far field makes of them, since a plan maps the same ones at many points.
 * :class:`Skeleton` — for points far from a conductor, its panels' field is a smooth
   (harmonic) function of the point, and a few "skeleton" panels with an interpolation matrix
-  reproduce all of them: an interpolative decomposition (column-pivoted QR) of the field
-  operator sampled on a check hemisphere around the conductor and its image (Cheng, Gimbutas,
-  Martinsson & Rokhlin 2005, SIAM J. Sci. Comput. 26, 1389: the proxy-surface form). Beyond the
-  check sphere every panel is in the centroid (point-charge) zone of the panel integrals, so the
-  sampled operator is a sum of point-charge fields, harmonic outside the sphere, and its error
-  is largest on the sphere itself (maximum principle; with the ground plane the sources and
-  their images are symmetric about it, so the upper hemisphere holds that maximum).
+  reproduce all of them to ~1e-12 (far below the solve's own round-off, eps · cond(A), and the
+  panels' discretisation error): an interpolative decomposition (column-pivoted QR of a random
+  sketch) of the field operator sampled on a check hemisphere around the conductor and its
+  image (Cheng, Gimbutas, Martinsson & Rokhlin 2005, SIAM J. Sci. Comput. 26, 1389: the
+  proxy-surface form). Beyond the check sphere every panel is in the centroid (point-charge)
+  zone of the panel integrals, so the sampled operator is a sum of point-charge fields,
+  harmonic outside the sphere, and its error is largest on the sphere itself (maximum
+  principle; with the ground plane the sources and their images are symmetric about it, so the
+  upper hemisphere holds that maximum). Each skeleton is checked on fresh points before use.
 
 Imports only numpy and scipy: the operator is passed in by the caller (``bem``).
 """
@@ -28,12 +25,6 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import linalg
 
-#: Singular values kept when many responses share one basis, relative to the largest of the
-#: column-normalised responses: every column is kept to ~1e-12 of its own norm. The spectra of
-#: site responses fall from 1 to 1e-12 in a few tens of values, then sit on a floor near 1e-14.
-RANK_TOL = 1e-12
-#: Fewer columns than this are used as they are (the SVD would cost more than it saves).
-COMPRESS_COLUMNS = 48
 #: Far radius of a conductor, in radii of its bounding sphere (measured interpolation ranks of a
 #: 1,000-panel tank at 1e-12: 550 at 4 radii, 190 at 6, 92 at 8).
 FAR_RADII = 6.0
@@ -51,22 +42,16 @@ SKELETON_CHECK = 1e-10
 
 @dataclass(frozen=True, eq=False)
 class Responses:
-    """Induced σ of many right-hand sides, possibly as a shared basis and coefficients.
-
-    σ = ``basis @ sigma`` and ∂σ/∂θ = ``basis @ d_sigma`` (``basis`` ``None``: the identity).
-    Build with :meth:`of` (compressed) or the constructor (as solved).
+    """Induced σ of many right-hand sides, and what the far field makes of them (kept).
 
     Attributes
     ----------
-    basis : (n_panels, rank) float or None
-        Orthonormal columns.
-    sigma : (rank or n_panels, n_scenarios) float
-        C/m² (coefficients on the basis).
-    d_sigma : (rank or n_panels, n_scenarios * n_cols) float or None
+    sigma : (n_panels, n_scenarios) float
+        C/m².
+    d_sigma : (n_panels, n_scenarios * n_cols) float or None
         Per unit of each θ column, scenario-major.
     """
 
-    basis: np.ndarray | None
     sigma: np.ndarray
     d_sigma: np.ndarray | None
     _reduced: dict = field(default_factory=dict, repr=False)
@@ -77,52 +62,25 @@ class Responses:
 
     @property
     def columns(self) -> np.ndarray:
-        """``(n_panels, width)``: what a panel operator multiplies (the basis, or the
-        responses themselves side by side)."""
-        if self.basis is not None:
-            return self.basis
+        """``(n_panels, width)``: σ and ∂σ/∂θ side by side, what a panel operator maps."""
         if self.d_sigma is None:
             return self.sigma
         return np.concatenate([self.sigma, self.d_sigma], axis=1)
 
     def reduced(self, skeleton: Skeleton) -> np.ndarray:
-        """:attr:`columns` carried onto the skeleton panels, ``(n_skeleton, width)``; kept."""
+        """:attr:`columns` carried onto the skeleton panels, ``(n_skeleton, width)``; kept,
+        as a plan maps the same responses at many point sets."""
         got = self._reduced.get(id(skeleton))
         if got is None:
             got = skeleton.interpolation @ self.columns
             self._reduced[id(skeleton)] = got
         return got
 
-    def combine(self, mapped: np.ndarray) -> tuple[np.ndarray, np.ndarray | None]:
-        """The field of σ and ∂σ/∂θ from the field of :attr:`columns`, ``(m, width)`` →
+    def split(self, mapped: np.ndarray) -> tuple[np.ndarray, np.ndarray | None]:
+        """The field of σ and of ∂σ/∂θ from the field of :attr:`columns` ``(m, width)``:
         ``(m, n_scenarios)`` and ``(m, n_scenarios * n_cols)`` or None."""
         n_s = self.n_scenarios
-        if self.basis is None:
-            return mapped[:, :n_s], (None if self.d_sigma is None else mapped[:, n_s:])
-        return mapped @ self.sigma, (None if self.d_sigma is None else mapped @ self.d_sigma)
-
-    @classmethod
-    def of(cls, sigma: np.ndarray, d_sigma: np.ndarray | None = None) -> Responses:
-        """The responses on a shared basis when that pays, else as they are.
-
-        The columns, each scaled to unit norm, are reduced to their left singular vectors
-        above ``RANK_TOL``; the coefficients are the projections of the unscaled columns, so
-        every column keeps its own scale and is reproduced to ~``RANK_TOL`` of its norm.
-        """
-        plain = cls(None, sigma, d_sigma)
-        cols = plain.columns
-        if cols.shape[1] < COMPRESS_COLUMNS:
-            return plain
-        norms = np.linalg.norm(cols, axis=0)
-        scaled = cols / np.where(norms > 0.0, norms, 1.0)
-        u, s, _ = linalg.svd(scaled, full_matrices=False, check_finite=False)
-        rank = int(np.count_nonzero(s > RANK_TOL * s[0])) if s.size and s[0] > 0 else 0
-        if 2 * rank > cols.shape[1]:
-            return plain
-        basis = np.ascontiguousarray(u[:, :rank])
-        coef = basis.T @ cols
-        n_s = sigma.shape[1]
-        return cls(basis, coef[:, :n_s], None if d_sigma is None else coef[:, n_s:])
+        return mapped[:, :n_s], (None if self.d_sigma is None else mapped[:, n_s:])
 
 
 @dataclass(frozen=True, eq=False)

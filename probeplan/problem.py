@@ -572,7 +572,9 @@ def build_problem(
     if config.structures:
         from .bem import Structures  # only a config with structures pays for the solver
 
-        structures = Structures.build(config.structures, config.ground_z_m)
+        structures = Structures.build(
+            config.structures, config.ground_z_m, meters_m=config.structure_meters_m
+        )
     scene = Scene(
         tuple(s.source for s in config.sources),
         config.ground_z_m,

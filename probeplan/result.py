@@ -220,7 +220,9 @@ def structure_surfaces(config) -> StructureSurfaces | None:
     from .bem import Structures
     from .forward import Scene
 
-    structures = Structures.build(config.structures, config.ground_z_m)
+    structures = Structures.build(
+        config.structures, config.ground_z_m, meters_m=config.structure_meters_m
+    )
     bg = config.background
     scene = Scene(
         tuple(s.source for s in config.sources),

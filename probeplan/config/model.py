@@ -277,6 +277,13 @@ class Config:
         pos = [p.position_m for p in self.installed]
         return np.array(pos, dtype=float).reshape(len(pos), 3)
 
+    @property
+    def structure_meters_m(self) -> np.ndarray:
+        """Meters the automatic structure mesh is made finer near, ``(n, 3) float``, m: the
+        installed meters and the points of every structure region."""
+        mounted = [r.outline_m() for r in self.regions if r.kind == "structure"]
+        return np.concatenate([self.installed_m, *mounted]).reshape(-1, 3)
+
     def site(self) -> Site:
         """The mounting rules: regions, keep-outs, spacing, installed probes, and the
         structures as obstacles (no meter inside one or nearer it than its panel size)."""
