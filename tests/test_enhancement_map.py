@@ -59,3 +59,54 @@ def test_plot_writes_the_map_only_with_structures(tmp_path):
     result = make_result("score", bare, bare_problem.score(LAYOUT))
     paths = add_enhancement_map(PlotFiles(), result, bare_problem, tmp_path, "png")
     assert list(paths) == [] and paths.skipped == []
+
+
+MAST = {
+    "kind": "cylinder",
+    "name": "mast",
+    "base_m": [500.0, 0.0, 0.0],
+    "radius_m": 1.0,
+    "height_m": 30.0,
+    "mesh_size_m": 1.0,
+}
+MAST_TOP = {
+    "kind": "structure",
+    "name": "mast top",
+    "structure": "mast",
+    "face": "top",
+    "standoff_m": 0.5,
+}
+
+
+def test_mounting_points_on_structures_are_marked_with_their_enhancement(tmp_path):
+    # A region on the mast's top and an installed meter beside its top; a meter far out on the
+    # ground is on no structure. A grounded tip concentrates the field: a sphere triples it at
+    # its pole (Jackson, Classical Electrodynamics, §2.5), and a mast 30 radii tall more.
+    from sites import rectangle
+
+    from probeplan.enhancement_map import enhancement_map, structure_marks
+
+    cfg = make_config(
+        "<t>",
+        structure=[MAST],
+        region=[rectangle(2000.0), MAST_TOP],
+        probes={
+            "count": 2,
+            "installed": [
+                {"name": "beside", "position_m": [501.6, 0.0, 29.0]},
+                {"name": "gate", "position_m": [-1500.0, 0.0, 0.0]},
+            ],
+        },
+    )
+    problem = build_problem(cfg)
+    score = problem.score(np.array([[300.0, 900.0, 0.0], [-900.0, -700.0, 0.0]]))
+    names = ("beside", "gate", "new-0", "new-1")
+    marks = structure_marks(problem, score, names)
+    assert [(m[0], m[1]) for m in marks] == [(0, "mast top"), (0, "meter beside")]
+    _, _, top_pts, top_value = marks[0]
+    np.testing.assert_allclose(top_value, enhancement_at(problem, top_pts, Z_AXIS), rtol=1e-12)
+    assert np.all(top_value > 3.0)
+    np.testing.assert_allclose(marks[1][3], score.enhancement[:1], rtol=1e-12)
+    path = enhancement_map(problem, score, tmp_path / "map.svg", names=names)
+    svg = path.read_text()
+    assert "mast top" in svg and "meter beside" in svg and "mounting point on a structure" in svg
