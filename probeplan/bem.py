@@ -664,7 +664,8 @@ class Structures:
             panels = self.factor.panels
             sub = Panels(panels.triangles_m[skel.panels], panels.owner[skel.panels])
             op = K_COULOMB * _operator(points_m[far], sub, self.ground_z_m, True)
-            mapped[far] = (op.reshape(-1, skel.panels.size) @ responses.reduced(skel)).reshape(
+            basis, coef = responses.reduced(skel)
+            mapped[far] = ((op.reshape(-1, skel.panels.size) @ basis) @ coef).reshape(
                 -1, 3, cols.shape[1]
             )
         if not far.all():

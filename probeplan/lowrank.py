@@ -25,6 +25,9 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import linalg
 
+#: Pivots kept in the low-rank form of many responses, relative to the first (columns scaled
+#: to unit norm): each column to ~1e-12 of its norm, below the solve's own round-off.
+RANK_TOL = 1e-12
 #: Far radius of a conductor, in radii of its bounding sphere (measured interpolation ranks of a
 #: 1,000-panel tank at 1e-12: 550 at 4 radii, 190 at 6, 92 at 8).
 FAR_RADII = 6.0
@@ -67,12 +70,20 @@ class Responses:
             return self.sigma
         return np.concatenate([self.sigma, self.d_sigma], axis=1)
 
-    def reduced(self, skeleton: Skeleton) -> np.ndarray:
-        """:attr:`columns` carried onto the skeleton panels, ``(n_skeleton, width)``; kept,
-        as a plan maps the same responses at many point sets."""
+    def reduced(self, skeleton: Skeleton) -> tuple[np.ndarray, np.ndarray]:
+        """:attr:`columns` carried onto the skeleton panels, as two factors ``basis``
+        ``(n_skeleton, rank)`` and ``coef`` ``(rank, width)`` (kept, as a plan maps the same
+        responses at many point sets).
+
+        The responses of many scenarios and θ columns to smooth external potentials have a
+        low numerical rank (plan10: about 40 of 384 columns), so a far point costs the rank,
+        not the width: a column-pivoted QR of the columns, each scaled to unit norm, cut where
+        the pivots fall below ``RANK_TOL`` of the first (each column kept to about that
+        fraction of its norm).
+        """
         got = self._reduced.get(id(skeleton))
         if got is None:
-            got = skeleton.interpolation @ self.columns
+            got = _low_rank(skeleton.interpolation @ self.columns)
             self._reduced[id(skeleton)] = got
         return got
 
@@ -167,6 +178,21 @@ class Skeleton:
             interpolation[row : row + interp.shape[0], mine] = interp
             row += interp.shape[0]
         return cls(centres, far, panels, interpolation)
+
+
+def _low_rank(matrix: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """``matrix ≈ basis @ coef`` (see :meth:`Responses.reduced`); the identity factors when
+    the rank is not below half the width."""
+    norms = np.linalg.norm(matrix, axis=0)
+    norms = np.where(norms > 0.0, norms, 1.0)
+    q, r, perm = linalg.qr(matrix / norms, mode="economic", pivoting=True, check_finite=False)
+    diag = np.abs(np.diag(r))
+    k = int(np.count_nonzero(diag > RANK_TOL * diag[0])) if diag.size and diag[0] else 0
+    if 2 * k >= min(matrix.shape):
+        return matrix, np.eye(matrix.shape[1])
+    coef = np.empty((k, matrix.shape[1]))
+    coef[:, perm] = r[:k]
+    return np.ascontiguousarray(q[:, :k]), coef * norms
 
 
 def _hemisphere(n: int, upper: bool) -> np.ndarray:
