@@ -45,7 +45,7 @@ import numpy as np
 from scipy import linalg
 
 from .conductors import check_overlaps, check_points
-from .lowrank import Responses, Skeleton
+from .lowrank import Responses, Skeleton, small_products
 from .sources import K_COULOMB
 
 #: Bumped whenever the matrix changes meaning, so older cache files are not read.
@@ -664,10 +664,12 @@ class Structures:
             panels = self.factor.panels
             sub = Panels(panels.triangles_m[skel.panels], panels.owner[skel.panels])
             op = K_COULOMB * _operator(points_m[far], sub, self.ground_z_m, True)
-            basis, coef = responses.reduced(skel)
-            mapped[far] = ((op.reshape(-1, skel.panels.size) @ basis) @ coef).reshape(
-                -1, 3, cols.shape[1]
-            )
+            basis, coef, keep = responses.reduced(skel)
+            # in single-thread pieces: a worker process rounds them as this process does
+            op = op.reshape(-1, skel.panels.size)
+            mid = small_products(op, basis, np.empty((op.shape[0], basis.shape[1])))
+            got = small_products(mid, coef, np.empty((op.shape[0], coef.shape[1])))
+            mapped[far] = (got if keep is None else got[:, keep]).reshape(-1, 3, cols.shape[1])
         if not far.all():
             op = self.factor.field_operator(points_m[~far])
             mapped[~far] = (op.reshape(-1, op.shape[2]) @ cols).reshape(-1, 3, cols.shape[1])

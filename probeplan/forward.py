@@ -21,13 +21,12 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from .lowrank import small_products
 from .sources import KERNELS, DensityGrid, Source, _SourceBase, grid_entries
 from .sources.potentials import potential_kernel
 
 BACKGROUND_PARAMS: tuple[str, ...] = ("bg.x_v_per_m", "bg.y_v_per_m", "bg.z_v_per_m")
 
-# Multiply-adds per stacked matrix product in the Jacobian assembly (see _small_products).
-_PRODUCT_ELEMENTS = 1 << 16
 # Scenario rows of structure responses a Scene keeps (see Scene._responses).
 _MEMO_ROWS = 4096
 # Whole blocks of scenarios whose responses a Scene keeps on their shared basis.
@@ -243,7 +242,8 @@ class Scene:
         any block of these scenarios with the same numbers, to the bit, as here: a multithreaded
         BLAS may round a block's own solve otherwise. Nothing without structures."""
         if self.structures is not None:
-            self._responses(theta, np.asarray(columns, dtype=int))
+            found = self._responses(theta, np.asarray(columns, dtype=int))
+            found.reduced(self.structures.skeleton)  # the far form too, sent with the scene
 
     def _responses(self, theta: np.ndarray, cols: np.ndarray | None):
         """The structures' responses to ``theta`` (:class:`probeplan.lowrank.Responses`).
@@ -255,11 +255,20 @@ class Scene:
         ckey = None if cols is None else np.asarray(cols).tobytes()
         block_key = (ckey, theta.shape, theta.tobytes())
         found = self._blocks.get(block_key)
-        if found is None:
+        if found is not None:
+            return found[0]
+        rows = [row.tobytes() for row in theta]
+        for (key, _, _), (whole, where) in list(self._blocks.items()):
+            if key == ckey and all(r in where for r in rows):
+                # a block of scenarios kept whole (a shard of a primed scene): its numbers, to
+                # the bit, whatever BLAS would round for this block on its own
+                found = whole.subset(np.array([where[r] for r in rows]))
+                break
+        else:
             found = self.structures.responses_of(*self._response_rows(theta, cols, ckey))
-            if len(self._blocks) >= _MEMO_BLOCKS:
-                self._blocks.clear()
-            self._blocks[block_key] = found
+        if len(self._blocks) >= _MEMO_BLOCKS:
+            self._blocks.clear()
+        self._blocks[block_key] = (found, {r: i for i, r in enumerate(rows)})
         return found
 
     def _response_rows(self, theta: np.ndarray, cols: np.ndarray | None, ckey):
@@ -365,9 +374,9 @@ class Scene:
                 block = jac.reshape(n_rows, n_in)
                 if full is None:
                     full = np.empty(shape)
-                    _small_products(block, m, full.reshape(n_rows, cols.size))
+                    small_products(block, m, full.reshape(n_rows, cols.size))
                 else:
-                    full.reshape(n_rows, cols.size)[...] += _small_products(
+                    full.reshape(n_rows, cols.size)[...] += small_products(
                         block, m, np.empty((n_rows, cols.size))
                     )
                 continue
@@ -390,25 +399,6 @@ class Scene:
             j = np.flatnonzero(cols >= first)
             full[:, :, cols[j] - first, j] += 1.0
         return full
-
-
-def _small_products(a: np.ndarray, b: np.ndarray, out: np.ndarray) -> np.ndarray:
-    """``out = a @ b`` for a tall ``a (n, k)`` and a small ``b (k, m)``, in stacked pieces.
-
-    Each piece is small enough that the BLAS library runs it on the calling thread: one big
-    product would be split over threads, and waking them costs more than the product itself
-    on a busy machine (measured: 3x slower end to end on a loaded 2-core host).
-    """
-    n = a.shape[0]
-    rows = max(1, _PRODUCT_ELEMENTS // max(a.shape[1] * b.shape[1], 1))
-    main = n - n % rows
-    if main:
-        np.matmul(
-            a[:main].reshape(-1, rows, a.shape[1]), b, out=out[:main].reshape(-1, rows, b.shape[1])
-        )
-    if main < n:
-        np.matmul(a[main:], b, out=out[main:])
-    return out
 
 
 def _geometry(kind: str, members: list) -> tuple[object, object]:

@@ -28,6 +28,8 @@ from scipy import linalg
 #: Pivots kept in the low-rank form of many responses, relative to the first (columns scaled
 #: to unit norm): each column to ~1e-12 of its norm, below the solve's own round-off.
 RANK_TOL = 1e-12
+#: Multiply-adds per stacked matrix product (see small_products).
+PRODUCT_ELEMENTS = 1 << 16
 #: Far radius of a conductor, in radii of its bounding sphere (measured interpolation ranks of a
 #: 1,000-panel tank at 1e-12: 550 at 4 radii, 190 at 6, 92 at 8).
 FAR_RADII = 6.0
@@ -70,10 +72,12 @@ class Responses:
             return self.sigma
         return np.concatenate([self.sigma, self.d_sigma], axis=1)
 
-    def reduced(self, skeleton: Skeleton) -> tuple[np.ndarray, np.ndarray]:
+    def reduced(self, skeleton: Skeleton) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
         """:attr:`columns` carried onto the skeleton panels, as two factors ``basis``
         ``(n_skeleton, rank)`` and ``coef`` ``(rank, width)`` (kept, as a plan maps the same
-        responses at many point sets).
+        responses at many point sets), and ``keep``: None, or for a :meth:`subset` the columns
+        of ``basis @ coef`` that are its own (the product is formed whole, so that its numbers
+        are the whole block's to the bit: a BLAS may round a narrower product otherwise).
 
         The responses of many scenarios and θ columns to smooth external potentials have a
         low numerical rank (plan10: about 40 of 384 columns), so a far point costs the rank,
@@ -81,11 +85,29 @@ class Responses:
         the pivots fall below ``RANK_TOL`` of the first (each column kept to about that
         fraction of its norm).
         """
-        got = self._reduced.get(id(skeleton))
+        got = self._reduced.get("far")  # (one skeleton per structures; kept when pickled)
         if got is None:
-            got = _low_rank(skeleton.interpolation @ self.columns)
-            self._reduced[id(skeleton)] = got
+            got = (*_low_rank(skeleton.interpolation @ self.columns), None)
+            self._reduced["far"] = got
         return got
+
+    def subset(self, scenarios: np.ndarray) -> Responses:
+        """The responses of some of the scenarios ``(k,) int``, with the far form's columns
+        taken from this one (so a block of scenarios reads the same numbers as the whole)."""
+        n_s = self.n_scenarios
+        sigma = self.sigma[:, scenarios]
+        d_sigma = None
+        keep = scenarios
+        if self.d_sigma is not None:
+            n_cols = self.d_sigma.shape[1] // n_s
+            d_cols = (scenarios[:, None] * n_cols + np.arange(n_cols)).ravel()
+            d_sigma = self.d_sigma[:, d_cols]
+            keep = np.concatenate([scenarios, n_s + d_cols])
+        out = Responses(sigma, d_sigma)
+        if "far" in self._reduced:
+            basis, coef, own = self._reduced["far"]
+            out._reduced["far"] = (basis, coef, keep if own is None else own[keep])
+        return out
 
     def split(self, mapped: np.ndarray) -> tuple[np.ndarray, np.ndarray | None]:
         """The field of σ and of ∂σ/∂θ from the field of :attr:`columns` ``(m, width)``:
@@ -180,6 +202,26 @@ class Skeleton:
         return cls(centres, far, panels, interpolation)
 
 
+def small_products(a: np.ndarray, b: np.ndarray, out: np.ndarray) -> np.ndarray:
+    """``out = a @ b`` for a tall ``a (n, k)`` and a small ``b (k, m)``, in stacked pieces.
+
+    Each piece is small enough that the BLAS library runs it on the calling thread: one big
+    product would be split over threads, and waking them costs more than the product itself
+    on a busy machine (measured: 3x slower end to end on a loaded 2-core host), and a piece
+    run on one thread rounds the same in a worker process as here (shards of a plan).
+    """
+    n = a.shape[0]
+    rows = max(1, PRODUCT_ELEMENTS // max(a.shape[1] * b.shape[1], 1))
+    main = n - n % rows
+    if main:
+        np.matmul(
+            a[:main].reshape(-1, rows, a.shape[1]), b, out=out[:main].reshape(-1, rows, b.shape[1])
+        )
+    if main < n:
+        np.matmul(a[main:], b, out=out[main:])
+    return out
+
+
 def _low_rank(matrix: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """``matrix ≈ basis @ coef`` (see :meth:`Responses.reduced`); the identity factors when
     the rank is not below half the width."""
@@ -236,4 +278,4 @@ def _interpolative(op: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return perm[:k], interp
 
 
-__all__ = ["Responses", "Skeleton"]
+__all__ = ["Responses", "Skeleton", "small_products"]
