@@ -378,7 +378,9 @@ def test_adding_a_probe_never_lowers_information(layout, extra):
     more = np.concatenate([layout, [[extra[0], extra[1], 0.0]]])
     j_n = _LOEWNER.fisher(layout[None])[0]
     j_more = _LOEWNER.fisher(more[None])[0]
-    d = 1.0 / np.sqrt(np.diagonal(j_more, axis1=-2, axis2=-1))
+    # (a parameter no meter sees has a zero diagonal: left unscaled, not divided by 0)
+    diag = np.diagonal(j_more, axis1=-2, axis2=-1)
+    d = 1.0 / np.sqrt(np.where(diag > 0, diag, 1.0))
     diff = (j_more - j_n) * d[..., :, None] * d[..., None, :]
     assert np.linalg.eigvalsh(diff).min() >= -1e-10
     v_n, v_more = _LOEWNER.values(np.stack([j_n, j_more]))
