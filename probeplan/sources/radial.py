@@ -7,7 +7,9 @@ enclosed-charge fraction P(3/2, r²/2σ²) (regularised lower incomplete gamma).
 from __future__ import annotations
 
 import math
+import types
 
+import numba
 import numpy as np
 
 from ._common import _call_compiled, _jac_buffer, _jit, _plain, _raise_on_charge
@@ -78,19 +80,27 @@ def _radial_profile(kind, r2, size):
     return a, -3.0 * a * inv_r2, 0.0
 
 
-@_jit
-def _radial_loop(kind, k_coulomb, params, pts, E, jac, want_jac):
+#: (scenario, point) pairs per block of the compiled loop: one thread a block.
+_SM_BLOCK = 64
+
+
+def _radial_loop_py(kind, k_coulomb, params, pts, E, jac, want_jac):
     """Add the field of every source to ``E`` (S, M, 3) and write ``jac`` (S, M, 3, N, P).
 
     ``k_coulomb`` is an argument, not the global: numba would freeze a global into the machine
-    code it caches, and keep it when scipy's CODATA constants change.
+    code it caches, and keep it when scipy's CODATA constants change. The (scenario, point)
+    pairs run in blocks, one thread a block; each pair is summed by one thread in source order,
+    so the result does not depend on the number of threads.
     Returns the flat index s·M + m of the first (scenario, point) on a point charge, else −1.
     """
     S, N, P = params.shape
     M = pts.shape[0]
-    singular = -1
-    for s in range(S):
-        for m in range(M):
+    n_blocks = (S * M + _SM_BLOCK - 1) // _SM_BLOCK
+    first = np.full(n_blocks, -1, dtype=np.int64)
+    for blk in numba.prange(n_blocks):
+        for sm in range(blk * _SM_BLOCK, min(S * M, (blk + 1) * _SM_BLOCK)):
+            s = sm // M
+            m = sm - s * M
             px, py, pz = pts[m, 0], pts[m, 1], pts[m, 2]
             ex = 0.0
             ey = 0.0
@@ -102,8 +112,8 @@ def _radial_loop(kind, k_coulomb, params, pts, E, jac, want_jac):
                 dz = pz - params[s, n, 3]
                 r2 = dx * dx + dy * dy + dz * dz
                 if r2 < _ON_POINT_M2 and kind == _RADIAL_POINT:
-                    if singular < 0:
-                        singular = s * M + m
+                    if first[blk] < 0:
+                        first[blk] = sm
                     continue
                 a, b, e = _radial_profile(kind, r2, params[s, n, 4] if P > 4 else 0.0)
                 ka = k_coulomb * a
@@ -137,8 +147,27 @@ def _radial_loop(kind, k_coulomb, params, pts, E, jac, want_jac):
             E[s, m, 0] += ex
             E[s, m, 1] += ey
             E[s, m, 2] += ez
-    return singular
+    for blk in range(n_blocks):
+        if first[blk] >= 0:
+            return first[blk]
+    return -1
 
+
+def _renamed(fn, name: str):
+    """A copy of ``fn`` under another name: numba caches compiled code by the function's
+    name, and the serial and the parallel loop must not share a cache entry."""
+    copy = types.FunctionType(fn.__code__, fn.__globals__, name, fn.__defaults__)
+    copy.__qualname__ = name
+    return copy
+
+
+_radial_loop = _jit(_renamed(_radial_loop_py, "_radial_loop"))
+#: The same loop on every core: for large calls only (see :data:`PARALLEL_MIN`).
+_radial_loop_parallel = _jit(parallel=True)(_renamed(_radial_loop_py, "_radial_loop_parallel"))
+#: Scenarios × points × sources from which a call runs the loop on every core: below it the
+#: threads' start costs more than they save, and a small call (a dask worker's block, a
+#: budget's helper process) keeps to its own core.
+PARALLEL_MIN = 1_000_000
 
 _NO_JAC = np.empty((1, 1, 1, 1, 1))
 
@@ -159,8 +188,9 @@ def _radial_kernel(kind: int, name: str, what: str = ""):
             target = np.empty(jac.shape)
         params = np.require(params, float, ["C", "W"])
         pts = np.require(pts, float, ["C", "W"])
+        loop = _radial_loop_parallel if S * M * N >= PARALLEL_MIN else _radial_loop
         singular = _call_compiled(
-            _radial_loop,
+            loop,
             int(kind),
             K_COULOMB,
             params,
