@@ -65,10 +65,7 @@ class Forms:
         n_s, n_c, n_a, _ = rows.shape
         q = np.empty((n_s, n_c, n_a, n_a))
         if n_a == 1 and compiled(rows):  # one compiled pass, from Cholesky when M allows it
-            try:
-                low_inv = np.tril(np.linalg.inv(np.linalg.cholesky(m)))
-            except np.linalg.LinAlgError:
-                low_inv = None
+            low_inv = cholesky_inverse(m)
             if low_inv is not None:
                 _triangular_loop(_plain3(rows[:, :, 0, :]), low_inv, q[:, :, 0, 0], np.empty(0))
                 return cls(chosen, m, q, 0)
@@ -152,6 +149,15 @@ COMPILED_MIN = 500_000
 def compiled(rows: np.ndarray) -> bool:
     """Whether the sweeps of ``rows (S, C, a, p)`` run the compiled loops."""
     return rows.shape[0] * rows.shape[1] * rows.shape[2] >= COMPILED_MIN
+
+
+def cholesky_inverse(m: np.ndarray) -> np.ndarray | None:
+    """L⁻¹ of M = L Lᵀ for ``m (S, p, p)``, ``(S, p, p)`` lower triangular (exact zeros above
+    the diagonal); None when M is too ill-conditioned for Cholesky in floating point."""
+    try:
+        return np.tril(np.linalg.inv(np.linalg.cholesky(m)))
+    except np.linalg.LinAlgError:
+        return None
 
 
 def _plain3(r: np.ndarray) -> np.ndarray:
@@ -350,15 +356,12 @@ def quadratic_sums(rows: np.ndarray, m: np.ndarray) -> np.ndarray | None:
     """Σ_s tr(M_s⁻¹ R_scᵀ R_sc) of every candidate of ``rows (S, C, a, p)``, ``(C,)``, in one
     compiled pass (Cholesky of ``m (S, p, p)``); None when M is too ill-conditioned for
     Cholesky in floating point (the caller then works from M⁻¹)."""
-    try:
-        low_inv = np.linalg.inv(np.linalg.cholesky(m))
-    except np.linalg.LinAlgError:
+    low_inv = cholesky_inverse(m)
+    if low_inv is None:
         return None
     n_s, n_c, n_a, n_p = rows.shape
     sums = np.empty(n_c * n_a)
-    _triangular_loop(
-        _plain3(rows.reshape(n_s, n_c * n_a, n_p)), np.tril(low_inv), np.empty((0, 0)), sums
-    )
+    _triangular_loop(_plain3(rows.reshape(n_s, n_c * n_a, n_p)), low_inv, np.empty((0, 0)), sums)
     return sums.reshape(n_c, n_a).sum(axis=1)
 
 

@@ -254,8 +254,8 @@ class GridObjective:
         m = self.matrix(np.delete(chosen, i))
         minv_t = np.swapaxes(np.linalg.inv(m), -1, -2)
         ld0 = np.linalg.slogdet(m)[1][:, None] if self.problem.criterion.name == "d" else None
-        vals = self._add_chunk(self.rows[:, idx], minv_t, ld0)
-        return _near_best(idx, vals, self.problem.criterion.maximise)
+        k, value = self._best_of(self._add_chunk(self.rows[:, idx], minv_t, ld0), idx >= 0)
+        return int(idx[k]), value
 
     def _removal(self, chosen: np.ndarray, i: int):
         """:func:`~probeplan.search.forms.removal_terms` of the i-th probe of ``chosen``
@@ -326,7 +326,7 @@ def _spacing_mask(positions: np.ndarray, fixed: np.ndarray, min_spacing: float) 
     """(C,) bool: candidates at least ``min_spacing`` from every fixed point ``(k, 3)``.
 
     A k-d tree of the fixed points finds the few candidates near any of them; the exact test
-    (squared distance ≥ spacing² (1 − 1e-12)) is then applied to those only.
+    (:func:`_too_close`) is then applied to those only.
     """
     out = np.ones(positions.shape[0], dtype=bool)
     if min_spacing <= 0 or fixed.shape[0] == 0:
@@ -336,14 +336,14 @@ def _spacing_mask(positions: np.ndarray, fixed: np.ndarray, min_spacing: float) 
     near = cKDTree(fixed).query_ball_point(positions, min_spacing, return_length=True) > 0
     idx = np.flatnonzero(near)
     d2 = np.sum((positions[idx, None, :] - fixed[None, :, :]) ** 2, axis=-1)
-    out[idx] = np.all(d2 >= min_spacing**2 * (1 - 1e-12), axis=1)
+    out[idx] = ~np.any(_too_close(d2, min_spacing), axis=1)
     return out
 
 
-def _near_best(idx: np.ndarray, vals: np.ndarray, maximise: bool) -> tuple[int, float]:
-    """(candidate, value) of the best of ``vals`` over candidates ``idx`` (first on ties)."""
-    k = _best(vals, np.ones(idx.size, dtype=bool), maximise)
-    return int(idx[k]), float(vals[k])
+def _too_close(d2: np.ndarray, min_spacing: float) -> np.ndarray:
+    """The spacing rule's exact test of squared distances ``d2`` (m²): below spacing² with a
+    margin far above round-off and far below any grid spacing."""
+    return d2 < min_spacing**2 * (1 - 1e-12)
 
 
 def _best(values: np.ndarray, allowed: np.ndarray, maximise: bool) -> int:
@@ -382,13 +382,13 @@ class SpacingCounts:
                 self.add(point)
 
     def near(self, point_m: np.ndarray) -> np.ndarray:
-        """Candidates closer than the spacing to ``point_m (3,)``, ``(n,) int`` (the test of
-        :func:`_spacing_mask`: squared distance below spacing² (1 − 1e-12))."""
+        """Candidates closer than the spacing to ``point_m (3,)``, ``(n,) int``
+        (:func:`_too_close`)."""
         if self._tree is None:
             return np.zeros(0, dtype=np.int64)
         idx = np.asarray(self._tree.query_ball_point(point_m, self.min_spacing_m), dtype=np.int64)
         d2 = np.sum((self.positions_m[idx] - point_m) ** 2, axis=-1)
-        return idx[d2 < self.min_spacing_m**2 * (1 - 1e-12)]
+        return idx[_too_close(d2, self.min_spacing_m)]
 
     def add(self, point_m: np.ndarray, sign: int = 1) -> None:
         """Count (``sign`` 1) or uncount (−1) a fixed point ``(3,)``."""
@@ -425,6 +425,9 @@ def _levels(positions: np.ndarray) -> list[np.ndarray]:
     levels = [np.arange(n)]
     if n <= MULTILEVEL_MIN:
         return levels
+    key = (positions.tobytes(), MULTILEVEL_MIN, COARSE_MAX)
+    if _LEVELS[0] == key:  # the greedy, the exchange and every restart ask for the same grid
+        return _LEVELS[1]
     from scipy.spatial import cKDTree
 
     step = float(np.median(cKDTree(positions).query(positions, k=2)[0][:, 1]))
@@ -436,7 +439,13 @@ def _levels(positions: np.ndarray) -> list[np.ndarray]:
             break
         levels.insert(0, sub)
         idx, cell = sub, 2.0 * cell
+    _LEVELS[:] = [key, levels]
     return levels
+
+
+#: The last grid :func:`_levels` thinned (its positions' bytes and the two limits) and its
+#: levels.
+_LEVELS: list = [None, None]
 
 
 def greedy_steps(
@@ -446,6 +455,7 @@ def greedy_steps(
     min_spacing: float,
     installed_m: np.ndarray,
     start: np.ndarray | None = None,
+    choose: Callable[[GridObjective, np.ndarray, np.ndarray], int] | None = None,
 ) -> Iterator[np.ndarray]:
     """Greedy selection, one pick a step: yields the chosen candidates ``(k,) int`` (first
     ``start``, then after each pick), until ``k = count``. On a large grid without a
@@ -453,22 +463,30 @@ def greedy_steps(
     refines them on every finer one.
 
     ``start`` (k,) int: candidates already chosen (kept, counted in ``count``).
+    ``choose(obj, chosen, allowed)``: the pick among the ``allowed (C,) bool`` candidates of
+    ``obj`` (−1 for none); default the best one (:meth:`GridObjective.best_addition`).
 
     Raises
     ------
     InputError
         When the grid cannot hold ``count`` probes ``min_spacing`` apart.
     """
+    choose = _best_addition if choose is None else choose
     sub = _levels(positions)[0]
     if start is not None or sub.size == positions.shape[0]:
-        yield from _greedy_on(obj, count, positions, min_spacing, installed_m, start)
+        yield from _greedy_on(obj, count, positions, min_spacing, installed_m, start, choose)
         return
     coarse = obj.subset(sub)
-    for chosen in _greedy_on(coarse, count, positions[sub], min_spacing, installed_m, None):
+    picks = _greedy_on(coarse, count, positions[sub], min_spacing, installed_m, None, choose)
+    for chosen in picks:
         yield sub[chosen]
 
 
-def _greedy_on(obj, count, positions, min_spacing, installed_m, start):
+def _best_addition(obj: GridObjective, chosen: np.ndarray, allowed: np.ndarray) -> int:
+    return obj.best_addition(chosen, allowed)[0]
+
+
+def _greedy_on(obj, count, positions, min_spacing, installed_m, start, choose):
     """:func:`greedy_steps` on the candidates of ``obj`` as they are."""
     chosen = list(start) if start is not None else []
     spaced = SpacingCounts(positions, min_spacing, np.concatenate([installed_m, positions[chosen]]))
@@ -476,7 +494,7 @@ def _greedy_on(obj, count, positions, min_spacing, installed_m, start):
     while len(chosen) < count:
         allowed = spaced.allowed()
         allowed[chosen] = False
-        c, _ = obj.best_addition(np.array(chosen, dtype=int), allowed)
+        c = choose(obj, np.array(chosen, dtype=int), allowed)
         if c < 0:
             raise InputError(
                 f"`probes.min_spacing_m` = {min_spacing:g}: the candidate grid cannot hold "

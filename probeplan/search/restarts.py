@@ -14,11 +14,14 @@ better layout exists. :func:`probeplan.search.stages.search_steps` runs them as 
 
 from __future__ import annotations
 
+import functools
+import itertools
 from collections.abc import Iterator
 
 import numpy as np
 
-from .grid import GridObjective, _levels, _spacing_mask
+from ..errors import InputError
+from .grid import GridObjective, greedy_steps
 
 #: Candidates each randomised greedy pick is drawn from, uniformly: the best few by the
 #: criterion the pick would reach (the "restricted candidate list" of GRASP).
@@ -62,28 +65,26 @@ def randomised_greedy_steps(
     are made on its coarsest thinning, as the greedy's are (:func:`~.grid._levels`): the
     exchange that follows refines them level by level.
     """
-    sub = _levels(positions)[0]
-    if sub.size < positions.shape[0]:
-        coarse = obj.subset(sub)
-        for chosen in randomised_greedy_steps(
-            coarse, count, positions[sub], min_spacing, installed_m, rng, top
-        ):
-            yield sub[chosen]
-        return
-    chosen: list[int] = []
+    choose = functools.partial(_drawn_pick, rng=rng, top=top)
+    picks = greedy_steps(obj, count, positions, min_spacing, installed_m, choose=choose)
+    try:
+        yield from itertools.islice(picks, 1, None)  # not the empty start
+    except InputError:
+        return  # the randomised picks left no candidate the spacing allows
+
+
+def _drawn_pick(
+    obj: GridObjective, chosen: np.ndarray, allowed: np.ndarray, rng: np.random.Generator, top
+) -> int:
+    """One pick drawn uniformly among the ``top`` best allowed candidates (−1 for none)."""
+    idx = np.flatnonzero(allowed)
+    if idx.size == 0:
+        return -1
     maximise = obj.problem.criterion.maximise
-    while len(chosen) < count:
-        fixed = np.concatenate([installed_m, positions[chosen]])
-        allowed = _spacing_mask(positions, fixed, min_spacing)
-        allowed[chosen] = False
-        idx = np.flatnonzero(allowed)
-        if idx.size == 0:
-            return
-        vals = obj.candidate_values(np.array(chosen, dtype=int))[idx]
-        vals = np.where(np.isnan(vals), -np.inf if maximise else np.inf, vals)
-        key = -vals if maximise else vals
-        k = min(top, idx.size)
-        # The best k, in a fixed order (ties by index), so that a seed fixes the pick.
-        short = idx[np.argsort(key, kind="stable")[:k]]
-        chosen.append(int(short[rng.integers(k)]))
-        yield np.array(chosen, dtype=int)
+    vals = obj.candidate_values(chosen)[idx]
+    vals = np.where(np.isnan(vals), -np.inf if maximise else np.inf, vals)
+    key = -vals if maximise else vals
+    k = min(top, idx.size)
+    # The best k, in a fixed order (ties by index), so that a seed fixes the pick.
+    short = idx[np.argsort(key, kind="stable")[:k]]
+    return int(short[rng.integers(k)])
