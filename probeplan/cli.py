@@ -382,6 +382,20 @@ def _sigterm_interrupts() -> Iterator[None]:
             signal.signal(signal.SIGTERM, old)
 
 
+def _caused_by_interrupt(exc: BaseException) -> bool:
+    """Whether a KeyboardInterrupt (Ctrl-C, or SIGTERM) is behind ``exc``. Python wraps an
+    exception raised while a class is being made (``__set_name__``, as in a dataclass of a
+    module imported on first use) in a RuntimeError: a signal in that instant is still an
+    interrupt, not a bug."""
+    seen = set()
+    while exc is not None and id(exc) not in seen:
+        if isinstance(exc, KeyboardInterrupt):
+            return True
+        seen.add(id(exc))
+        exc = exc.__cause__ or exc.__context__
+    return False
+
+
 def _run(argv: list[str] | None) -> int:
     """Parse and run one command; every exception ends here, as an exit status and one line."""
     command = None
@@ -405,6 +419,9 @@ def _run(argv: list[str] | None) -> int:
             sys.stdout = open(os.devnull, "w")  # silences the exit-time flush
         return EXIT_OK
     except Exception as exc:  # anything else is a bug
+        if _caused_by_interrupt(exc):
+            report.print_interrupted(written=written)
+            return EXIT_INTERRUPTED
         debug = os.environ.get(DEBUG_VARIABLE) == "1"
         report.print_internal_error(exc, debug=debug, command=command, variable=DEBUG_VARIABLE)
         return EXIT_INTERNAL

@@ -544,3 +544,23 @@ def test_a_default_name_taken_before_the_write_begins_moves_on(tmp_path):
     r = make_result(np.random.default_rng(5))
     assert write_result(r, first, names=names) == tmp_path / "site-2.h5"
     assert first.read_bytes() == b"the other run"
+
+
+def test_an_interrupt_while_a_class_is_made_is_an_interrupt(monkeypatch, capsys):
+    # Python wraps an exception raised in __set_name__ (a dataclass of a module imported on
+    # first use, say) in a RuntimeError (Python data model, "Creating the class object"). A
+    # Ctrl-C in that instant must still end as an interrupt (exit 130), not an internal error.
+    import probeplan.cli as cli
+
+    class Trips:
+        def __set_name__(self, owner, name):
+            raise KeyboardInterrupt
+
+    def command(args, written):
+        type("Late", (), {"field": Trips()})
+        return 0
+
+    monkeypatch.setitem(cli.COMMANDS, "plan", command)
+    assert main(["plan", "whatever.toml"]) == EXIT_INTERRUPTED
+    err = capsys.readouterr().err
+    assert "internal error" not in err
