@@ -20,10 +20,19 @@ from .fisher import (
     aggregate,
     covariance,
     fisher_from_rows,
+    layout_information,
     unresolved_directions,
 )
 from .forward import BACKGROUND_PARAMS, Scene
-from .probes import Meters, Noise, axes_table, component_axes, stack_meters, whitened_rows
+from .probes import (
+    Meters,
+    Noise,
+    axes_table,
+    component_axes,
+    reading_weights,
+    stack_meters,
+    whitened_rows,
+)
 from .resulttypes import Score
 
 #: Jacobian bytes per chunk of layouts scored together (measured best near 1 MB: a chunk's
@@ -200,10 +209,18 @@ class Problem:
         for start in range(0, n_l, step):
             sl = slice(start, min(start + step, n_l))
             k = sl.stop - sl.start
-            g = None if gains is None else gains[sl].reshape(-1)
-            rows, _ = self.rows(layouts_m[sl].reshape(-1, 3), g)  # (S, k*n, A, p)
-            rows = rows.reshape(rows.shape[0], k, -1, rows.shape[-1])
-            yield sl, np.moveaxis(fisher_from_rows(rows), 0, 1) + self.fisher_installed
+            pos = layouts_m[sl].reshape(-1, 3)
+            g = np.full(k * n_p, self.new_gain) if gains is None else gains[sl].reshape(-1)
+            if self.shards is not None and self.shards.wants(self.n_scenarios, k * n_p):
+                rows, _ = self.rows(pos, g)  # (S, k*n, A, p)
+                rows = rows.reshape(rows.shape[0], k, -1, rows.shape[-1])
+                yield sl, np.moveaxis(fisher_from_rows(rows), 0, 1) + self.fisher_installed
+                continue
+            # Rows and their products in one compiled pass (the rows are never stored).
+            e, jac = self.scene.evaluate(self.theta, pos, columns=self.est_cols)
+            axes = np.broadcast_to(self.new_axes, (k * n_p, *self.new_axes.shape))
+            weights, _ = reading_weights(e, axes, g, self.noise)
+            yield sl, layout_information(jac, axes, weights, self.fisher_installed, n_p)
 
     def probe_information(
         self, positions_m: np.ndarray, gain: np.ndarray | None = None

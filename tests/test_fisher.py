@@ -321,3 +321,60 @@ def test_many_parameters_with_a_tiny_determinant_are_not_singular():
     # A genuinely rank-deficient one still is singular.
     v = rng.normal(size=(9, 8))
     assert fisher_mod._is_singular((v @ v.T)[None])[0]
+
+
+def test_compiled_log_det_matches_numpy_and_keeps_the_singularity_rule():
+    # The compiled Cholesky path against numpy's LU (numpy.linalg.slogdet, a reference
+    # library) on a batch mixing well-conditioned matrices in mixed units, rank-deficient ones
+    # (−inf by the contract), a zero diagonal (a parameter nothing sees: −inf), an
+    # ill-conditioned but regular one (finite: only λ_min/λ_max decides) and a matrix with a
+    # tiny determinant that no Cholesky pivot proves regular (the eigenvalue fallback).
+    rng = np.random.default_rng(11)
+    good = spd(rng, 40)
+    v = rng.normal(size=(3, 5, 4))
+    deficient = v @ np.swapaxes(v, -1, -2)
+    zero = spd(rng, 1)
+    zero[0, 2, :] = zero[0, :, 2] = 0.0
+    q, _ = np.linalg.qr(rng.normal(size=(5, 5)))
+    ill = (q @ np.diag(np.logspace(0, -10, 5)) @ q.T)[None]
+    batch = np.concatenate([good, deficient, zero, ill])
+    out = log_det(batch)
+    sign, ref = np.linalg.slogdet(good)
+    assert np.all(sign > 0)
+    np.testing.assert_allclose(out[:40], ref, rtol=1e-12, atol=1e-10)
+    assert np.all(out[40:44] == -np.inf)
+    assert np.isfinite(out[44])
+    np.testing.assert_allclose(out[44], np.linalg.slogdet(ill[0])[1], rtol=1e-9)
+    # the same values one matrix at a time, and in a (2, 2, p, p) batch shape
+    np.testing.assert_array_equal([log_det(m) for m in batch], out)
+    np.testing.assert_array_equal(log_det(good[:4].reshape(2, 2, 5, 5)), out[:4].reshape(2, 2))
+    # NaN information stays NaN, as numpy's path gives it (never a finite number)
+    bad = good[:1].copy()
+    bad[0, 1, 1] = np.nan
+    with np.errstate(invalid="ignore"):  # (numpy's LU warns of the NaN)
+        assert not np.isfinite(log_det(bad)[0])
+
+
+def test_layout_information_is_base_plus_each_layouts_outer_products():
+    # J of a layout = J_installed + Σ over its meters' readings of r rᵀ with
+    # r = (gain/σ) · (axis · ∂E/∂θ): Kay, Fundamentals of Statistical Signal Processing I,
+    # §3.9, summed here with numpy's einsum. Three-axis meters on skew axes, a saturated
+    # reading (weight 0) and 70 scenarios (past one block of 64 summed side by side).
+    rng = np.random.default_rng(5)
+    n_s, n_l, n_p, n_a, p = 70, 3, 4, 3, 5
+    jac = rng.normal(size=(n_s, n_l * n_p, 3, p))
+    axes = rng.normal(size=(n_l * n_p, n_a, 3))
+    axes /= np.linalg.norm(axes, axis=-1, keepdims=True)
+    axes[1, 2] = 0.0  # a narrower meter: an unused axis
+    weights = rng.uniform(0.5, 2.0, (n_s, n_l * n_p, n_a))
+    weights[3, 5, 1] = 0.0
+    base = spd(rng, n_s)
+    out = fisher_mod.layout_information(jac, axes, weights, base, n_p)
+    rows = np.einsum("smip,mai->smap", jac, axes) * weights[..., None]
+    rows = rows.reshape(n_s, n_l, n_p * n_a, p)
+    ref = base[:, None] + np.einsum("slrp,slrq->slpq", rows, rows)
+    assert out.shape == (n_l, n_s, p, p)
+    np.testing.assert_allclose(
+        out, np.moveaxis(ref, 1, 0), rtol=1e-12, atol=1e-12 * np.abs(ref).max()
+    )
+    np.testing.assert_array_equal(out, np.swapaxes(out, -1, -2))
