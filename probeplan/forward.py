@@ -16,13 +16,23 @@ the sum of both. The image's parameters are the real ones with charge and height
 
 from __future__ import annotations
 
+import functools
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
 
 from .lowrank import small_products
-from .sources import KERNELS, DensityGrid, Source, _SourceBase, grid_entries
+from .sources import (
+    FOLDS_IMAGES,
+    KERNELS,
+    DensityGrid,
+    Source,
+    _call_compiled,
+    _jit,
+    _SourceBase,
+    grid_entries,
+)
 from .sources.potentials import potential_kernel
 
 BACKGROUND_PARAMS: tuple[str, ...] = ("bg.x_v_per_m", "bg.y_v_per_m", "bg.z_v_per_m")
@@ -70,6 +80,7 @@ class Scene:
     background: bool = False
     structures: object = None
     _groups: tuple[_KindGroup, ...] = field(init=False, repr=False)
+    _names: tuple[str, ...] = field(init=False, repr=False)
     _memo: dict = field(init=False, repr=False, default_factory=dict)
     _blocks: dict = field(init=False, repr=False, default_factory=dict)
 
@@ -93,6 +104,10 @@ class Scene:
                         f"source {i} ({s.kind}) reaches down to z = {s.lowest_z_m():g} m, not above"
                         f" the ground plane at z = {g:g} m; every source must lie above the ground."
                     )
+        # (built once: every evaluate reads the parameter count)
+        names = [f"s{i}.{n}" for i, s in enumerate(srcs) for n in s.param_names]
+        names = tuple(names) + (BACKGROUND_PARAMS if self.background else ())
+        object.__setattr__(self, "_names", names)
         object.__setattr__(self, "_groups", self._build_groups())
         if self.structures is not None:
             if self.structures.ground_z_m != self.ground_z_m:
@@ -109,8 +124,7 @@ class Scene:
     @property
     def param_names(self) -> tuple[str, ...]:
         """All parameter names of θ, in order."""
-        names = [f"s{i}.{n}" for i, s in enumerate(self.sources) for n in s.param_names]
-        return tuple(names) + (BACKGROUND_PARAMS if self.background else ())
+        return self._names
 
     @property
     def n_params(self) -> int:
@@ -176,10 +190,9 @@ class Scene:
         """
         n_s = theta.shape[0]
         n_pts = points_m.shape[0]
-        total = np.zeros((n_s, n_pts, 3))
-        blocks = []  # (group, the kernel's Jacobian (S, M, 3, N or 2N, P))
+        total = None
+        blocks = []  # (group, the kernel's Jacobian (S, M, 3, N or 2N, P), images listed)
         g = self.ground_z_m
-        every = columns is None or np.array_equal(columns, np.arange(self.n_params))
         if out is not None:
             n_cols = self.n_params if columns is None else len(columns)
             if out.shape != (n_s, n_pts, 3, n_cols):
@@ -187,24 +200,25 @@ class Scene:
                     f"`out` must have shape {(n_s, n_pts, 3, n_cols)} "
                     f"(n_scenarios, n_points, 3, n_cols); got {out.shape}."
                 )
-        # One kind in free space, parameters in order: the kernel writes ∂E/∂θ directly.
-        direct = (
-            jacobian
-            and g is None
-            and self.structures is None
-            and every
-            and len(self._groups) == 1
-            and self._groups[0].contiguous
-            and not self.background
-        )
+        cols = np.arange(self.n_params) if columns is None else np.asarray(columns, dtype=int)
+        # One kind whose kernel folds the images in (or free space), its parameters first and
+        # whole, then background columns if any: the kernel writes ∂E/∂θ straight into the
+        # output, and the background columns are constants.
+        direct = jacobian and self._writes_directly(cols.tobytes())
+        if direct and out is None:
+            out = np.empty((n_s, n_pts, 3, cols.size))
         for grp in self._groups:
             params = theta[:, grp.columns]  # (S, N, P)
             kernel = KERNELS[grp.kind]
-            if g is None:
+            if g is None or grp.kind in FOLDS_IMAGES:
+                # (the images, if any, folded into the sources' columns by the kernel)
                 buf = None
-                if direct and out is not None:
-                    buf = out.reshape(n_s, n_pts, 3, *grp.columns.shape)
-                e, jac = kernel(params, points_m, grp.geometry, jacobian, buf)
+                if direct:
+                    wide = grp.kind in FOLDS_IMAGES
+                    buf = out if wide else out.reshape(n_s, n_pts, 3, *grp.columns.shape)
+                fold = {} if g is None else {"ground_z": g}
+                e, jac = kernel(params, points_m, grp.geometry, jacobian, buf, **fold)
+                blocks.append((grp, jac, False))
             else:
                 # Real sources and their images in one kernel call: N real then N images.
                 mirrored = params.copy()
@@ -212,28 +226,58 @@ class Scene:
                 mirrored[..., 3] = 2.0 * g - mirrored[..., 3]
                 both = np.concatenate([params, mirrored], axis=1)
                 e, jac = kernel(both, points_m, grp.pair_geometry, jacobian)
-            total += e
-            blocks.append((grp, jac))
-        if self.background:
+                blocks.append((grp, jac, True))
+            total = e if total is None else np.add(total, e, out=total)  # (e: a fresh array)
+        if total is None:
+            total = np.zeros((n_s, n_pts, 3))
+        if self.background and not direct:
             total += theta[:, None, -3:]
         if not jacobian:
             if self.structures is not None:
                 total += self.structures.field_of(points_m, self._responses(theta, None))[0]
             return total, None
-        cols = np.arange(self.n_params) if columns is None else np.asarray(columns, dtype=int)
         if direct:
-            full = blocks[0][1].reshape(n_s, n_pts, 3, blocks[0][0].columns.size)
+            full = out
+            if not np.shares_memory(blocks[0][1], out):  # (a reshape of a strided `out` copies)
+                out[...] = blocks[0][1].reshape(out.shape)
+            if self.background:
+                # the background's field, and its columns ∂E_i/∂bg_k = δ_ik (if kept)
+                n_own = blocks[0][0].columns.size
+                comps = cols[n_own:] - (self.n_params - 3)
+                bg = np.ascontiguousarray(theta[:, -3:], dtype=float)
+                _call_compiled(_background_loop, total, bg, full, n_own, comps)
         else:
             full = self._assemble(blocks, cols, n_s, n_pts)
-        if out is not None:
-            if not np.shares_memory(full, out):
+            if out is not None:
                 out[...] = full
-            full = out
+                full = out
         if self.structures is not None:
             e_ind, j_ind = self.structures.field_of(points_m, self._responses(theta, cols))
             total += e_ind
             full += j_ind
         return total, full
+
+    @functools.lru_cache(maxsize=8)  # noqa: B019 (a few column sets a scene, each asked often)
+    def _writes_directly(self, cols_bytes: bytes) -> bool:
+        """Whether one kernel call writes the Jacobian of the kept ``cols`` in place: one kind,
+        no structures, the images (if any) folded in by the kernel, the kind's columns first,
+        all kept and in order, then (for a kernel that writes into wider rows) only background
+        columns, in order. ``cols_bytes``: the kept columns' int array as bytes."""
+        cols = np.frombuffer(cols_bytes, dtype=int)
+        if self.structures is not None or len(self._groups) != 1:
+            return False
+        grp = self._groups[0]
+        if not grp.contiguous or (self.ground_z_m is not None and grp.kind not in FOLDS_IMAGES):
+            return False
+        n_own = grp.columns.size
+        rest = cols[n_own:]
+        return bool(
+            (cols.size >= n_own if grp.kind in FOLDS_IMAGES else cols.size == n_own)
+            and np.array_equal(cols[:n_own], np.arange(n_own))
+            and np.all(rest >= self.n_params - 3 * self.background)
+            and np.all(np.diff(rest) > 0)
+            and np.all(rest < self.n_params)
+        )
 
     def prime(self, theta: np.ndarray, columns: np.ndarray) -> None:
         """Solve the structures' responses to every scenario of ``theta`` ``(n_scenarios,
@@ -350,6 +394,7 @@ class Scene:
     def _assemble(self, blocks, cols: np.ndarray, n_s: int, n_pts: int) -> np.ndarray:
         """∂E/∂θ of the kept columns from the kernels' blocks, ``(S, M, 3, n_cols)``.
 
+        ``blocks``: (group, its kernel's Jacobian, whether it lists the images as sources).
         Image columns enter with charge and height negated (chain rule through q' = −q,
         z' = 2g − z). A kind with few parameters is mapped onto the kept θ columns by one
         small matrix product with a 0/±1 matrix, which replaces strided adds, a scatter and a
@@ -360,9 +405,8 @@ class Scene:
         """
         n_rows = n_s * n_pts * 3
         shape = (n_s, n_pts, 3, cols.size)
-        ground = self.ground_z_m is not None
         full = None
-        for grp, jac in blocks:
+        for grp, jac, ground in blocks:
             n_src, n_par = grp.columns.shape
             kept = grp.columns.reshape(-1, 1) == cols[None, :]  # (N*P, n_cols)
             n_in = jac.shape[3] * n_par
@@ -584,3 +628,27 @@ def _structures(conductors, ground_z_m: float | None, meters_m=None):
 
 
 __all__ = ["BACKGROUND_PARAMS", "Scene", "check_points", "field", "field_jacobian"]
+
+
+@_jit
+def _background_loop(total, bg, jac, first, comps):
+    """Add the uniform background ``bg (S, 3)`` to the field ``total (S, M, 3)``, and write
+    its kept Jacobian columns ``jac[..., first + j]`` (component ``comps[j]`` of the
+    background): ∂E_i/∂bg_k = δ_ik. One pass; numpy's broadcasts over the short last axes took
+    about as long as the sources' own compiled loop on a scoring chunk."""
+    n_s, n_m = total.shape[0], total.shape[1]
+    for s in range(n_s):
+        b0, b1, b2 = bg[s, 0], bg[s, 1], bg[s, 2]
+        for m in range(n_m):
+            total[s, m, 0] += b0
+            total[s, m, 1] += b1
+            total[s, m, 2] += b2
+    for j in range(comps.size):
+        col = first + j
+        k = comps[j]
+        v0, v1, v2 = 1.0 if k == 0 else 0.0, 1.0 if k == 1 else 0.0, 1.0 if k == 2 else 0.0
+        for s in range(n_s):
+            for m in range(n_m):
+                jac[s, m, 0, col] = v0
+                jac[s, m, 1, col] = v1
+                jac[s, m, 2, col] = v2

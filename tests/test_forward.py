@@ -669,13 +669,13 @@ def test_one_kind_writes_any_output_layout_with_one_compiled_version(source):
     # or Fortran-ordered, read-only points, float32 points and a truthy int for `jacobian` give
     # the same numbers as the plain call, and the compiled loop is not compiled again for them
     # (numba compiles once per argument type; see probeplan.sources._radial_kernel).
-    from probeplan.sources import _radial_loop
+    from probeplan.sources import _radial_loops
 
     scene = pp.Scene((source,))
     theta = np.stack([scene.nominal(), scene.nominal() * 1.01])
     pts = np.array([[0.0, 0.0, 0.0], [100.0, 50.0, 5.0], [-30.0, 20.0, 640.0], [5.0, 5.0, 301.0]])
     e, jac = scene.evaluate(theta, pts)
-    n_versions = len(_radial_loop.signatures)
+    n_versions = sum(len(f.signatures) for d in _radial_loops.values() for f in d.values())
     wide = np.full(jac.shape[:-1] + (2 * jac.shape[-1],), np.nan)
     fortran = np.asfortranarray(np.full(jac.shape, np.nan))
     frozen = pts.copy()
@@ -688,7 +688,7 @@ def test_one_kind_writes_any_output_layout_with_one_compiled_version(source):
     assert np.isnan(wide[..., 1::2]).all()
     e32, jac32 = scene.evaluate(theta, pts.astype(np.float32), jacobian=1)
     np.testing.assert_array_equal(jac32, jac)  # these points are exact in float32
-    assert len(_radial_loop.signatures) == n_versions
+    assert sum(len(f.signatures) for d in _radial_loops.values() for f in d.values()) == n_versions
 
 
 @pytest.mark.parametrize("ground", [None, 0.0])
@@ -717,3 +717,67 @@ def test_evaluate_into_a_strided_output_and_without_jacobian(ground):
     e3, none = scene.evaluate(theta, pts, jacobian=False)
     assert none is None
     np.testing.assert_array_equal(e3, e)
+
+
+@pytest.mark.parametrize("ground", [None, -0.4], ids=["free", "ground"])
+@pytest.mark.parametrize("kind", ["point", "sphere", "gaussian"])
+def test_the_two_radial_loops_agree_to_the_bit(kind, ground):
+    # The radial kinds run one of two compiled loops: source by source over blocks of points
+    # (few sources) or point by point over every source (many). Both sum each point's sources
+    # in the same order with the same arithmetic, so they must agree exactly; the choice is
+    # speed only (definition of the split, probeplan.sources.radial.FEW_SOURCES).
+    from probeplan.sources import K_COULOMB, radial
+
+    rng = np.random.default_rng(8)
+    sources = [_random_source(kind, rng, z_min=0.5) for _ in range(5)]
+    scene = pp.Scene(sources, ground_z_m=ground)
+    theta = _fd_thetas(scene, rng, n_scenarios=3)
+    pts = _points_for(scene, rng, n=150)  # past one block of 64 points
+    params = np.ascontiguousarray(theta.reshape(3, 5, -1))
+    results = []
+    # (the many-source loop also with non-temporal stores, as for outputs past the caches)
+    for few, stream in ((True, False), (False, False), (False, True)):
+        loops = radial._radial_loops[few, ground is not None, False]
+        loop = loops[("point", "sphere", "gaussian").index(kind)]
+        e = np.zeros((3, len(pts), 3))
+        jac = np.full((3, len(pts), 3, params.shape[1] * params.shape[2]), np.nan)
+        g = math.nan if ground is None else ground
+        assert loop(K_COULOMB, params, np.ascontiguousarray(pts), g, e, jac, True, stream) == -1
+        results.append((e, jac))
+    for e, jac in results[1:]:
+        np.testing.assert_array_equal(e, results[0][0])
+        np.testing.assert_array_equal(jac, results[0][1])
+    # and what Scene.evaluate returns is the same numbers
+    e, jac = scene.evaluate(theta, pts)
+    np.testing.assert_array_equal(e, results[0][0])
+    np.testing.assert_array_equal(jac, results[0][1])
+
+
+@pytest.mark.parametrize("ground", [None, 0.0], ids=["free", "ground"])
+@pytest.mark.parametrize("kind", ["point", "gaussian", "line"])
+def test_kept_columns_are_the_full_jacobians_columns(kind, ground):
+    # `columns=` keeps some Jacobian columns: they must be the full Jacobian's columns exactly
+    # (definition of the option), whichever path writes them: the kernel straight into the
+    # output (a kind's own columns then background ones) or the general assembly.
+    rng = np.random.default_rng(2)
+    sources = [_random_source(kind, rng, z_min=0.5) for _ in range(2)]
+    scene = pp.Scene(sources, ground_z_m=ground, background=True)
+    theta = _fd_thetas(scene, rng, n_scenarios=2)
+    pts = _points_for(scene, rng, n=20)
+    e, full = scene.evaluate(theta, pts)
+    n_own = scene.n_params - 3
+    subsets = [
+        np.arange(scene.n_params),
+        np.r_[np.arange(n_own), n_own + 2],
+        np.r_[np.arange(n_own), n_own, n_own + 2],
+        np.arange(n_own),
+        np.r_[1, 2, n_own + 1],
+        np.r_[n_own + 2, np.arange(n_own)],
+    ]
+    for cols in subsets:
+        e2, part = scene.evaluate(theta, pts, columns=cols)
+        np.testing.assert_array_equal(e2, e)
+        np.testing.assert_array_equal(part, full[..., cols])
+        buf = np.full(part.shape, np.nan)
+        scene.evaluate(theta, pts, columns=cols, out=buf)
+        np.testing.assert_array_equal(buf, part)

@@ -590,7 +590,7 @@ def test_ctrl_c_during_a_first_compiled_call_is_held_until_it_returns():
         done.append(x)
         return 2 * x
 
-    first_call.signatures = []
+    first_call.overloads = {}  # (a numba dispatcher with nothing compiled yet)
     before = signal.getsignal(signal.SIGINT)
     with pytest.raises(KeyboardInterrupt):
         sources._call_compiled(first_call, 21)
@@ -607,13 +607,13 @@ def test_ctrl_c_during_a_first_compiled_call_is_held_until_it_returns():
             signal.raise_signal(signal.SIGINT)
             done.append(x)
 
-        pressed_twice.signatures = []
+        pressed_twice.overloads = {}
         sources._call_compiled(pressed_twice, 5)
         assert presses == [2, 2]
     finally:
         signal.signal(signal.SIGINT, before)
     done[:] = [21]
-    first_call.signatures = ["(int64,)"]  # loaded: no handler is installed around later calls
+    first_call.overloads = {"(int64,)": None}  # loaded: no handler is installed around later calls
     with pytest.raises(KeyboardInterrupt):
         sources._call_compiled(first_call, 1)
     assert done == [21]

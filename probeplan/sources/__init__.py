@@ -54,7 +54,7 @@ from .kinds import (
     _SourceBase,  # noqa: F401
 )
 from .line import _line_kernel
-from .radial import _gaussian_kernel, _point_kernel, _radial_loop, _sphere_kernel  # noqa: F401
+from .radial import _gaussian_kernel, _point_kernel, _radial_loops, _sphere_kernel  # noqa: F401
 
 #: kind name -> kernel(params (S, N, P), points (M, 3), geometry, want_jac, out=None)
 KERNELS = {
@@ -64,6 +64,10 @@ KERNELS = {
     "gaussian": _gaussian_kernel,
     "grid": _grid_kernel,
 }
+
+#: Kinds whose kernel also takes ``ground_z=`` (the images folded into the sources' Jacobian
+#: columns) and an ``out`` of shape (S, M, 3, C ≥ N·P) (see :func:`radial._radial_kernel`).
+FOLDS_IMAGES = frozenset({"point", "sphere", "gaussian"})
 
 __all__ = [
     "BASE_PARAMS",

@@ -9,6 +9,10 @@ import threading
 
 import numba
 import numpy as np
+from llvmlite import ir
+from numba.core import cgutils
+from numba.core import types as nb_types
+from numba.extending import intrinsic
 
 # Kernels work on blocks of points small enough that their temporaries stay in cache.
 _BLOCK_ELEMENTS = 1 << 15
@@ -47,7 +51,7 @@ def _call_compiled(fn, *args):
     lost; held, each press is handed to the previous handler once the call is done.
     """
     if (
-        fn.signatures
+        fn.overloads  # (a dict: cheaper than `signatures`, a list made anew on every call)
         or threading.current_thread() is not threading.main_thread()  # (signals go to main)
         or signal.getsignal(signal.SIGINT) is None  # a handler not set from Python: leave it
     ):
@@ -117,3 +121,41 @@ def _raise_on_charge(index: int, point: np.ndarray, what: str, why: str = _INFIN
         f"point {index} at ({point[0]:g}, {point[1]:g}, {point[2]:g}) m lies on a {what}, where "
         + why
     )
+
+
+@intrinsic
+def _stream_store(typingctx, arr, i0, i1, i2, i3, value):
+    """``arr[i0, i1, i2, i3] = value`` with a non-temporal store, for compiled loops.
+
+    A plain store to memory not in cache first reads the cache line it goes to ("read for
+    ownership"), so writing an output larger than the caches moves each byte twice; a
+    non-temporal store writes the line out whole (write-combining), about 2x faster for a
+    96 MB Jacobian here. For outputs read again soon after (in cache), plain stores are
+    better. Stores made this way must be followed by :func:`_store_fence` before another
+    thread reads them."""
+    sig = nb_types.void(arr, i0, i1, i2, i3, value)
+
+    def codegen(context, builder, signature, args):
+        arr_t = signature.args[0]
+        ary = context.make_array(arr_t)(context, builder, args[0])
+        ptr = cgutils.get_item_pointer(
+            context, builder, arr_t, ary, list(args[1:5]), wraparound=False
+        )
+        value = context.cast(builder, args[5], signature.args[5], arr_t.dtype)
+        store = builder.store(value, ptr)
+        store.set_metadata("nontemporal", builder.module.add_metadata([ir.IntType(32)(1)]))
+        return context.get_dummy_value()
+
+    return sig, codegen
+
+
+@intrinsic
+def _store_fence(typingctx):
+    """A full memory fence (orders the non-temporal stores of :func:`_stream_store` before
+    what follows)."""
+
+    def codegen(context, builder, signature, args):
+        builder.fence("seq_cst")
+        return context.get_dummy_value()
+
+    return nb_types.void(), codegen

@@ -1,4 +1,4 @@
-"""Radial kinds (point, uniform ball, Gaussian): one loop compiled by numba.
+"""Radial kinds (point, uniform ball, Gaussian): two loops compiled by numba.
 
 Closed forms: Coulomb's law; Gauss's law inside and outside a uniform ball; the Gaussian's
 enclosed-charge fraction P(3/2, r²/2σ²) (regularised lower incomplete gamma).
@@ -12,17 +12,26 @@ import types
 import numba
 import numpy as np
 
-from ._common import _call_compiled, _jac_buffer, _jit, _plain, _raise_on_charge
+from ._common import (
+    _call_compiled,
+    _jac_buffer,
+    _jit,
+    _plain,
+    _raise_on_charge,
+    _store_fence,
+    _stream_store,
+)
 from .kinds import K_COULOMB
 
-# ---- radial kinds (point, ball, Gaussian): one compiled loop ---------------------------------
+# ---- radial kinds (point, ball, Gaussian): compiled loops ------------------------------------
 #
 # Their field is E = k q a(r) R with R = x − c, so the whole Jacobian follows from three radial
 # functions: ∂E/∂q = k a R, ∂E/∂c = −k q (a I + b R Rᵀ) with b = a′(r)/r, and the size parameter's
-# column ∂E/∂θ₄ = k q e R. The work per output number is a few flops, so the kernel is bound by
-# writing the (S, M, 3, N, P) Jacobian; a compiled loop writes each output row once, in order,
-# which numpy's whole-array passes cannot (their ~40 passes over strided columns ran at a fifth
-# of the memory bandwidth; see benchmarks/forward.py).
+# column ∂E/∂θ₄ = k q e R. The work per output number is a few flops. With many sources the
+# kernel is bound by writing the (S, M, 3, N, P) Jacobian: a compiled loop writes each point's
+# rows once, in order (numpy's ~40 whole-array passes over strided columns ran at a fifth of the
+# memory bandwidth; see benchmarks/forward.py). With few sources, as when scoring layouts, it is
+# bound by the arithmetic: another loop runs each source over a block of points.
 
 _RADIAL_POINT, _RADIAL_BALL, _RADIAL_GAUSSIAN = 0, 1, 2
 
@@ -80,21 +89,180 @@ def _radial_profile(kind, r2, size):
     return a, -3.0 * a * inv_r2, 0.0
 
 
-#: (scenario, point) pairs per block of the compiled loop: one thread a block.
+@_jit
+def _first_on_point(params, pts, m0, m1, ground_z):
+    """The first point m in [m0, m1) within ``_ON_POINT_M2`` of a point charge of ``params``
+    ``(N, P)`` or (when ``ground_z`` is not NaN) of its image; −1 if none."""
+    for m in range(m0, m1):
+        for n in range(params.shape[0]):
+            dx = pts[m, 0] - params[n, 1]
+            dy = pts[m, 1] - params[n, 2]
+            for cz in (params[n, 3], 2.0 * ground_z - params[n, 3]):
+                dz = pts[m, 2] - cz
+                if dx * dx + dy * dy + dz * dz < _ON_POINT_M2:
+                    return m
+    return -1
+
+
+@_jit
+def _source_terms(kind, k_coulomb, q, size, dx, dy, dz, dzi, mirrored):
+    """What one source (and, when ``mirrored``, its image) gives at one point.
+
+    ``(dx, dy, dz)``: point minus source centre; ``dzi``: the point's height above the image
+    (charge −q at height 2g − z). Returns (smallest squared distance, the field (3), then
+    ∂E/∂θ row by row: ∂E_i/∂q, ∂E_i/∂(x, y, z), ∂E_i/∂size for i = x, y, z (15 numbers)).
+    The image's entries are added with its charge and height columns negated (chain rule
+    through q' = −q, z' = 2g − z): each entry is real ± image rounded once.
+    """
+    r2 = dx * dx + dy * dy + dz * dz
+    a, b, e = _radial_profile(kind, r2, size)
+    ka = k_coulomb * a
+    kqa = q * ka
+    kq = k_coulomb * q
+    nkqb = -kq * b
+    kqe = kq * e
+    fx, fy, fz = kqa * dx, kqa * dy, kqa * dz
+    q0, q1, q2 = ka * dx, ka * dy, ka * dz
+    gxx, gyy, gzz = nkqb * dx * dx - kqa, nkqb * dy * dy - kqa, nkqb * dz * dz - kqa
+    gxy, gxz, gyz = nkqb * dx * dy, nkqb * dx * dz, nkqb * dy * dz
+    s0, s1, s2 = kqe * dx, kqe * dy, kqe * dz
+    hxx = hyy = hzz = hxy = hxz = hyz = 0.0
+    if mirrored:
+        r2i = dx * dx + dy * dy + dzi * dzi
+        r2 = min(r2, r2i)
+        ai, bi, ei = _radial_profile(kind, r2i, size)
+        kai = k_coulomb * ai
+        kqai = -q * kai
+        nkqbi = kq * bi
+        kqei = -kq * ei
+        fx, fy, fz = fx + kqai * dx, fy + kqai * dy, fz + kqai * dzi
+        q0, q1, q2 = q0 - kai * dx, q1 - kai * dy, q2 - kai * dzi
+        hxx = nkqbi * dx * dx - kqai
+        hyy = nkqbi * dy * dy - kqai
+        hzz = nkqbi * dzi * dzi - kqai
+        hxy = nkqbi * dx * dy
+        hxz = nkqbi * dx * dzi
+        hyz = nkqbi * dy * dzi
+        s0, s1, s2 = s0 + kqei * dx, s1 + kqei * dy, s2 + kqei * dzi
+    return (
+        (r2, fx, fy, fz),
+        (q0, gxx + hxx, gxy + hxy, gxz - hxz, s0),
+        (q1, gxy + hxy, gyy + hyy, gyz - hyz, s1),
+        (q2, gxz + hxz, gyz + hyz, gzz - hzz, s2),
+    )
+
+
+@_jit
+def _put(jac, s, m, i, j, value, stream):
+    """``jac[s, m, i, j] = value``; a non-temporal store when ``stream``."""
+    if stream:
+        _stream_store(jac, s, m, i, j, value)
+    else:
+        jac[s, m, i, j] = value
+
+
+@_jit
+def _store(jac, s, m, c, P, rows, stream):
+    """One source's ∂E/∂θ ``rows`` (3 × 5 numbers, see :func:`_source_terms`) into
+    ``jac[s, m, :, c:c + P]`` (the size column only for P = 5), in column order; with
+    non-temporal stores when ``stream``."""
+    rx, ry, rz = rows  # (unrolled: a tuple indexed in a loop is copied to the stack)
+    _put(jac, s, m, 0, c, rx[0], stream)
+    _put(jac, s, m, 0, c + 1, rx[1], stream)
+    _put(jac, s, m, 0, c + 2, rx[2], stream)
+    _put(jac, s, m, 0, c + 3, rx[3], stream)
+    _put(jac, s, m, 1, c, ry[0], stream)
+    _put(jac, s, m, 1, c + 1, ry[1], stream)
+    _put(jac, s, m, 1, c + 2, ry[2], stream)
+    _put(jac, s, m, 1, c + 3, ry[3], stream)
+    _put(jac, s, m, 2, c, rz[0], stream)
+    _put(jac, s, m, 2, c + 1, rz[1], stream)
+    _put(jac, s, m, 2, c + 2, rz[2], stream)
+    _put(jac, s, m, 2, c + 3, rz[3], stream)
+    if P > 4:
+        _put(jac, s, m, 0, c + 4, rx[4], stream)
+        _put(jac, s, m, 1, c + 4, ry[4], stream)
+        _put(jac, s, m, 2, c + 4, rz[4], stream)
+
+
+#: Points per block of :func:`_radial_blocks_py`: one thread a block of one scenario's points,
+#: which the innermost loop runs through for one source at a time (measured on a scoring chunk,
+#: one charge over ground, 64 scenarios × 136 points: 3x faster than point by point).
+_M_BLOCK = 64
+#: (scenario, point) pairs per block of :func:`_radial_points_py`: one thread a block.
 _SM_BLOCK = 64
+#: Sources up to which :func:`_radial_blocks_py` runs; with more, a point's Jacobian row is
+#: long, and :func:`_radial_points_py` writes it in order, point after point (measured: with
+#: 500 sources the blocks wrote at 0.3-0.4 of the stream bandwidth, the points at 0.8-1.1).
+FEW_SOURCES = 16
+#: The kind a copy of the loops is compiled for, and whether it adds images (see
+#: :func:`_loop_for`): globals, so that the compiler sees constants and drops the branches
+#: that copy never takes (measured: 1.5x faster with many sources in free space).
+_KIND = -1
+_MIRRORED = False
 
-
-def _radial_loop_py(kind, k_coulomb, params, pts, E, jac, want_jac):
-    """Add the field of every source to ``E`` (S, M, 3) and write ``jac`` (S, M, 3, N, P).
+_LOOP_NOTES = """
+    ``ground_z`` (m) is read by the copies with images only (see :func:`_loop_for`): each
+    source's mirror image in the plane z = ground_z is added with it and folded into the
+    source's Jacobian columns (see :func:`_source_terms`); the field adds real + image,
+    source after source.
 
     ``k_coulomb`` is an argument, not the global: numba would freeze a global into the machine
-    code it caches, and keep it when scipy's CODATA constants change. The (scenario, point)
-    pairs run in blocks, one thread a block; each pair is summed by one thread in source order,
-    so the result does not depend on the number of threads.
+    code it caches, and keep it when scipy's CODATA constants change. Each point is summed by
+    one thread in source order, so the result does not depend on the number of threads, nor
+    on which of the two loops ran.
     Returns the flat index s·M + m of the first (scenario, point) on a point charge, else −1.
-    """
+"""
+
+
+def _radial_blocks_py(k_coulomb, params, pts, ground_z, E, jac, want_jac, stream):
+    """Add the field of every source to ``E`` (S, M, 3) and write ``jac`` (S, M, 3, C) in its
+    first N·P columns, source n's parameter j in column n·P + j: source by source over blocks
+    of one scenario's points, for few sources (``stream`` is ignored: the stores of a block
+    are strided)."""
+    kind = _KIND
     S, N, P = params.shape
     M = pts.shape[0]
+    mirrored = _MIRRORED
+    per_s = (M + _M_BLOCK - 1) // _M_BLOCK
+    n_blocks = S * per_s
+    first = np.full(n_blocks, -1, dtype=np.int64)
+    for blk in numba.prange(n_blocks):
+        s = blk // per_s
+        m0 = (blk - s * per_s) * _M_BLOCK
+        m1 = min(M, m0 + _M_BLOCK)
+        closest = np.inf
+        for n in range(N):
+            q, cx, cy, cz = params[s, n, 0], params[s, n, 1], params[s, n, 2], params[s, n, 3]
+            size = params[s, n, 4] if P > 4 else 0.0
+            zi = 2.0 * ground_z - cz  # the image's height (NaN in free space)
+            for m in range(m0, m1):
+                dx, dy = pts[m, 0] - cx, pts[m, 1] - cy
+                head, rx, ry, rz = _source_terms(
+                    kind, k_coulomb, q, size, dx, dy, pts[m, 2] - cz, pts[m, 2] - zi, mirrored
+                )
+                closest = min(closest, head[0])
+                E[s, m, 0] += head[1]
+                E[s, m, 1] += head[2]
+                E[s, m, 2] += head[3]
+                if want_jac:
+                    _store(jac, s, m, n * P, P, (rx, ry, rz), False)
+        if kind == _RADIAL_POINT and closest < _ON_POINT_M2:
+            first[blk] = s * M + _first_on_point(params[s], pts, m0, m1, ground_z)
+    for blk in range(n_blocks):
+        if first[blk] >= 0:
+            return first[blk]
+    return -1
+
+
+def _radial_points_py(k_coulomb, params, pts, ground_z, E, jac, want_jac, stream):
+    """As :func:`_radial_blocks_py`, point after point, every source for each: for many
+    sources. Each point's Jacobian rows are written in order, with non-temporal stores when
+    ``stream`` (a large output: see :data:`STREAM_MIN_BYTES`)."""
+    kind = _KIND
+    S, N, P = params.shape
+    M = pts.shape[0]
+    mirrored = _MIRRORED
     n_blocks = (S * M + _SM_BLOCK - 1) // _SM_BLOCK
     first = np.full(n_blocks, -1, dtype=np.int64)
     for blk in numba.prange(n_blocks):
@@ -102,107 +270,132 @@ def _radial_loop_py(kind, k_coulomb, params, pts, E, jac, want_jac):
             s = sm // M
             m = sm - s * M
             px, py, pz = pts[m, 0], pts[m, 1], pts[m, 2]
-            ex = 0.0
-            ey = 0.0
-            ez = 0.0
+            fx = fy = fz = 0.0
+            closest = np.inf
             for n in range(N):
-                q = params[s, n, 0]
-                dx = px - params[s, n, 1]
-                dy = py - params[s, n, 2]
-                dz = pz - params[s, n, 3]
-                r2 = dx * dx + dy * dy + dz * dz
-                if r2 < _ON_POINT_M2 and kind == _RADIAL_POINT:
-                    if first[blk] < 0:
-                        first[blk] = sm
-                    continue
-                a, b, e = _radial_profile(kind, r2, params[s, n, 4] if P > 4 else 0.0)
-                ka = k_coulomb * a
-                kqa = q * ka
-                ex += kqa * dx
-                ey += kqa * dy
-                ez += kqa * dz
-                if not want_jac:
-                    continue
-                jac[s, m, 0, n, 0] = ka * dx
-                jac[s, m, 1, n, 0] = ka * dy
-                jac[s, m, 2, n, 0] = ka * dz
-                nkqb = -k_coulomb * q * b
-                gxy = nkqb * dx * dy
-                gxz = nkqb * dx * dz
-                gyz = nkqb * dy * dz
-                jac[s, m, 0, n, 1] = nkqb * dx * dx - kqa
-                jac[s, m, 0, n, 2] = gxy
-                jac[s, m, 0, n, 3] = gxz
-                jac[s, m, 1, n, 1] = gxy
-                jac[s, m, 1, n, 2] = nkqb * dy * dy - kqa
-                jac[s, m, 1, n, 3] = gyz
-                jac[s, m, 2, n, 1] = gxz
-                jac[s, m, 2, n, 2] = gyz
-                jac[s, m, 2, n, 3] = nkqb * dz * dz - kqa
-                if P > 4:
-                    kqe = k_coulomb * q * e
-                    jac[s, m, 0, n, 4] = kqe * dx
-                    jac[s, m, 1, n, 4] = kqe * dy
-                    jac[s, m, 2, n, 4] = kqe * dz
-            E[s, m, 0] += ex
-            E[s, m, 1] += ey
-            E[s, m, 2] += ez
+                cz = params[s, n, 3]
+                head, rx, ry, rz = _source_terms(
+                    kind,
+                    k_coulomb,
+                    params[s, n, 0],
+                    params[s, n, 4] if P > 4 else 0.0,
+                    px - params[s, n, 1],
+                    py - params[s, n, 2],
+                    pz - cz,
+                    pz - (2.0 * ground_z - cz),
+                    mirrored,
+                )
+                closest = min(closest, head[0])
+                fx += head[1]
+                fy += head[2]
+                fz += head[3]
+                if want_jac:
+                    _store(jac, s, m, n * P, P, (rx, ry, rz), stream)
+            E[s, m, 0] += fx
+            E[s, m, 1] += fy
+            E[s, m, 2] += fz
+            if kind == _RADIAL_POINT and closest < _ON_POINT_M2 and first[blk] < 0:
+                first[blk] = sm
+        if stream:
+            _store_fence()
     for blk in range(n_blocks):
         if first[blk] >= 0:
             return first[blk]
     return -1
 
 
-def _renamed(fn, name: str):
-    """A copy of ``fn`` under another name: numba caches compiled code by the function's
-    name, and the serial and the parallel loop must not share a cache entry."""
-    copy = types.FunctionType(fn.__code__, fn.__globals__, name, fn.__defaults__)
+_radial_blocks_py.__doc__ += _LOOP_NOTES
+_radial_points_py.__doc__ += _LOOP_NOTES
+
+
+def _loop_for(fn, kind: int, mirrored: bool, parallel: bool):
+    """A compiled copy of loop ``fn`` for one kind, with or without images (``_KIND`` and
+    ``_MIRRORED`` constants in its own globals), on one core or on every core. numba caches
+    compiled code by the function's name: each copy has its own."""
+    name = (
+        f"{fn.__name__.removesuffix('_py')}_{kind}{'_mirrored' if mirrored else ''}"
+        f"{'_parallel' if parallel else ''}"
+    )
+    copy = types.FunctionType(
+        fn.__code__, {**fn.__globals__, "_KIND": kind, "_MIRRORED": mirrored}, name
+    )
     copy.__qualname__ = name
-    return copy
+    copy.__doc__ = fn.__doc__
+    return _jit(parallel=True)(copy) if parallel else _jit(copy)
 
 
-_radial_loop = _jit(_renamed(_radial_loop_py, "_radial_loop"))
-#: The same loop on every core: for large calls only (see :data:`PARALLEL_MIN`).
-_radial_loop_parallel = _jit(parallel=True)(_renamed(_radial_loop_py, "_radial_loop_parallel"))
-#: Scenarios × points × sources from which a call runs the loop on every core: below it the
-#: threads' start costs more than they save, and a small call (a dask worker's block, a
-#: budget's helper process) keeps to its own core.
+_KINDS = (_RADIAL_POINT, _RADIAL_BALL, _RADIAL_GAUSSIAN)
+#: (few sources?, with images?, on every core?) -> kind -> compiled loop (each compiled on
+#: its first call); every core for large calls only (see :data:`PARALLEL_MIN`).
+_radial_loops = {
+    (few, mirrored, par): {k: _loop_for(fn, k, mirrored, par) for k in _KINDS}
+    for few, fn in ((True, _radial_blocks_py), (False, _radial_points_py))
+    for mirrored in (False, True)
+    for par in (False, True)
+}
+#: Scenarios × points × source terms (images count) from which a call runs the loop on every
+#: core: below it the threads' start costs more than they save, and a small call (a dask
+#: worker's block, a budget's helper process) keeps to its own core.
 PARALLEL_MIN = 1_000_000
+#: Jacobian bytes from which the many-source loop writes with non-temporal stores: an output
+#: this large leaves the caches before anyone reads it (measured on the 96 MB of
+#: benchmarks/forward.py: 13.3 → 9.9 ms; a plain fill of it, 2x faster).
+STREAM_MIN_BYTES = 32 << 20
 
-_NO_JAC = np.empty((1, 1, 1, 1, 1))
+_NO_JAC = np.empty((1, 1, 1, 1))
 
 
 def _radial_kernel(kind: int, name: str, what: str = ""):
     """The kernel of one radial kind, around the compiled loop. The loop sees only writable
     C-ordered float64 arrays and Python scalars, so one compiled version serves every call (a
     read-only, strided or float32 array would each cost a compilation of its own); an ``out``
-    of another layout gets the result through a temporary array."""
+    of another layout gets the result through a temporary array.
 
-    def kernel(params, pts, geom, want_jac, out=None):
+    Beyond the arguments every kernel takes, ``out`` may also be ``(S, M, 3, C)`` with
+    C ≥ N·P: the Jacobian then fills its first N·P columns (source n's parameter j in column
+    n·P + j) and the others are left as they are; and ``ground_z`` (m) adds each source's
+    mirror image in that grounded plane with its Jacobian folded into the source's columns."""
+
+    def kernel(params, pts, geom, want_jac, out=None, ground_z=None):
         S, N, P = params.shape
         M = pts.shape[0]
         E = np.zeros((S, M, 3))
-        jac = _jac_buffer((S, M, 3, N, P), want_jac, out)
-        target = jac
-        if jac is not None and not _plain(jac):
-            target = np.empty(jac.shape)
+        if out is not None and out.ndim == 4:
+            if out.shape[:3] != (S, M, 3) or out.shape[3] < N * P:
+                raise ValueError(
+                    f"`out` must have shape {(S, M, 3)} + (at least {N * P},); got {out.shape}."
+                )
+            jac = out if want_jac else None
+        else:
+            jac = _jac_buffer((S, M, 3, N, P), want_jac, out)
+        target = view = None
+        if jac is not None:
+            view = jac if jac.ndim == 4 or not _plain(jac) else jac.reshape(S, M, 3, N * P)
+            target = view if _plain(view) else np.empty((S, M, 3, N * P))
         params = np.require(params, float, ["C", "W"])
         pts = np.require(pts, float, ["C", "W"])
-        loop = _radial_loop_parallel if S * M * N >= PARALLEL_MIN else _radial_loop
+        n_terms = N if ground_z is None else 2 * N
+        loops = _radial_loops[
+            N <= FEW_SOURCES, ground_z is not None, S * M * n_terms >= PARALLEL_MIN
+        ]
         singular = _call_compiled(
-            loop,
-            int(kind),
+            loops[kind],
             K_COULOMB,
             params,
             pts,
+            math.nan if ground_z is None else float(ground_z),
             E,
             _NO_JAC if jac is None else target,
             bool(want_jac),
+            target is not None and target.nbytes >= STREAM_MIN_BYTES,
         )
         if singular >= 0:
             _raise_on_charge(singular % M, pts[singular % M], what)
-        if target is not jac:
-            jac[...] = target
+        if target is not view:
+            if jac.ndim == 4:
+                jac[..., : N * P] = target
+            else:
+                jac[...] = target.reshape(jac.shape)
         return E, jac
 
     kernel.__name__ = kernel.__qualname__ = name
