@@ -168,30 +168,46 @@ def _log_det_checked(fisher: np.ndarray) -> np.ndarray:
     return np.where(singular, -np.inf, full)
 
 
+#: Below this a running product of pivots is folded into a sum of logs (no underflow).
+_TINY_PRODUCT = 1e-280
+_LN2 = math.log(2.0)
+
+
 @_jit
 def _log_det_loop(fisher, proof, out, proven):
     """log det of each ``fisher[i] (p, p)`` by Cholesky of its correlation-scaled form, into
     ``out[i]``; ``proven[i]`` when the scaled log det is at least ``proof`` (the matrix is then
     regular by the rule of :func:`_singular_from_scaled`). Matrices with a non-positive
-    diagonal entry or a failed factorisation are left unproven."""
+    diagonal entry or a failed factorisation are left unproven.
+
+    Logs are taken of products, two a matrix: the scaled pivots lie in (0, 1] (a pivot is a
+    conditional variance of a unit-diagonal matrix), and the diagonal's product is kept as
+    mantissa × 2^exponent, so neither can overflow; a product of pivots near underflow is
+    folded into the sum early."""
     n, p, _ = fisher.shape
     d = np.empty(p)
     low = np.empty((p, p))
     for i in range(n):
-        a = fisher[i]
         proven[i] = False
         out[i] = 0.0
         ok = True
+        diag_mant, diag_exp = 1.0, 0  # Π J_jj
         for j in range(p):
-            if not a[j, j] > 0.0:
+            ajj = fisher[i, j, j]
+            if not ajj > 0.0:
                 ok = False
                 break
-            d[j] = 1.0 / math.sqrt(a[j, j])
+            d[j] = 1.0 / math.sqrt(ajj)
+            mant, ex = math.frexp(ajj)
+            diag_mant, diag_exp = diag_mant * mant, diag_exp + ex
+            if diag_mant < _TINY_PRODUCT:
+                mant, ex = math.frexp(diag_mant)
+                diag_mant, diag_exp = mant, diag_exp + ex
         if not ok:
             continue
-        logdet = 0.0
+        pivots, logdet = 1.0, 0.0
         for j in range(p):
-            acc = a[j, j] * d[j] * d[j]
+            acc = fisher[i, j, j] * d[j] * d[j]
             for k in range(j):
                 acc -= low[j, k] * low[j, k]
             if not acc > 0.0:
@@ -199,17 +215,22 @@ def _log_det_loop(fisher, proof, out, proven):
                 break
             ljj = math.sqrt(acc)
             low[j, j] = ljj
-            logdet += math.log(acc)
+            pivots *= acc
+            if pivots < _TINY_PRODUCT:
+                logdet += math.log(pivots)
+                pivots = 1.0
             for r in range(j + 1, p):
-                acc_r = a[r, j] * d[r] * d[j]
+                acc_r = fisher[i, r, j] * d[r] * d[j]
                 for k in range(j):
                     acc_r -= low[r, k] * low[j, k]
                 low[r, j] = acc_r / ljj
-        if not ok or not logdet >= proof:
+        if not ok:
             continue
-        for j in range(p):
-            logdet -= 2.0 * math.log(d[j])
-        out[i] = logdet
+        logdet += math.log(pivots)
+        if not logdet >= proof:
+            continue
+        # log det J = log det(D J D) + Σ log J_jj
+        out[i] = logdet + math.log(diag_mant) + diag_exp * _LN2
         proven[i] = True
 
 

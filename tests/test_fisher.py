@@ -345,6 +345,12 @@ def test_compiled_log_det_matches_numpy_and_keeps_the_singularity_rule():
     assert np.all(out[40:44] == -np.inf)
     assert np.isfinite(out[44])
     np.testing.assert_allclose(out[44], np.linalg.slogdet(ill[0])[1], rtol=1e-9)
+    # parameters in wildly different units (J entries from 1e-300 to 1e300): no overflow
+    wide = np.array([1e150, 1e-150, 1e100, 1.0, 1e-100])
+    extreme = good[:3] / np.diagonal(good[:3], axis1=-2, axis2=-1)[:, :, None] ** 0.5
+    extreme = extreme / np.diagonal(good[:3], axis1=-2, axis2=-1)[:, None, :] ** 0.5
+    extreme = extreme * wide[:, None] * wide[None, :]
+    np.testing.assert_allclose(log_det(extreme), np.linalg.slogdet(extreme)[1], rtol=1e-12)
     # the same values one matrix at a time, and in a (2, 2, p, p) batch shape
     np.testing.assert_array_equal([log_det(m) for m in batch], out)
     np.testing.assert_array_equal(log_det(good[:4].reshape(2, 2, 5, 5)), out[:4].reshape(2, 2))
