@@ -306,14 +306,10 @@ def whitened_rows(
 
     Parameters
     ----------
-    field_v_per_m : (..., n_probes, 3) float
-        The field at each probe (… is any batch shape, e.g. (n_scenarios,)).
     jacobian : (..., n_probes, 3, n_params) float
         ∂E/∂θ at each probe.
-    axes : (n_probes, n_axes, 3) float
-    gain : (n_probes,) or (..., n_probes) float
-    noise : Noise or Meters
-        One grade for every probe, or each probe's own (:class:`Meters` of these probes).
+    field_v_per_m, axes, gain, noise
+        As for :func:`reading_weights`.
 
     Returns
     -------

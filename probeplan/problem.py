@@ -208,19 +208,7 @@ class Problem:
         step = max(1, _CHUNK_BYTES // per_layout)
         for start in range(0, n_l, step):
             sl = slice(start, min(start + step, n_l))
-            k = sl.stop - sl.start
-            pos = layouts_m[sl].reshape(-1, 3)
-            g = np.full(k * n_p, self.new_gain) if gains is None else gains[sl].reshape(-1)
-            if self.shards is not None and self.shards.wants(self.n_scenarios, k * n_p):
-                rows, _ = self.rows(pos, g)  # (S, k*n, A, p)
-                rows = rows.reshape(rows.shape[0], k, -1, rows.shape[-1])
-                yield sl, np.moveaxis(fisher_from_rows(rows), 0, 1) + self.fisher_installed
-                continue
-            # Rows and their products in one compiled pass (the rows are never stored).
-            e, jac = self.scene.evaluate(self.theta, pos, columns=self.est_cols)
-            axes = np.broadcast_to(self.new_axes, (k * n_p, *self.new_axes.shape))
-            weights, _ = reading_weights(e, axes, g, self.noise)
-            yield sl, layout_information(jac, axes, weights, self.fisher_installed, n_p)
+            yield sl, _chunk_information(self, layouts_m[sl], None if gains is None else gains[sl])
 
     def probe_information(
         self, positions_m: np.ndarray, gain: np.ndarray | None = None
@@ -560,6 +548,22 @@ def _bounds_and_worst(
     worst = int(np.argmin(per) if criterion.maximise else np.argmax(per))
     worst = worst if per[worst] != per[0] else 0
     return crb, singular, worst, unresolved_directions(info[worst], names, ground=ground)
+
+
+def _chunk_information(problem: Problem, layouts_m: np.ndarray, gains: np.ndarray | None):
+    """Fisher information ``(k, S, p, p)`` of a chunk of layouts ``(k, n_probes, 3)`` (m),
+    installed meters included; ``gains (k, n_probes)`` or None for the new probes' gain."""
+    k, n_p, _ = layouts_m.shape
+    pos = layouts_m.reshape(-1, 3)
+    g = np.full(k * n_p, problem.new_gain) if gains is None else gains.reshape(-1)
+    if problem.shards is not None and problem.shards.wants(problem.n_scenarios, k * n_p):
+        rows = problem.rows(pos, g)[0].reshape(problem.n_scenarios, k, -1, problem.n_params)
+        return np.moveaxis(fisher_from_rows(rows), 0, 1) + problem.fisher_installed
+    # Rows and their products in one compiled pass (the rows are never stored).
+    e, jac = problem.scene.evaluate(problem.theta, pos, columns=problem.est_cols)
+    axes = np.broadcast_to(problem.new_axes, (k * n_p, *problem.new_axes.shape))
+    weights, _ = reading_weights(e, axes, g, problem.noise)
+    return layout_information(jac, axes, weights, problem.fisher_installed, n_p)
 
 
 def build_problem(
