@@ -70,7 +70,10 @@ class GridObjective:
         only: a thinned grid of :func:`_levels`."""
         sub = GridObjective(
             self.problem,
-            self.rows[:, idx],
+            # (np.take: C-ordered; `rows[:, idx]` lays the copy out candidate-major behind a
+            # transposed view, which every compiled sweep then copied again: 92 MB a sweep on
+            # the regional site's 10,000-candidate level, 17 s of its 70 s plan)
+            np.take(self.rows, idx, axis=1),
             prior=False,
             robust=self.robust,
             fixed_info=self.fixed_info,
