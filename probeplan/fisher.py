@@ -239,7 +239,7 @@ def layout_information(
     axes: np.ndarray,
     weights: np.ndarray,
     base: np.ndarray,
-    n_probes: int,
+    n_layouts: int,
 ) -> np.ndarray:
     """Fisher information of consecutive groups of probes (layouts), in one compiled pass.
 
@@ -256,15 +256,19 @@ def layout_information(
         gain / σ of each reading, 0 where saturated (:func:`probeplan.probes.reading_weights`).
     base : (n_scenarios, n_params, n_params) float
         Information every layout has already (the installed meters').
-    n_probes : int
+    n_layouts : int
+        How many layouts the probes make, each of n_probes = n_points / n_layouts (0 probes:
+        each layout's information is ``base``).
 
     Returns
     -------
     (n_layouts, n_scenarios, n_params, n_params) float
     """
     n_s, n_pts, _, p = jacobian.shape
-    n_l = n_pts // max(n_probes, 1) if n_pts else 0
-    out = np.empty((n_l, n_s, p, p))
+    n_probes = n_pts // n_layouts if n_layouts else 0
+    if n_probes * n_layouts != n_pts:
+        raise ValueError(f"{n_pts} probes do not split into {n_layouts} layouts of equal size.")
+    out = np.empty((n_layouts, n_s, p, p))
     if out.size:
         _call_compiled(
             _layout_information_loop,

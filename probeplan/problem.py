@@ -563,7 +563,7 @@ def _chunk_information(problem: Problem, layouts_m: np.ndarray, gains: np.ndarra
     e, jac = problem.scene.evaluate(problem.theta, pos, columns=problem.est_cols)
     axes = np.broadcast_to(problem.new_axes, (k * n_p, *problem.new_axes.shape))
     weights, _ = reading_weights(e, axes, g, problem.noise)
-    return layout_information(jac, axes, weights, problem.fisher_installed, n_p)
+    return layout_information(jac, axes, weights, problem.fisher_installed, k)
 
 
 def build_problem(

@@ -375,7 +375,7 @@ def test_layout_information_is_base_plus_each_layouts_outer_products():
     weights = rng.uniform(0.5, 2.0, (n_s, n_l * n_p, n_a))
     weights[3, 5, 1] = 0.0
     base = spd(rng, n_s)
-    out = fisher_mod.layout_information(jac, axes, weights, base, n_p)
+    out = fisher_mod.layout_information(jac, axes, weights, base, n_l)
     rows = np.einsum("smip,mai->smap", jac, axes) * weights[..., None]
     rows = rows.reshape(n_s, n_l, n_p * n_a, p)
     ref = base[:, None] + np.einsum("slrp,slrq->slpq", rows, rows)
@@ -384,3 +384,6 @@ def test_layout_information_is_base_plus_each_layouts_outer_products():
         out, np.moveaxis(ref, 1, 0), rtol=1e-12, atol=1e-12 * np.abs(ref).max()
     )
     np.testing.assert_array_equal(out, np.swapaxes(out, -1, -2))
+    # layouts of no new probe (scoring installed meters only): the base information each
+    empty = fisher_mod.layout_information(jac[:, :0], axes[:0], weights[:, :0], base, 4)
+    np.testing.assert_allclose(empty, np.broadcast_to(base, (4, n_s, p, p)), rtol=1e-14)

@@ -626,3 +626,5 @@ def test_installed_meters_alone_are_scored_with_their_single_failures():
     assert score.failure_values.shape == (4,)
     full = fisher_by_differences(problem, np.empty((0, 3)), np.empty(0))
     assert_fisher_close(score.fisher, full)
+    # the batched scorer agrees: three "layouts" of no new meter are the installed ones alone
+    np.testing.assert_allclose(problem.layout_values(np.empty((3, 0, 3))), score.value, rtol=1e-12)
