@@ -16,7 +16,6 @@ the sum of both. The image's parameters are the real ones with charge and height
 
 from __future__ import annotations
 
-import functools
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 
@@ -83,6 +82,7 @@ class Scene:
     _names: tuple[str, ...] = field(init=False, repr=False)
     _memo: dict = field(init=False, repr=False, default_factory=dict)
     _blocks: dict = field(init=False, repr=False, default_factory=dict)
+    _direct: dict = field(init=False, repr=False, default_factory=dict)
 
     def __post_init__(self) -> None:
         srcs = _as_sources(self.sources)
@@ -204,7 +204,7 @@ class Scene:
         # One kind whose kernel folds the images in (or free space), its parameters first and
         # whole, then background columns if any: the kernel writes ∂E/∂θ straight into the
         # output, and the background columns are constants.
-        direct = jacobian and self._writes_directly(cols.tobytes())
+        direct = jacobian and self._writes_directly(cols)
         if direct and out is None:
             out = np.empty((n_s, n_pts, 3, cols.size))
         for grp in self._groups:
@@ -257,13 +257,18 @@ class Scene:
             full += j_ind
         return total, full
 
-    @functools.lru_cache(maxsize=8)  # noqa: B019 (a few column sets a scene, each asked often)
-    def _writes_directly(self, cols_bytes: bytes) -> bool:
+    def _writes_directly(self, cols: np.ndarray) -> bool:
         """Whether one kernel call writes the Jacobian of the kept ``cols`` in place: one kind,
         no structures, the images (if any) folded in by the kernel, the kind's columns first,
         all kept and in order, then (for a kernel that writes into wider rows) only background
-        columns, in order. ``cols_bytes``: the kept columns' int array as bytes."""
-        cols = np.frombuffer(cols_bytes, dtype=int)
+        columns, in order. Remembered per column set (a scene is asked for a few, often)."""
+        key = cols.tobytes()
+        found = self._direct.get(key)
+        if found is None:
+            found = self._direct[key] = self._direct_for(cols)
+        return found
+
+    def _direct_for(self, cols: np.ndarray) -> bool:
         if self.structures is not None or len(self._groups) != 1:
             return False
         grp = self._groups[0]
