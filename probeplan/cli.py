@@ -383,10 +383,11 @@ def _sigterm_interrupts() -> Iterator[None]:
 
 
 def _caused_by_interrupt(exc: BaseException) -> bool:
-    """Whether a KeyboardInterrupt (Ctrl-C, or SIGTERM) is behind ``exc``. Python wraps an
-    exception raised while a class is being made (``__set_name__``, as in a dataclass of a
-    module imported on first use) in a RuntimeError: a signal in that instant is still an
-    interrupt, not a bug."""
+    """Whether a KeyboardInterrupt (Ctrl-C, or SIGTERM) is behind ``exc``: its cause, or the
+    exception being handled when it was raised. Python 3.11 wraps an exception raised while a
+    class is being made (``__set_name__``, as in a dataclass of a module imported on first
+    use) in a RuntimeError (3.12 no longer does); an error raised while an interrupt was being
+    handled, in clean-up code say, is the interrupt's doing too. Either way it is not a bug."""
     seen = set()
     while exc is not None and id(exc) not in seen:
         if isinstance(exc, KeyboardInterrupt):

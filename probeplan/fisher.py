@@ -138,18 +138,22 @@ def log_det(fisher: np.ndarray) -> np.ndarray:
     """log det J (natural log, SI units); −inf where J is singular. Shape (...,).
 
     A compiled loop scales each matrix, factors it by Cholesky and keeps the matrices its
-    determinant proves regular (see :func:`_singular_from_scaled`); the rest — a failed
-    factorisation or a determinant too small to prove anything, few in practice — go through
-    :func:`_log_det_checked`, the LU and eigenvalue test.
+    determinant proves regular (see :func:`_singular_from_scaled`) with room to spare; the
+    rest — a failed factorisation, a non-finite entry or a determinant too near the threshold
+    to prove anything, few in practice — go through :func:`_log_det_checked`, the LU and
+    eigenvalue test, so that every matrix is classified as that test classifies it. From 12
+    parameters on, the rule proves nothing (a scaled determinant is at most 1), and every
+    matrix goes there directly.
     """
     fisher = np.asarray(fisher, dtype=float)
     p = fisher.shape[-1]
-    if p == 0 or fisher.size == 0:
+    proof = math.log(SINGULAR_RTOL) + p * math.log(p) + _PROOF_MARGIN if p else 0.0
+    if p == 0 or fisher.size == 0 or proof >= 0.0:
         return _log_det_checked(fisher)
     flat = np.ascontiguousarray(fisher).reshape(-1, p, p)
     out = np.empty(flat.shape[0])
     proven = np.empty(flat.shape[0], dtype=np.bool_)
-    _call_compiled(_log_det_loop, flat, math.log(SINGULAR_RTOL) + p * math.log(p), out, proven)
+    _call_compiled(_log_det_loop, flat, proof, out, proven)
     if not proven.all():
         rest = ~proven
         out[rest] = _log_det_checked(flat[rest])
@@ -168,6 +172,12 @@ def _log_det_checked(fisher: np.ndarray) -> np.ndarray:
     return np.where(singular, -np.inf, full)
 
 
+#: How far (in log det) above the singularity rule's threshold the Cholesky determinant must
+#: be to count as proof: LU and Cholesky round a nearly singular matrix's determinant
+#: differently (measured: 2.8e-5 apart in log at the threshold), and a matrix that straddles
+#: the threshold must be classified as the LU and eigenvalue test does. A factor 1000 leaves
+#: only matrices with κ ≲ 1e10, whose determinants both factorisations get to ~1e-6.
+_PROOF_MARGIN = math.log(1e3)
 #: Below this a running product of pivots is folded into a sum of logs (no underflow).
 _TINY_PRODUCT = 1e-280
 _LN2 = math.log(2.0)
@@ -178,12 +188,12 @@ def _log_det_loop(fisher, proof, out, proven):
     """log det of each ``fisher[i] (p, p)`` by Cholesky of its correlation-scaled form, into
     ``out[i]``; ``proven[i]`` when the scaled log det is at least ``proof`` (the matrix is then
     regular by the rule of :func:`_singular_from_scaled`). Matrices with a non-positive
-    diagonal entry or a failed factorisation are left unproven.
+    diagonal entry, a non-finite entry or a failed factorisation are left unproven.
 
-    Logs are taken of products, two a matrix: the scaled pivots lie in (0, 1] (a pivot is a
-    conditional variance of a unit-diagonal matrix), and the diagonal's product is kept as
-    mantissa × 2^exponent, so neither can overflow; a product of pivots near underflow is
-    folded into the sum early."""
+    Logs are taken of products, two a matrix: the scaled pivots lie in (0, 1] up to rounding
+    (a pivot is a conditional variance of a unit-diagonal matrix), and the diagonal's product
+    is kept as mantissa × 2^exponent, so neither can overflow; a product of pivots near
+    underflow is folded into the sum early."""
     n, p, _ = fisher.shape
     d = np.empty(p)
     low = np.empty((p, p))
@@ -191,8 +201,15 @@ def _log_det_loop(fisher, proof, out, proven):
         proven[i] = False
         out[i] = 0.0
         ok = True
+        # (the factorisation reads the lower triangle: a NaN or inf above it must not pass)
+        for j in range(p):
+            for k in range(j + 1, p):
+                if not math.isfinite(fisher[i, j, k]):
+                    ok = False
         diag_mant, diag_exp = 1.0, 0  # Π J_jj
         for j in range(p):
+            if not ok:
+                break
             ajj = fisher[i, j, j]
             if not ajj > 0.0:
                 ok = False

@@ -359,6 +359,40 @@ def test_compiled_log_det_matches_numpy_and_keeps_the_singularity_rule():
     bad[0, 1, 1] = np.nan
     with np.errstate(invalid="ignore"):  # (numpy's LU warns of the NaN)
         assert not np.isfinite(log_det(bad)[0])
+        upper = good[:1].copy()
+        upper[0, 0, 3] = np.nan  # above the diagonal only: the Cholesky never reads it
+        assert not np.isfinite(log_det(upper)[0])
+
+
+def test_log_det_classifies_near_the_threshold_as_the_singularity_test_does():
+    # The contract's rule (λ_min/λ_max of the scaled J below 1e-12: singular, −inf) must give
+    # the same answer in log_det as in the bounds (_is_singular, covariance). Matrices built
+    # with eigenvalue ratios straddling 1e-12, p = 2 … 6; and one a review found straddling the
+    # determinant proof (Cholesky above it, LU below; its computed ratio is within rounding of
+    # 1e-12, on one side or the other depending on the machine's LAPACK).
+    j = np.array(
+        [[0.00114439984444802, 0.0079702413187132], [0.0079702413187132, 0.05550922344752444]]
+    )
+    assert np.isneginf(log_det(j[None])[0]) == fisher_mod._is_singular(j[None])[0]
+    rng = np.random.default_rng(12)
+    # p = 2: a unit-diagonal [[1, ρ], [ρ, 1]] has eigenvalues 1 ± ρ, so a ratio near 1e-12 puts
+    # its determinant right at the proof's threshold 1e-12 · 2²; then mixed units
+    rho = 1.0 - 2e-12 * 10.0 ** rng.uniform(-1e-4, 1e-4, 20000)
+    two = np.stack([np.ones_like(rho), rho, rho, np.ones_like(rho)], axis=-1).reshape(-1, 2, 2)
+    scale = np.exp(rng.uniform(-20, 20, (20000, 2)))
+    two = two * scale[:, :, None] * scale[:, None, :]
+    np.testing.assert_array_equal(np.isneginf(log_det(two)), fisher_mod._is_singular(two))
+    for p in range(2, 7):
+        q, _ = np.linalg.qr(rng.normal(size=(400, p, p)))
+        lam = np.ones((400, p))
+        lam[:, -1] = 10.0 ** rng.uniform(-12.3, -11.7, 400)
+        lam[:, 1:-1] = 10.0 ** rng.uniform(-6, 0, (400, p - 2))
+        mats = np.einsum("nij,nj,nkj->nik", q, lam, q)
+        mats = mats * np.exp(rng.uniform(-10, 10, (400, p)))[:, :, None]
+        mats = 0.5 * (mats + np.swapaxes(mats, -1, -2))
+        mats = mats * np.exp(rng.uniform(-10, 10, (400, p)))[:, None, :]
+        mats = 0.5 * (mats + np.swapaxes(mats, -1, -2))
+        np.testing.assert_array_equal(np.isneginf(log_det(mats)), fisher_mod._is_singular(mats))
 
 
 def test_layout_information_is_base_plus_each_layouts_outer_products():

@@ -628,3 +628,18 @@ def test_installed_meters_alone_are_scored_with_their_single_failures():
     assert_fisher_close(score.fisher, full)
     # the batched scorer agrees: three "layouts" of no new meter are the installed ones alone
     np.testing.assert_allclose(problem.layout_values(np.empty((3, 0, 3))), score.value, rtol=1e-12)
+
+
+@pytest.mark.parametrize(
+    ("noise", "relative", "reading"),
+    [(20.0, 0.02, 1500.0), (1e160, 0.0, 1.0), (1.0, 0.1, 1e160), (1e-170, 0.0, 0.0)],
+)
+def test_meter_noise_is_the_quadrature_sum_at_any_scale(noise, relative, reading):
+    # σ = sqrt(noise² + (relative × reading)²), the two independent errors added in quadrature
+    # (common practice for independent error sources); numpy's hypot is the reference, which
+    # neither overflows nor underflows where the plain squares would.
+    from probeplan.probes import Noise
+
+    grade = Noise(noise_v_per_m=noise, relative_noise=relative)
+    got = grade.sigma(np.array([reading, -reading]))
+    np.testing.assert_allclose(got, np.hypot(noise, relative * reading), rtol=1e-15)
