@@ -90,10 +90,18 @@ def _singular_from_scaled(scaled: np.ndarray, d: np.ndarray, sign, logdet) -> np
 
 
 def _is_singular(fisher: np.ndarray) -> np.ndarray:
-    """(...,) bool: J cannot be inverted meaningfully (see :func:`_singular_from_scaled`)."""
-    scaled, d = _scaled(fisher)
-    sign, logdet = np.linalg.slogdet(scaled)
-    return _singular_from_scaled(scaled, d, sign, logdet)
+    """(...,) bool: J cannot be inverted meaningfully (see :func:`_singular_from_scaled`);
+    the matrices the compiled Cholesky proves regular (:func:`_proven_log_dets`) are not
+    factored again."""
+    fisher = np.asarray(fisher, dtype=float)
+    flat, _, proven = _proven_log_dets(fisher)
+    singular = np.zeros(flat.shape[0], dtype=bool)
+    if not proven.all():
+        rest = flat[~proven]
+        scaled, d = _scaled(rest)
+        sign, logdet = np.linalg.slogdet(scaled)
+        singular[~proven] = _singular_from_scaled(scaled, d, sign, logdet)
+    return singular.reshape(fisher.shape[:-2])
 
 
 def covariance(fisher: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -137,27 +145,33 @@ def crb_std(fisher: np.ndarray) -> np.ndarray:
 def log_det(fisher: np.ndarray) -> np.ndarray:
     """log det J (natural log, SI units); −inf where J is singular. Shape (...,).
 
-    A compiled loop scales each matrix, factors it by Cholesky and keeps the matrices its
-    determinant proves regular (see :func:`_singular_from_scaled`) with room to spare; the
-    rest — a failed factorisation, a non-finite entry or a determinant too near the threshold
-    to prove anything, few in practice — go through :func:`_log_det_checked`, the LU and
-    eigenvalue test, so that every matrix is classified as that test classifies it. From 12
-    parameters on, the rule proves nothing (a scaled determinant is at most 1), and every
-    matrix goes there directly.
+    A compiled loop scales each matrix, factors it by Cholesky and keeps the matrices it proves
+    regular with room to spare (see :func:`_log_det_loop`); the rest — a failed factorisation,
+    a non-finite entry or a matrix too near the threshold to prove anything, few in practice —
+    go through :func:`_log_det_checked`, the LU and eigenvalue test, so that every matrix is
+    classified as that test classifies it.
     """
     fisher = np.asarray(fisher, dtype=float)
-    p = fisher.shape[-1]
-    proof = math.log(SINGULAR_RTOL) + p * math.log(p) + _PROOF_MARGIN if p else 0.0
-    if p == 0 or fisher.size == 0 or proof >= 0.0:
-        return _log_det_checked(fisher)
-    flat = np.ascontiguousarray(fisher).reshape(-1, p, p)
-    out = np.empty(flat.shape[0])
-    proven = np.empty(flat.shape[0], dtype=np.bool_)
-    _call_compiled(_log_det_loop, flat, proof, out, proven)
+    flat, out, proven = _proven_log_dets(fisher)
     if not proven.all():
         rest = ~proven
         out[rest] = _log_det_checked(flat[rest])
     return out.reshape(fisher.shape[:-2])
+
+
+def _proven_log_dets(fisher: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The matrices of ``fisher (..., p, p)`` as ``flat (n, p, p)``, with the log det of each
+    that :func:`_log_det_loop` proves regular, ``(n,)``, and which those are, ``(n,) bool``."""
+    p = fisher.shape[-1]
+    n = math.prod(fisher.shape[:-2])
+    flat = np.ascontiguousarray(fisher).reshape(n, p, p)
+    out = np.empty(n)
+    proven = np.zeros(flat.shape[0], dtype=np.bool_)
+    if p and flat.shape[0]:
+        det_proof = math.log(SINGULAR_RTOL) + p * math.log(p) + math.log(_PROOF_MARGIN)
+        lam_floor = _PROOF_MARGIN * SINGULAR_RTOL * p
+        _call_compiled(_log_det_loop, flat, det_proof, lam_floor, out, proven)
+    return flat, out, proven
 
 
 def _log_det_checked(fisher: np.ndarray) -> np.ndarray:
@@ -172,23 +186,31 @@ def _log_det_checked(fisher: np.ndarray) -> np.ndarray:
     return np.where(singular, -np.inf, full)
 
 
-#: How far (in log det) above the singularity rule's threshold the Cholesky determinant must
-#: be to count as proof: LU and Cholesky round a nearly singular matrix's determinant
-#: differently (measured: 2.8e-5 apart in log at the threshold), and a matrix that straddles
-#: the threshold must be classified as the LU and eigenvalue test does. A factor 1000 leaves
-#: only matrices with κ ≲ 1e10, whose determinants both factorisations get to ~1e-6.
-_PROOF_MARGIN = math.log(1e3)
+#: How far beyond the singularity rule's threshold a Cholesky proof must be: LU and Cholesky
+#: round a nearly singular matrix's determinant differently (measured: 2.8e-5 apart in log at
+#: the threshold), and a matrix that straddles the threshold must be classified as the LU and
+#: eigenvalue test does. A factor 1000 leaves only matrices with κ ≲ 1e10, whose determinants
+#: and eigenvalues every factorisation gets to ~1e-6.
+_PROOF_MARGIN = 1e3
 #: Below this a running product of pivots is folded into a sum of logs (no underflow).
 _TINY_PRODUCT = 1e-280
 _LN2 = math.log(2.0)
 
 
 @_jit
-def _log_det_loop(fisher, proof, out, proven):
-    """log det of each ``fisher[i] (p, p)`` by Cholesky of its correlation-scaled form, into
-    ``out[i]``; ``proven[i]`` when the scaled log det is at least ``proof`` (the matrix is then
-    regular by the rule of :func:`_singular_from_scaled`). Matrices with a non-positive
-    diagonal entry, a non-finite entry or a failed factorisation are left unproven.
+def _log_det_loop(fisher, det_proof, lam_floor, out, proven):
+    """log det of each ``fisher[i] (p, p)`` by Cholesky A = L Lᵀ of its correlation-scaled
+    form A, into ``out[i]``, and ``proven[i]`` when A is shown regular by the rule of
+    :func:`_singular_from_scaled` (λ_min/λ_max ≥ SINGULAR_RTOL), with room to spare:
+
+    * its log det is at least ``det_proof`` (see :func:`_singular_from_scaled`), or
+    * 1/‖L⁻¹‖_F² ≥ ``lam_floor``: since λ_min(A) = 1/‖A⁻¹‖₂ ≥ 1/‖A⁻¹‖_F ≥ 1/‖L⁻¹‖_F²
+      (‖A⁻¹‖_F = ‖L⁻ᵀL⁻¹‖_F ≤ ‖L⁻¹‖_F²) and λ_max(A) ≤ tr A = p, this proves well-conditioned
+      matrices of any size, where the determinant proves nothing from 12 parameters on (a
+      scaled determinant is at most 1) and little for correlated parameters.
+
+    Matrices with a non-positive diagonal entry, a non-finite entry or a failed factorisation
+    are left unproven.
 
     Logs are taken of products, two a matrix: the scaled pivots lie in (0, 1] up to rounding
     (a pivot is a conditional variance of a unit-diagonal matrix), and the diagonal's product
@@ -197,6 +219,7 @@ def _log_det_loop(fisher, proof, out, proven):
     n, p, _ = fisher.shape
     d = np.empty(p)
     low = np.empty((p, p))
+    inv_col = np.empty(p)
     for i in range(n):
         proven[i] = False
         out[i] = 0.0
@@ -244,8 +267,18 @@ def _log_det_loop(fisher, proof, out, proven):
         if not ok:
             continue
         logdet += math.log(pivots)
-        if not logdet >= proof:
-            continue
+        if not logdet >= det_proof:
+            # ‖L⁻¹‖_F², column by column of L⁻¹ (forward substitution of e_c)
+            frob = 0.0
+            for c in range(p):
+                for r in range(c, p):
+                    acc = 1.0 if r == c else 0.0
+                    for k in range(c, r):
+                        acc -= low[r, k] * inv_col[k]
+                    inv_col[r] = acc / low[r, r]
+                    frob += inv_col[r] * inv_col[r]
+            if not frob * lam_floor <= 1.0:
+                continue
         # log det J = log det(D J D) + Σ log J_jj
         out[i] = logdet + math.log(diag_mant) + diag_exp * _LN2
         proven[i] = True

@@ -345,6 +345,15 @@ def test_compiled_log_det_matches_numpy_and_keeps_the_singularity_rule():
     assert np.all(out[40:44] == -np.inf)
     assert np.isfinite(out[44])
     np.testing.assert_allclose(out[44], np.linalg.slogdet(ill[0])[1], rtol=1e-9)
+    # 13 parameters, well conditioned (κ ~ 1e6) but correlated: proven regular from the
+    # Cholesky factor's inverse, where no determinant proves anything at this size
+    q, _ = np.linalg.qr(rng.normal(size=(30, 13, 13)))
+    many = np.einsum("nij,nj,nkj->nik", q, np.logspace(0, -6, 13)[None].repeat(30, 0), q)
+    many = 0.5 * (many + np.swapaxes(many, -1, -2))
+    np.testing.assert_allclose(log_det(many), np.linalg.slogdet(many)[1], rtol=1e-10)
+    proven = np.empty(30, dtype=bool)
+    fisher_mod._log_det_loop(many, 0.0, 1e3 * 1e-12 * 13, np.empty(30), proven)
+    assert proven.all()
     # parameters in wildly different units (J entries from 1e-300 to 1e300): no overflow
     wide = np.array([1e150, 1e-150, 1e100, 1.0, 1e-100])
     extreme = good[:3] / np.diagonal(good[:3], axis1=-2, axis2=-1)[:, :, None] ** 0.5
@@ -367,9 +376,9 @@ def test_compiled_log_det_matches_numpy_and_keeps_the_singularity_rule():
 def test_log_det_classifies_near_the_threshold_as_the_singularity_test_does():
     # The contract's rule (λ_min/λ_max of the scaled J below 1e-12: singular, −inf) must give
     # the same answer in log_det as in the bounds (_is_singular, covariance). Matrices built
-    # with eigenvalue ratios straddling 1e-12, p = 2 … 6; and one a review found straddling the
-    # determinant proof (Cholesky above it, LU below; its computed ratio is within rounding of
-    # 1e-12, on one side or the other depending on the machine's LAPACK).
+    # with eigenvalue ratios straddling 1e-12, p = 2 … 6 and 13; and one a review found
+    # straddling the determinant proof (Cholesky above it, LU below; its computed ratio is
+    # within rounding of 1e-12, on one side or the other depending on the machine's LAPACK).
     j = np.array(
         [[0.00114439984444802, 0.0079702413187132], [0.0079702413187132, 0.05550922344752444]]
     )
@@ -382,7 +391,7 @@ def test_log_det_classifies_near_the_threshold_as_the_singularity_test_does():
     scale = np.exp(rng.uniform(-20, 20, (20000, 2)))
     two = two * scale[:, :, None] * scale[:, None, :]
     np.testing.assert_array_equal(np.isneginf(log_det(two)), fisher_mod._is_singular(two))
-    for p in range(2, 7):
+    for p in (2, 3, 4, 5, 6, 13):
         q, _ = np.linalg.qr(rng.normal(size=(400, p, p)))
         lam = np.ones((400, p))
         lam[:, -1] = 10.0 ** rng.uniform(-12.3, -11.7, 400)
