@@ -97,11 +97,16 @@ def _is_singular(fisher: np.ndarray) -> np.ndarray:
     flat, _, proven = _proven_log_dets(fisher)
     singular = np.zeros(flat.shape[0], dtype=bool)
     if not proven.all():
-        rest = flat[~proven]
-        scaled, d = _scaled(rest)
-        sign, logdet = np.linalg.slogdet(scaled)
-        singular[~proven] = _singular_from_scaled(scaled, d, sign, logdet)
+        singular[~proven] = _lu_test(flat[~proven])[0]
     return singular.reshape(fisher.shape[:-2])
+
+
+def _lu_test(fisher: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The LU and eigenvalue test of :func:`_singular_from_scaled` on ``fisher (..., p, p)``:
+    (singular ``(...,)`` bool, log det of the scaled matrix ``(...,)``, d ``(..., p)``)."""
+    scaled, d = _scaled(fisher)
+    sign, logdet = np.linalg.slogdet(scaled)
+    return _singular_from_scaled(scaled, d, sign, logdet), logdet, d
 
 
 def covariance(fisher: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -166,8 +171,8 @@ def _proven_log_dets(fisher: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.nda
     n = math.prod(fisher.shape[:-2])
     flat = np.ascontiguousarray(fisher).reshape(n, p, p)
     out = np.empty(n)
-    proven = np.zeros(flat.shape[0], dtype=np.bool_)
-    if p and flat.shape[0]:
+    proven = np.zeros(n, dtype=np.bool_)
+    if p and n:
         det_proof = math.log(SINGULAR_RTOL) + p * math.log(p) + math.log(_PROOF_MARGIN)
         lam_floor = _PROOF_MARGIN * SINGULAR_RTOL * p
         _call_compiled(_log_det_loop, flat, det_proof, lam_floor, out, proven)
@@ -177,9 +182,7 @@ def _proven_log_dets(fisher: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.nda
 def _log_det_checked(fisher: np.ndarray) -> np.ndarray:
     """:func:`log_det` by LU (``slogdet``) and, where the determinant proves nothing, the
     eigenvalues of the scaled matrix."""
-    scaled, d = _scaled(fisher)
-    sign, logdet = np.linalg.slogdet(scaled)
-    singular = _singular_from_scaled(scaled, d, sign, logdet)
+    singular, logdet, d = _lu_test(fisher)
     # log det J = log det(D J D) − 2 Σ log d_i, without a second factorisation.
     with np.errstate(divide="ignore"):
         full = logdet - 2.0 * np.sum(np.log(np.where(d > 0, d, 1.0)), axis=-1)
