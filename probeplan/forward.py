@@ -230,8 +230,10 @@ class Scene:
             total = e if total is None else np.add(total, e, out=total)  # (e: a fresh array)
         if total is None:
             total = np.zeros((n_s, n_pts, 3))
-        if self.background and not direct:
-            total += theta[:, None, -3:]
+        if self.background:
+            # (numpy's broadcast over the short last axis took as long as the sources' own
+            # compiled loop on a scoring chunk)
+            _call_compiled(_add_background, total, np.ascontiguousarray(theta[:, -3:], dtype=float))
         if not jacobian:
             if self.structures is not None:
                 total += self.structures.field_of(points_m, self._responses(theta, None))[0]
@@ -240,12 +242,9 @@ class Scene:
             full = out
             if not np.shares_memory(blocks[0][1], out):  # (a reshape of a strided `out` copies)
                 out[...] = blocks[0][1].reshape(out.shape)
-            if self.background:
-                # the background's field, and its columns ∂E_i/∂bg_k = δ_ik (if kept)
-                n_own = blocks[0][0].columns.size
-                comps = cols[n_own:] - (self.n_params - 3)
-                bg = np.ascontiguousarray(theta[:, -3:], dtype=float)
-                _call_compiled(_background_loop, total, bg, full, n_own, comps)
+            n_own = blocks[0][0].columns.size
+            if cols.size > n_own:  # the background's columns ∂E_i/∂bg_k = δ_ik
+                _call_compiled(_background_columns, full, n_own, cols[n_own:] - (self.n_params - 3))
         else:
             full = self._assemble(blocks, cols, n_s, n_pts)
             if out is not None:
@@ -636,11 +635,8 @@ __all__ = ["BACKGROUND_PARAMS", "Scene", "check_points", "field", "field_jacobia
 
 
 @_jit
-def _background_loop(total, bg, jac, first, comps):
-    """Add the uniform background ``bg (S, 3)`` to the field ``total (S, M, 3)``, and write
-    its kept Jacobian columns ``jac[..., first + j]`` (component ``comps[j]`` of the
-    background): ∂E_i/∂bg_k = δ_ik. One pass; numpy's broadcasts over the short last axes took
-    about as long as the sources' own compiled loop on a scoring chunk."""
+def _add_background(total, bg):
+    """Add the uniform background ``bg (S, 3)`` to the field ``total (S, M, 3)``, in place."""
     n_s, n_m = total.shape[0], total.shape[1]
     for s in range(n_s):
         b0, b1, b2 = bg[s, 0], bg[s, 1], bg[s, 2]
@@ -648,6 +644,14 @@ def _background_loop(total, bg, jac, first, comps):
             total[s, m, 0] += b0
             total[s, m, 1] += b1
             total[s, m, 2] += b2
+
+
+@_jit
+def _background_columns(jac, first, comps):
+    """Write the background's kept Jacobian columns ``jac[..., first + j]`` (component
+    ``comps[j]``): ∂E_i/∂bg_k = δ_ik, ``jac (S, M, 3, C)``. numpy's strided assignment of
+    them took as long as the sources' own compiled loop on a scoring chunk."""
+    n_s, n_m = jac.shape[0], jac.shape[1]
     for j in range(comps.size):
         col = first + j
         k = comps[j]
